@@ -1,0 +1,62 @@
+# befit: set-up, service, tests and benchmarks. Everything a fresh machine needs is installed here.
+SHELL := /bin/bash
+PYTHON ?= python3
+ORT_VERSION := 1.31.1
+CACHE := .cache
+ORT_DIR := $(CACHE)/onnxruntime
+ORT_LIB := $(ORT_DIR)/libonnxruntime.so.$(ORT_VERSION)
+VENV := $(CACHE)/venv
+VENV_PY := $(VENV)/bin/python
+BIN := target/release/befit
+ADDR ?= 127.0.0.1:7878
+DATA_DIR ?= $(CACHE)/serve-data
+
+export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
+
+.PHONY: all serve test bench ort venv build lint clean
+
+all: build
+
+# ONNX Runtime's shared library, taken from the PyPI wheel (no other download is allowed or needed).
+$(ORT_LIB):
+	@mkdir -p $(ORT_DIR)/wheel
+	$(PYTHON) -m pip download --quiet --no-deps --only-binary=:all: \
+		-d $(ORT_DIR)/wheel onnxruntime==$(ORT_VERSION)
+	cd $(ORT_DIR) && unzip -o -j -q wheel/onnxruntime-$(ORT_VERSION)-*.whl \
+		'onnxruntime/capi/libonnxruntime.so*' -d .
+	@test -f $(ORT_LIB) || { echo "libonnxruntime.so.$(ORT_VERSION) not found in the wheel" >&2; exit 1; }
+
+ort: $(ORT_LIB)
+
+# Python environment for reference checks and the client's tests (never needed by the service).
+$(VENV)/.ready: tests/reference/requirements.txt
+	$(PYTHON) -m venv $(VENV)
+	$(VENV_PY) -m pip install --quiet --upgrade pip
+	$(VENV_PY) -m pip install --quiet -r tests/reference/requirements.txt
+	touch $@
+
+venv: $(VENV)/.ready
+
+build: $(ORT_LIB)
+	cargo build --release --locked
+
+serve: build
+	@mkdir -p $(DATA_DIR)
+	$(BIN) serve --bundle fixtures/models/blocks-v1 --listen $(ADDR) --data-dir $(DATA_DIR) \
+		--image-root fixtures/probe
+
+lint:
+	cargo fmt --check
+	cargo clippy --locked --all-targets -- -D warnings
+
+test: $(ORT_LIB) $(VENV)/.ready lint
+	cargo build --release --locked
+	cargo test --locked
+	$(VENV_PY) -m pytest -q tests/reference
+
+bench: build $(VENV)/.ready
+	$(VENV_PY) bench/run.py
+
+clean:
+	cargo clean
+	rm -rf $(CACHE)

@@ -1,0 +1,37 @@
+//! befit: how well does a caption fit an image, asked by a training loop.
+//!
+//! The data's way through the crate, one module per stage:
+//!
+//! - [`cli`]: command-line arguments parsed and validated into typed settings;
+//!   the only place that reads environment variables.
+//! - [`runtime`]: finds and loads the ONNX Runtime library once per process.
+//! - [`bundle`]: a model bundle on disk (`bundle.toml`, ONNX graphs, tokenizer),
+//!   parsed, checked against the graphs and digested.
+//! - [`intake`]: request bytes to encoder inputs: image decode, orientation,
+//!   resize and normalisation; caption tokenisation; image paths under a root.
+//! - [`batching`]: coalesces concurrent encode jobs into encoder batches on
+//!   worker threads, replying to each job through its own channel.
+//! - [`encoders`]: ONNX sessions for the image and text towers, and the engine
+//!   that joins intake, batching and caches into "give me vectors".
+//! - [`vectors`]: the shared-space math: normalisation, cosine similarity.
+//! - [`store`]: the embedded SQLite store of registered images and their
+//!   embeddings, with the in-memory layers in front.
+//! - [`scoring`]: reward scales, baselines and advantages.
+//! - [`bank`]: the caption bank and its HNSW index for nearest-caption search.
+//! - [`probe`]: labelled probe sets (JSON Lines) for calibration and drift.
+//! - [`stats`]: calibration and drift statistics, and their HTML report.
+//! - [`server`]: the HTTP service: routes, errors, limits, metrics.
+
+pub mod bank;
+pub mod batching;
+pub mod bundle;
+pub mod cli;
+pub mod encoders;
+pub mod intake;
+pub mod probe;
+pub mod runtime;
+pub mod scoring;
+pub mod server;
+pub mod stats;
+pub mod store;
+pub mod vectors;
