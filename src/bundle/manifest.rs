@@ -182,6 +182,9 @@ impl Manifest {
                     message: format!("{file:?} must be a path inside the bundle folder"),
                 });
             }
+        }
+        for (field, file) in self.files() {
+            let relative = Path::new(file);
             if !dir.join(relative).is_file() {
                 return Err(BundleError::Field {
                     path: path.to_path_buf(),

@@ -93,20 +93,24 @@ fn corrupt(format: ImageFormat, e: image::ImageError) -> DecodeError {
 mod tests {
     use super::*;
 
-    /// A PNG whose IHDR declares `width x height` but carries no pixel data.
+    /// A PNG whose IHDR declares `width x height` but whose one IDAT chunk holds
+    /// an empty zlib stream: a few dozen bytes claiming any size.
     pub(crate) fn png_header_only(width: u32, height: u32) -> Vec<u8> {
         let mut ihdr = Vec::new();
         ihdr.extend_from_slice(&width.to_be_bytes());
         ihdr.extend_from_slice(&height.to_be_bytes());
         ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
-        let mut chunk = b"IHDR".to_vec();
-        chunk.extend_from_slice(&ihdr);
-        // PNG chunk CRC (ISO 3309 / ITU-T V.42 CRC-32), computed here bit by bit.
-        let crc = crc32(&chunk);
         let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
-        png.extend_from_slice(&(ihdr.len() as u32).to_be_bytes());
-        png.extend_from_slice(&chunk);
-        png.extend_from_slice(&crc.to_be_bytes());
+        // zlib header 78 9c, an empty final stored block, and the Adler-32 of nothing (1).
+        let empty_zlib = [0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01];
+        for (kind, data) in [(&b"IHDR"[..], &ihdr[..]), (b"IDAT", &empty_zlib), (b"IEND", &[])] {
+            let mut chunk = kind.to_vec();
+            chunk.extend_from_slice(data);
+            png.extend_from_slice(&(data.len() as u32).to_be_bytes());
+            png.extend_from_slice(&chunk);
+            // PNG chunk CRC (ISO 3309 / ITU-T V.42 CRC-32) over type and data.
+            png.extend_from_slice(&crc32(&chunk).to_be_bytes());
+        }
         png
     }
 

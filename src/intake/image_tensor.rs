@@ -72,14 +72,12 @@ mod tests {
 
     #[test]
     fn normalises_channel_first() {
-        let mut img = RgbImage::new(2, 1);
+        let mut img = RgbImage::new(2, 2);
         img.put_pixel(1, 0, image::Rgb([255, 0, 51]));
         let t = to_tensor(&img, &spec(2, ResizeRule::Stretch));
-        // Layout [c][y][x]; pixel (1,0): (1-0.5)/0.5 = 1, (0-0.25)/0.25 = -1, 0.2/1 = 0.2.
-        assert_eq!(t.len(), 6);
-        assert!(
-            (t[1] - 1.0).abs() < 1e-6 && (t[3] + 1.0).abs() < 1e-6 && (t[5] - 0.2).abs() < 1e-6
-        );
+        // Layout [c][y][x], planes of 4; pixel (1,0): (1-0.5)/0.5 = 1, (0-0.25)/0.25 = -1, 0.2/1 = 0.2.
+        assert_eq!(t.len(), 12);
+        assert!((t[1] - 1.0).abs() < 1e-6 && (t[5] + 1.0).abs() < 1e-6 && (t[9] - 0.2).abs() < 1e-6);
         assert!((t[0] + 1.0).abs() < 1e-6);
     }
 
