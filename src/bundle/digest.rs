@@ -9,9 +9,9 @@ use super::{BundleError, Manifest};
 
 /// sha256 of a file's bytes, streamed.
 pub fn file_sha256(path: &Path) -> Result<[u8; 32], BundleError> {
-    let read_err = |source| BundleError::Read {
+    let read_err = |cause| BundleError::Read {
         path: path.to_path_buf(),
-        source,
+        cause,
     };
     let mut file = std::fs::File::open(path).map_err(read_err)?;
     let mut hasher = Sha256::new();

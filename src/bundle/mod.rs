@@ -15,10 +15,10 @@ pub use manifest::{Filter, ImageSpec, Manifest, ModelSpec, Padding, ResizeRule, 
 /// Why a bundle could not be opened; every message names the file and field.
 #[derive(Debug, thiserror::Error)]
 pub enum BundleError {
-    #[error("{path}: cannot read: {source}")]
+    #[error("{path}: cannot read: {cause}")]
     Read {
         path: PathBuf,
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     #[error("{path}: {message}")]
     Manifest { path: PathBuf, message: String },
@@ -47,9 +47,9 @@ impl Bundle {
     /// Reads `DIR/bundle.toml`, checks it, and digests the files it names.
     pub fn open(dir: &Path) -> Result<Bundle, BundleError> {
         let manifest_path = dir.join("bundle.toml");
-        let text = std::fs::read_to_string(&manifest_path).map_err(|source| BundleError::Read {
+        let text = std::fs::read_to_string(&manifest_path).map_err(|cause| BundleError::Read {
             path: manifest_path.clone(),
-            source,
+            cause,
         })?;
         let manifest = Manifest::parse(&text, &manifest_path)?;
         manifest.check_files(dir, &manifest_path)?;
@@ -61,10 +61,10 @@ impl Bundle {
                 message: format!("not valid JSON: {e}"),
             })?),
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => None,
-            Err(source) => {
+            Err(cause) => {
                 return Err(BundleError::Read {
                     path: card_path,
-                    source,
+                    cause,
                 })
             }
         };

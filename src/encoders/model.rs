@@ -57,8 +57,8 @@ pub enum LoadError {
     Bundle(#[from] BundleError),
     #[error("{0}")]
     Session(String),
-    #[error("{path}: {source}")]
-    Tokenizer { path: String, source: CaptionError },
+    #[error("{path}: {cause}")]
+    Tokenizer { path: String, cause: CaptionError },
 }
 
 /// Why vectors could not be produced for a request.
@@ -66,8 +66,8 @@ pub enum LoadError {
 pub enum EncodeError {
     #[error("the {tower} encoder queue is full; retry later")]
     Overloaded { tower: &'static str },
-    #[error("caption {index}: {source}")]
-    Caption { index: usize, source: CaptionError },
+    #[error("caption {index}: {cause}")]
+    Caption { index: usize, cause: CaptionError },
     #[error("the {tower} encoder failed: {message}")]
     Failed {
         tower: &'static str,
@@ -172,10 +172,10 @@ impl Model {
             });
         }
         let tokenizer =
-            CaptionTokenizer::load(&bundle.tokenizer_file(), &m.text).map_err(|source| {
+            CaptionTokenizer::load(&bundle.tokenizer_file(), &m.text).map_err(|cause| {
                 LoadError::Tokenizer {
                     path: bundle.tokenizer_file().display().to_string(),
-                    source,
+                    cause,
                 }
             })?;
         let id = bundle.id();
@@ -309,7 +309,7 @@ impl Model {
                 .map(|(t, &index)| {
                     tokenizer
                         .encode(t)
-                        .map_err(|source| EncodeError::Caption { index, source })
+                        .map_err(|cause| EncodeError::Caption { index, cause })
                 })
                 .collect()
         };
