@@ -77,7 +77,9 @@ mod tests {
         let t = to_tensor(&img, &spec(2, ResizeRule::Stretch));
         // Layout [c][y][x], planes of 4; pixel (1,0): (1-0.5)/0.5 = 1, (0-0.25)/0.25 = -1, 0.2/1 = 0.2.
         assert_eq!(t.len(), 12);
-        assert!((t[1] - 1.0).abs() < 1e-6 && (t[5] + 1.0).abs() < 1e-6 && (t[9] - 0.2).abs() < 1e-6);
+        assert!(
+            (t[1] - 1.0).abs() < 1e-6 && (t[5] + 1.0).abs() < 1e-6 && (t[9] - 0.2).abs() < 1e-6
+        );
         assert!((t[0] + 1.0).abs() < 1e-6);
     }
 
