@@ -1,0 +1,1 @@
+//! Plot primitives for the HTML reports.
