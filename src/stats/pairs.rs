@@ -140,7 +140,7 @@ impl ProbeVectors {
         ] {
             for (row, v) in rows.outer_iter().enumerate() {
                 let norm = v.dot(&v).sqrt();
-                if !((norm - 1.0).abs() <= NORM_TOLERANCE) {
+                if norm.is_nan() || (norm - 1.0).abs() > NORM_TOLERANCE {
                     return Err(StatsError::NotNormalised { what, row, norm });
                 }
             }
