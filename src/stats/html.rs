@@ -9,7 +9,7 @@ use super::continuity::ContinuityMap;
 use super::drift::{DriftReport, PairKind};
 use super::hinge::HingeFigures;
 use super::summary::Distribution;
-use super::svg::{self, escape, HistogramSeries, PALETTE};
+use super::svg::{self, escape, Curve, HistogramSeries, PALETTE};
 
 const STYLE: &str = "body{font-family:system-ui,sans-serif;margin:2em auto;max-width:60em;color:#222;padding:0 1em}\
 h1{font-size:1.5em}h2{font-size:1.2em;margin-top:2em;border-bottom:1px solid #ccc}\
@@ -410,24 +410,27 @@ pub fn drift_html(report: &DriftReport) -> String {
         "old cosine against new cosine, with the fitted maps",
         &r.scatter.points,
         &[
-            (
-                "affine map",
-                curve(&r.continuity.affine.map, lo, hi),
-                PALETTE[1],
-            ),
-            (
-                "monotone map",
-                curve(&r.continuity.monotone.map, lo, hi),
-                PALETTE[2],
-            ),
+            Curve {
+                label: "affine map",
+                points: curve(&r.continuity.affine.map, lo, hi),
+                colour: PALETTE[1],
+            },
+            Curve {
+                label: "monotone map",
+                points: curve(&r.continuity.monotone.map, lo, hi),
+                colour: PALETTE[2],
+            },
         ],
         &format!("cosine under {}", r.to_bundle),
         &format!("cosine under {}", r.from_bundle),
     ));
+    let shown = match r.scatter.stride {
+        0 | 1 => "All pairs shown.".to_string(),
+        n => format!("One pair in {n} shown."),
+    };
     let _ = write!(
         b,
-        "<p class=\"note\">Every {}th pair shown. The maps take a cosine of {to} to the scale of {from}.</p>",
-        r.scatter.stride.max(1)
+        "<p class=\"note\">{shown} The maps take a cosine of {to} to the scale of {from}.</p>"
     );
     let fit_row = |name: &str, f: &super::continuity::FittedMap| {
         let json = serde_json::to_string(&f.map).unwrap_or_default();

@@ -241,12 +241,19 @@ pub(crate) fn bars(
     out + &legend(series)
 }
 
+/// A labelled line drawn over a scatter.
+pub(crate) struct Curve<'a> {
+    pub label: &'a str,
+    pub points: Vec<(f64, f64)>,
+    pub colour: &'a str,
+}
+
 /// A square scatter of `points` (x, y) over [lo, hi]^2 with the diagonal
-/// dashed and `curves` (label, points, colour) drawn over it.
+/// dashed and `curves` drawn over it.
 pub(crate) fn scatter(
     title: &str,
     points: &[[f64; 2]],
-    curves: &[(&str, Vec<(f64, f64)>, &str)],
+    curves: &[Curve],
     x_label: &str,
     y_label: &str,
 ) -> String {
@@ -286,13 +293,17 @@ pub(crate) fn scatter(
         );
     }
     frame.polyline(&mut out, &[(lo, lo), (hi, hi)], "#999", true);
-    for (_, curve, colour) in curves {
-        let clipped: Vec<(f64, f64)> = curve.iter().map(|&(x, y)| (x, y.clamp(lo, hi))).collect();
-        frame.polyline(&mut out, &clipped, colour, false);
+    for curve in curves {
+        let clipped: Vec<(f64, f64)> = curve
+            .points
+            .iter()
+            .map(|&(x, y)| (x, y.clamp(lo, hi)))
+            .collect();
+        frame.polyline(&mut out, &clipped, curve.colour, false);
     }
     out.push_str("</svg>");
     let mut labels: Vec<(&str, &str)> = vec![("y = x", "#999")];
-    labels.extend(curves.iter().map(|(l, _, c)| (*l, *c)));
+    labels.extend(curves.iter().map(|c| (c.label, c.colour)));
     out + &legend(&labels)
 }
 
