@@ -23,7 +23,10 @@ pub struct LoadOptions {
     /// Skip bad rows (returned as warnings) instead of failing.
     pub skip_bad: bool,
     /// Check that every image path names an existing file. Off when the
-    /// caller resolves paths itself (e.g. under a server's image root).
+    /// caller resolves paths itself (e.g. under a server's image root, with
+    /// an empty `base` so paths stay as written) in its [`ProbeEncoder`].
+    ///
+    /// [`ProbeEncoder`]: super::ProbeEncoder
     pub check_files: bool,
 }
 

@@ -15,8 +15,8 @@
 //! - [`agreement`]: Spearman, Kendall tau-b, two-sample Kolmogorov-Smirnov.
 //! - [`spaces`]: linear CKA and orthogonal Procrustes, on [`svd`].
 //! - [`continuity`]: maps from a new bundle's cosine to an old one's.
-//! - [`drift`]: all of the above between two bundles.
-//! - [`html`]: self-contained HTML reports, drawn with [`svg`].
+//! - [`drift`](mod@drift): all of the above between two bundles.
+//! - [`html`]: self-contained HTML reports, drawn with `svg`.
 //! - [`export`]: the JSON export the numpy/scipy cross-check reads.
 
 use std::path::PathBuf;
