@@ -108,6 +108,19 @@ def test_rank_agreement_and_ks_match_scipy(path):
     a, b, cos_a, cos_b = pair_cosines(data)
     report = data["report"]
     assert_close(
+        report["counts"],
+        {
+            "images": a.n,
+            "captions": a.m,
+            "contrasts": int(a.contrasts.shape[0]),
+            "pairs": int(cos_a.size),
+            "dimension_from": int(a.images.shape[1]),
+            "dimension_to": int(b.images.shape[1]),
+        },
+        "report.counts",
+    )
+    assert (report["from_bundle"], report["to_bundle"]) == (data["from"]["bundle"], data["to"]["bundle"])
+    assert_close(
         report["agreement"],
         {"all_pairs": ref.agreement(cos_a, cos_b), "true_pairs": ref.agreement(a.true_cos, b.true_cos)},
         "report.agreement",
