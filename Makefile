@@ -50,7 +50,6 @@ lint:
 	cargo clippy --locked --all-targets -- -D warnings
 
 test: $(ORT_LIB) $(VENV)/.ready lint
-	cargo build --release --locked
 	cargo test --locked
 	$(VENV_PY) -m pytest -q tests/reference
 

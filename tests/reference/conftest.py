@@ -10,11 +10,11 @@ REPO = pathlib.Path(__file__).resolve().parents[2]
 
 @pytest.fixture(scope="session")
 def befit_bin() -> pathlib.Path:
-    """The befit binary that `make test` built (release), or a debug build."""
-    for candidate in (REPO / "target" / "release" / "befit", REPO / "target" / "debug" / "befit"):
+    """The befit binary that `cargo test` built (debug, as `make test` runs it), else a release build."""
+    for candidate in (REPO / "target" / "debug" / "befit", REPO / "target" / "release" / "befit"):
         if candidate.exists():
             return candidate
-    pytest.fail("no befit binary: run `cargo build --release` first (make test does)")
+    pytest.fail("no befit binary: run `cargo test` first (make test does)")
 
 
 @pytest.fixture(scope="session")
