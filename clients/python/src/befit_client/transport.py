@@ -108,7 +108,8 @@ class Transport:
     """Sends requests to one befit server, retrying as ``retry`` says.
 
     ``timeout`` bounds each socket operation (connect, each send, each read),
-    in seconds. ``sleep`` and ``rng`` can be replaced (tests, simulations).
+    in seconds. ``sleep``, ``clock`` and ``rng`` can be replaced (tests,
+    simulations).
     """
 
     def __init__(
@@ -119,6 +120,7 @@ class Transport:
         user_agent: str = "befit-client",
         sleep: Callable[[float], None] = time.sleep,
         rng: Optional[random.Random] = None,
+        clock: Callable[[], float] = time.monotonic,
     ) -> None:
         parts = urllib.parse.urlsplit(url if "://" in url else "http://" + url)
         if parts.scheme not in ("http", "https") or not parts.hostname:
@@ -131,9 +133,13 @@ class Transport:
         self.retry = retry
         self.user_agent = user_agent
         self.sleep = sleep
+        self.clock = clock
         self.rng = rng or random.Random()
         self._local = threading.local()
-        self.retries_done = 0  # total retries over this transport's life, for logs
+        self._count_lock = threading.Lock()
+        # Totals over this transport's life, for logs and tests.
+        self.requests_sent = 0  # attempts, retries included
+        self.retries_done = 0
 
     @property
     def base_url(self) -> str:
@@ -159,6 +165,8 @@ class Transport:
 
     def _send_once(self, method: str, path: str, body: Optional[bytes], headers: Mapping[str, str]) -> Response:
         conn = self._connection()
+        with self._count_lock:
+            self.requests_sent += 1
         try:
             conn.request(method, self.prefix + path, body=body, headers=dict(headers))
             resp = conn.getresponse()
@@ -184,7 +192,7 @@ class Transport:
         headers = {"User-Agent": self.user_agent, "Accept": "application/json"}
         if body is not None:
             headers["Content-Type"] = content_type
-        started = time.monotonic()
+        started = self.clock()
         attempt = 0
         while True:
             attempt += 1
@@ -212,7 +220,7 @@ class Transport:
                 failure = ("status", err)
             # Decide whether another attempt is allowed.
             wait = policy.delay(attempt, retry_after, self.rng)
-            too_late = policy.deadline is not None and time.monotonic() - started + wait > policy.deadline
+            too_late = policy.deadline is not None and self.clock() - started + wait > policy.deadline
             if (
                 attempt >= policy.max_attempts
                 or too_late
@@ -224,5 +232,6 @@ class Transport:
                 raise TransportError(
                     f"{method} {self.base_url}{path}: {kind} failed after {attempt} attempt(s): {exc!r}", attempt
                 ) from exc
-            self.retries_done += 1
+            with self._count_lock:
+                self.retries_done += 1
             self.sleep(wait)
