@@ -20,6 +20,7 @@
 //! - [`bank`]: the caption bank and its HNSW index for nearest-caption search.
 //! - [`probe`]: labelled probe sets (JSON Lines) for calibration and drift.
 //! - [`stats`]: calibration and drift statistics, and their HTML report.
+//! - [`metrics`]: Prometheus counters, gauges and histograms every stage reports to.
 //! - [`server`]: the HTTP service: routes, errors, limits, metrics.
 
 pub mod bank;
@@ -28,6 +29,7 @@ pub mod bundle;
 pub mod cli;
 pub mod encoders;
 pub mod intake;
+pub mod metrics;
 pub mod probe;
 pub mod runtime;
 pub mod scoring;

@@ -1,1 +1,52 @@
-//! (filled in by its stage's work)
+//! The command line: arguments parsed raw by clap, validated into typed
+//! settings here, and dispatched. This is the only module that reads
+//! environment variables (`ORT_DYLIB_PATH`, `RUST_LOG`).
+
+pub mod args;
+mod serve;
+
+use std::ffi::OsString;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use anyhow::Context;
+use clap::Parser;
+
+use crate::runtime::LibrarySearch;
+use args::{Cli, Command};
+
+/// Parses `argv` and runs the command; the error chain is for `main` to print.
+pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode> {
+    let cli = match Cli::try_parse_from(argv) {
+        Ok(cli) => cli,
+        Err(e) => {
+            let code = if e.use_stderr() { 2 } else { 0 };
+            let _ = e.print();
+            return Ok(ExitCode::from(code));
+        }
+    };
+    init_logging(cli.log_json);
+    match cli.command {
+        Command::Serve(a) => serve::serve(a),
+        Command::CheckBundle(a) => serve::check_bundle(a),
+    }
+}
+
+fn init_logging(json: bool) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info,ort=warn"));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = if json { builder.json().try_init() } else { builder.try_init() };
+}
+
+/// Where ONNX Runtime is looked for: the flag, then `ORT_DYLIB_PATH`, then the cache.
+pub(crate) fn library_search(flag: Option<PathBuf>) -> LibrarySearch {
+    let env = std::env::var_os("ORT_DYLIB_PATH").filter(|v| !v.is_empty()).map(PathBuf::from);
+    LibrarySearch::with_default_roots(flag, env)
+}
+
+/// Loads ONNX Runtime or explains how to get it.
+pub(crate) fn ort_environment(flag: Option<PathBuf>) -> anyhow::Result<&'static ort::environment::Environment> {
+    let path = library_search(flag).locate()?;
+    crate::runtime::environment(&path).with_context(|| format!("using ONNX Runtime at {}", path.display()))
+}

@@ -1,1 +1,15 @@
-//! (filled in by its stage's work)
+//! Request bytes to encoder inputs.
+//!
+//! - [`image_decode`]: PNG/JPEG/WebP bytes to upright RGB pixels, refusing
+//!   oversized images from their header before decoding.
+//! - [`resample`]: Pillow-compatible resampling, so preprocessing matches the
+//!   Python side that trained and exported the encoders.
+//! - [`image_tensor`]: the bundle's resize rule and normalisation, to NCHW floats.
+//! - [`captions`]: tokenisation with prefix, truncation (reported) and padding.
+//! - [`image_root`]: image paths relative to a root folder, never escaping it.
+
+pub mod captions;
+pub mod image_decode;
+pub mod image_root;
+pub mod image_tensor;
+pub mod resample;

@@ -1,1 +1,110 @@
-//! (filled in by its stage's work)
+//! The HTTP service.
+//!
+//! [`app`] builds the router (routes, per-route body limits, the layer stack
+//! of panic catching, tracing, load shedding, a concurrency limit and a
+//! timeout) so tests can drive it with `oneshot`; [`run`] serves it on a bound
+//! listener until `shutdown` resolves. The API is documented in
+//! `proto-free-api.md`.
+
+pub mod error;
+pub mod image_ref;
+pub mod json;
+pub mod limits;
+pub mod routes;
+pub mod state;
+
+use std::future::Future;
+use std::time::Instant;
+
+use axum::error_handling::HandleErrorLayer;
+use axum::extract::{DefaultBodyLimit, MatchedPath, Request, State};
+use axum::http::StatusCode;
+use axum::middleware::{self, Next};
+use axum::response::{IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::{BoxError, Router};
+use tower::limit::GlobalConcurrencyLimitLayer;
+use tower::ServiceBuilder;
+use tower_http::catch_panic::CatchPanicLayer;
+use tower_http::trace::TraceLayer;
+
+use error::ApiError;
+pub use limits::Limits;
+pub use state::AppState;
+
+/// The router with every route and layer.
+pub fn app(state: AppState) -> Router {
+    let limits = state.limits().clone();
+    let routes = Router::new()
+        .route("/healthz", get(routes::health::healthz))
+        .route("/readyz", get(routes::health::readyz))
+        .route("/metrics", get(routes::health::metrics))
+        .route("/v1/models", get(routes::models::list))
+        .route("/v1/images", post(routes::images::register))
+        .route("/v1/rewards", post(routes::rewards::score))
+        .route("/v1/vectors", post(routes::vectors::embed))
+        .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
+        .layer(DefaultBodyLimit::max(limits.max_body_bytes))
+        .with_state(state.clone());
+    routes
+        .layer(
+            ServiceBuilder::new()
+                .layer(HandleErrorLayer::new(shed_or_timeout))
+                .load_shed()
+                .layer(GlobalConcurrencyLimitLayer::new(limits.max_inflight))
+                .timeout(limits.request_timeout),
+        )
+        .layer(middleware::from_fn_with_state(state, record))
+        .layer(TraceLayer::new_for_http())
+        .layer(CatchPanicLayer::custom(|_| {
+            ApiError::internal("a request handler panicked").into_response()
+        }))
+}
+
+/// Serves `app(state)` on `listener` until `shutdown` resolves, then drains.
+pub async fn run(
+    listener: tokio::net::TcpListener,
+    state: AppState,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
+    axum::serve(listener, app(state)).with_graceful_shutdown(shutdown).await
+}
+
+async fn not_found() -> ApiError {
+    ApiError::new(StatusCode::NOT_FOUND, "not_found", "no such route; see proto-free-api.md for the routes")
+}
+
+async fn method_not_allowed() -> ApiError {
+    ApiError::new(StatusCode::METHOD_NOT_ALLOWED, "method_not_allowed", "this route does not take that method")
+}
+
+async fn shed_or_timeout(error: BoxError) -> ApiError {
+    if error.is::<tower::timeout::error::Elapsed>() {
+        ApiError::overloaded("the request took longer than --request-timeout-secs")
+    } else if error.is::<tower::load_shed::error::Overloaded>() {
+        ApiError::overloaded("too many requests in flight (--max-inflight); retry after the delay given")
+    } else {
+        ApiError::internal(error)
+    }
+}
+
+/// Counts and times requests by matched route, never by raw path.
+async fn record(State(state): State<AppState>, request: Request, next: Next) -> Response {
+    let route = request
+        .extensions()
+        .get::<MatchedPath>()
+        .map_or_else(|| "unmatched".to_string(), |p| p.as_str().to_string());
+    let method = request.method().as_str().to_string();
+    let started = Instant::now();
+    let response = next.run(request).await;
+    let status = response.status().as_u16().to_string();
+    let metrics = state.metrics();
+    metrics.add("befit_http_requests_total", &[("route", &route), ("method", &method), ("status", &status)], 1);
+    metrics.observe(
+        "befit_http_request_seconds",
+        &[("route", &route), ("method", &method)],
+        started.elapsed().as_secs_f64(),
+    );
+    response
+}

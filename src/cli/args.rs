@@ -1,0 +1,121 @@
+//! The raw command-line surface (clap). Defaults come from the named
+//! constants of the modules they configure.
+
+use std::net::SocketAddr;
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+use crate::batching::{DEFAULT_MAX_BATCH, DEFAULT_MAX_WAIT_MICROS, DEFAULT_QUEUE_DEPTH};
+use crate::intake::image_decode::DEFAULT_MAX_PIXELS;
+use crate::server::limits::*;
+use crate::store::memory::{DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
+
+/// How well does a caption fit an image? Rewards for training loops.
+#[derive(Debug, Parser)]
+#[command(name = "befit", version, about)]
+pub struct Cli {
+    /// Log as JSON lines instead of text.
+    #[arg(long, global = true)]
+    pub log_json: bool,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the HTTP service.
+    Serve(ServeArgs),
+    /// Check a bundle against its ONNX graphs and print its identity and digest.
+    CheckBundle(CheckBundleArgs),
+}
+
+/// Where ONNX Runtime is.
+#[derive(Debug, Args, Clone)]
+pub struct RuntimeArgs {
+    /// Path of libonnxruntime.so (else ORT_DYLIB_PATH, else .cache/onnxruntime/).
+    #[arg(long, value_name = "PATH")]
+    pub ort_lib: Option<PathBuf>,
+}
+
+/// How encoders run.
+#[derive(Debug, Args, Clone)]
+pub struct EncoderArgs {
+    /// Worker threads (one ONNX session each) per encoder; default: the number of cores.
+    #[arg(long)]
+    pub workers: Option<usize>,
+    /// Threads inside each ONNX Runtime session.
+    #[arg(long, default_value_t = 1)]
+    pub intra_threads: usize,
+    /// Largest encoder batch of captions.
+    #[arg(long, default_value_t = DEFAULT_MAX_BATCH)]
+    pub max_batch: usize,
+    /// Largest encoder batch of images.
+    #[arg(long, default_value_t = 32)]
+    pub max_image_batch: usize,
+    /// Longest time a job waits for a batch to fill, in microseconds.
+    #[arg(long, default_value_t = DEFAULT_MAX_WAIT_MICROS)]
+    pub max_wait_micros: u64,
+    /// Encode jobs that may wait per encoder before requests get 503.
+    #[arg(long, default_value_t = DEFAULT_QUEUE_DEPTH)]
+    pub queue_depth: usize,
+    /// Caption embeddings kept in memory per model (0: none).
+    #[arg(long, default_value_t = DEFAULT_CAPTION_CACHE)]
+    pub caption_cache: usize,
+    /// Image embeddings kept in memory per model (0: none; the store still has them).
+    #[arg(long, default_value_t = DEFAULT_IMAGE_CACHE)]
+    pub image_cache: usize,
+    /// Largest image in pixels (width x height), checked from the header.
+    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
+    pub max_pixels: u64,
+}
+
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// Model bundle folder; repeat for more; the first is the default model.
+    #[arg(long = "bundle", value_name = "DIR", required = true)]
+    pub bundles: Vec<PathBuf>,
+    /// Address to listen on (port 0 picks a free port, printed at start).
+    #[arg(long, default_value = "127.0.0.1:7878")]
+    pub listen: SocketAddr,
+    /// Folder for the image store and the caption bank (created if missing).
+    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    pub data_dir: PathBuf,
+    /// Folder under which requests may name images by relative path.
+    #[arg(long, value_name = "DIR")]
+    pub image_root: Option<PathBuf>,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
+    /// Largest request body in bytes.
+    #[arg(long, default_value_t = DEFAULT_MAX_BODY_BYTES)]
+    pub max_body_bytes: usize,
+    /// Most groups in one rewards request.
+    #[arg(long, default_value_t = DEFAULT_MAX_GROUPS)]
+    pub max_groups: usize,
+    /// Most captions (samples, references, greedy) in one request.
+    #[arg(long, default_value_t = DEFAULT_MAX_CAPTIONS)]
+    pub max_captions: usize,
+    /// Largest caption in bytes.
+    #[arg(long, default_value_t = DEFAULT_MAX_CAPTION_BYTES)]
+    pub max_caption_bytes: usize,
+    /// Most images in one registration or vectors request.
+    #[arg(long, default_value_t = DEFAULT_MAX_IMAGES)]
+    pub max_images: usize,
+    /// Requests served at once; more get 503 with Retry-After.
+    #[arg(long, default_value_t = DEFAULT_MAX_INFLIGHT)]
+    pub max_inflight: usize,
+    /// Wall-clock limit of one request, in seconds.
+    #[arg(long, default_value_t = DEFAULT_REQUEST_TIMEOUT_SECS)]
+    pub request_timeout_secs: u64,
+}
+
+#[derive(Debug, Args)]
+pub struct CheckBundleArgs {
+    /// Model bundle folder.
+    #[arg(value_name = "DIR")]
+    pub bundle: PathBuf,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+}

@@ -1,0 +1,60 @@
+//! The [`Embedder`] that offline work (bank import, calibration, drift) uses:
+//! one model, driven from plain threads by blocking on the engine's runtime.
+
+use std::path::PathBuf;
+use std::sync::Arc;
+
+use ndarray::Array2;
+
+use super::model::Model;
+use crate::intake::image_decode::decode_rgb;
+use crate::intake::image_tensor::to_tensor;
+use crate::vectors::{EmbedError, Embedder};
+
+/// Embeds through `model` by blocking on `runtime`; never call it from an async task.
+pub struct ModelEmbedder {
+    pub model: Arc<Model>,
+    pub runtime: tokio::runtime::Handle,
+    pub max_pixels: u64,
+}
+
+fn rows(vectors: Vec<Vec<f32>>, dimension: usize) -> Result<Array2<f32>, EmbedError> {
+    let n = vectors.len();
+    let flat: Vec<f32> = vectors.into_iter().flatten().collect();
+    Array2::from_shape_vec((n, dimension), flat)
+        .map_err(|e| EmbedError(format!("vector shape: {e}")))
+}
+
+impl Embedder for ModelEmbedder {
+    fn dimension(&self) -> usize {
+        self.model.dimension()
+    }
+
+    fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError> {
+        let vectors = self
+            .runtime
+            .block_on(self.model.caption_vectors(texts))
+            .map_err(|e| EmbedError(e.to_string()))?;
+        rows(
+            vectors.iter().map(|v| v.vector.clone()).collect(),
+            self.dimension(),
+        )
+    }
+
+    fn embed_image_files(&self, paths: &[PathBuf]) -> Result<Array2<f32>, EmbedError> {
+        let spec = &self.model.bundle.manifest.image;
+        let mut tensors = Vec::with_capacity(paths.len());
+        for path in paths {
+            let bytes =
+                std::fs::read(path).map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
+            let rgb = decode_rgb(&bytes, self.max_pixels)
+                .map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
+            tensors.push(to_tensor(&rgb, spec));
+        }
+        let vectors = self
+            .runtime
+            .block_on(self.model.tensor_vectors(tensors))
+            .map_err(|e| EmbedError(e.to_string()))?;
+        rows(vectors, self.dimension())
+    }
+}

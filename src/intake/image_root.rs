@@ -1,0 +1,116 @@
+//! Image paths named by requests, resolved under the server's `--image-root`.
+//!
+//! Trainers keep data sets on a shared disk and name images by path instead
+//! of sending their bytes. A path must stay inside the root: `..`, absolute
+//! paths and symbolic links that lead out are refused.
+
+use std::path::{Component, Path, PathBuf};
+
+/// Why a requested path was not read.
+#[derive(Debug, thiserror::Error)]
+pub enum PathError {
+    #[error("images by path are off: start the server with --image-root DIR to allow them")]
+    NoRoot,
+    #[error("path {0:?} leaves the image root; give a path relative to it, without `..`")]
+    Escapes(String),
+    #[error("no image file at {0:?} under the image root")]
+    Missing(String),
+    #[error("image {path:?} could not be read: {message}")]
+    Read { path: String, message: String },
+}
+
+/// The folder that path-named images must live in.
+#[derive(Debug, Clone)]
+pub struct ImageRoot {
+    root: PathBuf,
+}
+
+impl ImageRoot {
+    /// Canonicalises `root` so later checks compare real paths.
+    pub fn new(root: &Path) -> std::io::Result<ImageRoot> {
+        Ok(ImageRoot {
+            root: root.canonicalize()?,
+        })
+    }
+
+    /// The real file `relative` names, when it is inside the root.
+    pub fn resolve(&self, relative: &str) -> Result<PathBuf, PathError> {
+        let path = Path::new(relative);
+        let lexically_inside = !relative.is_empty()
+            && path
+                .components()
+                .all(|c| matches!(c, Component::Normal(_) | Component::CurDir));
+        if !lexically_inside {
+            return Err(PathError::Escapes(relative.to_string()));
+        }
+        let real = match self.root.join(path).canonicalize() {
+            Ok(real) => real,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                return Err(PathError::Missing(relative.to_string()))
+            }
+            Err(e) => {
+                return Err(PathError::Read {
+                    path: relative.to_string(),
+                    message: e.to_string(),
+                })
+            }
+        };
+        // A symbolic link inside the root may point anywhere; the real path decides.
+        if !real.starts_with(&self.root) {
+            return Err(PathError::Escapes(relative.to_string()));
+        }
+        if !real.is_file() {
+            return Err(PathError::Missing(relative.to_string()));
+        }
+        Ok(real)
+    }
+
+    /// Reads the file `relative` names.
+    pub fn read(&self, relative: &str) -> Result<Vec<u8>, PathError> {
+        let real = self.resolve(relative)?;
+        std::fs::read(&real).map_err(|e| PathError::Read {
+            path: relative.to_string(),
+            message: e.to_string(),
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn refuses_every_way_out() {
+        let outside = tempfile::tempdir().unwrap();
+        std::fs::write(outside.path().join("secret.png"), b"x").unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::create_dir(dir.path().join("scenes")).unwrap();
+        std::fs::write(dir.path().join("scenes/a.png"), b"png").unwrap();
+        std::os::unix::fs::symlink(
+            outside.path().join("secret.png"),
+            dir.path().join("link.png"),
+        )
+        .unwrap();
+        let root = ImageRoot::new(dir.path()).unwrap();
+
+        assert_eq!(root.read("scenes/a.png").unwrap(), b"png");
+        assert_eq!(root.read("./scenes/a.png").unwrap(), b"png");
+        for bad in [
+            "../x.png",
+            "scenes/../../x.png",
+            "/etc/passwd",
+            "link.png",
+            "",
+        ] {
+            assert!(
+                matches!(root.resolve(bad), Err(PathError::Escapes(_))),
+                "{bad}"
+            );
+        }
+        assert!(matches!(
+            root.resolve("scenes/none.png"),
+            Err(PathError::Missing(_))
+        ));
+        assert!(matches!(root.resolve("scenes"), Err(PathError::Missing(_))));
+    }
+}

@@ -1,0 +1,24 @@
+//! `GET /healthz`, `GET /readyz`, `GET /metrics`.
+
+use axum::extract::State;
+use axum::http::header;
+use axum::response::IntoResponse;
+use axum::Json;
+use serde_json::{json, Value};
+
+use crate::server::error::ApiError;
+use crate::server::state::AppState;
+
+pub async fn healthz() -> Json<Value> {
+    Json(json!({"status": "ok"}))
+}
+
+pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+    let engine = state.engine()?;
+    let models: Vec<&str> = engine.models().iter().map(|m| m.id.as_str()).collect();
+    Ok(Json(json!({"status": "ready", "models": models})))
+}
+
+pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics().render())
+}
