@@ -35,18 +35,29 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
 fn init_logging(json: bool) {
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info,ort=warn"));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
-    let _ = if json { builder.json().try_init() } else { builder.try_init() };
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = if json {
+        builder.json().try_init()
+    } else {
+        builder.try_init()
+    };
 }
 
 /// Where ONNX Runtime is looked for: the flag, then `ORT_DYLIB_PATH`, then the cache.
 pub(crate) fn library_search(flag: Option<PathBuf>) -> LibrarySearch {
-    let env = std::env::var_os("ORT_DYLIB_PATH").filter(|v| !v.is_empty()).map(PathBuf::from);
+    let env = std::env::var_os("ORT_DYLIB_PATH")
+        .filter(|v| !v.is_empty())
+        .map(PathBuf::from);
     LibrarySearch::with_default_roots(flag, env)
 }
 
 /// Loads ONNX Runtime or explains how to get it.
-pub(crate) fn ort_environment(flag: Option<PathBuf>) -> anyhow::Result<&'static ort::environment::Environment> {
+pub(crate) fn ort_environment(
+    flag: Option<PathBuf>,
+) -> anyhow::Result<&'static ort::environment::Environment> {
     let path = library_search(flag).locate()?;
-    crate::runtime::environment(&path).with_context(|| format!("using ONNX Runtime at {}", path.display()))
+    crate::runtime::environment(&path)
+        .with_context(|| format!("using ONNX Runtime at {}", path.display()))
 }

@@ -19,16 +19,33 @@ use crate::store::images::ImageStore;
 
 /// Encoder settings from the flags, checked.
 pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
-    let workers = a.workers.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
-    if workers == 0 || a.intra_threads == 0 || a.max_batch == 0 || a.max_image_batch == 0 || a.queue_depth == 0 {
+    let workers = a
+        .workers
+        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
+    if workers == 0
+        || a.intra_threads == 0
+        || a.max_batch == 0
+        || a.max_image_batch == 0
+        || a.queue_depth == 0
+    {
         bail!("--workers, --intra-threads, --max-batch, --max-image-batch and --queue-depth must be at least 1");
     }
     let wait = Duration::from_micros(a.max_wait_micros);
     Ok(ModelSettings {
         workers,
         intra_threads: a.intra_threads,
-        image_batch: BatchSettings { max_batch: a.max_image_batch, max_wait: wait, queue_depth: a.queue_depth, group_by_cost: false },
-        text_batch: BatchSettings { max_batch: a.max_batch, max_wait: wait, queue_depth: a.queue_depth, group_by_cost: true },
+        image_batch: BatchSettings {
+            max_batch: a.max_image_batch,
+            max_wait: wait,
+            queue_depth: a.queue_depth,
+            group_by_cost: false,
+        },
+        text_batch: BatchSettings {
+            max_batch: a.max_batch,
+            max_wait: wait,
+            queue_depth: a.queue_depth,
+            group_by_cost: true,
+        },
         caption_cache: a.caption_cache,
         image_cache: a.image_cache,
     })
@@ -44,11 +61,18 @@ pub(crate) fn load_models(
     let mut models: Vec<Arc<Model>> = Vec::new();
     for dir in dirs {
         let dir = dir.as_ref();
-        let bundle = Bundle::open(dir).with_context(|| format!("opening bundle {}", dir.display()))?;
+        let bundle =
+            Bundle::open(dir).with_context(|| format!("opening bundle {}", dir.display()))?;
         if let Some(other) = models.iter().find(|m| m.id == bundle.id()) {
-            bail!("bundles {} and {} are both {}; give each a distinct name or version", other.bundle.dir.display(), dir.display(), bundle.id());
+            bail!(
+                "bundles {} and {} are both {}; give each a distinct name or version",
+                other.bundle.dir.display(),
+                dir.display(),
+                bundle.id()
+            );
         }
-        let model = Model::load(bundle, env, settings, Arc::clone(metrics)).with_context(|| format!("loading bundle {}", dir.display()))?;
+        let model = Model::load(bundle, env, settings, Arc::clone(metrics))
+            .with_context(|| format!("loading bundle {}", dir.display()))?;
         tracing::info!(
             model = %model.id,
             dimension = model.dimension(),
@@ -78,17 +102,25 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     };
     let env = ort_environment(a.runtime.ort_lib.clone())?;
     let image_root = match &a.image_root {
-        Some(dir) => Some(ImageRoot::new(dir).with_context(|| format!("--image-root {}", dir.display()))?),
+        Some(dir) => {
+            Some(ImageRoot::new(dir).with_context(|| format!("--image-root {}", dir.display()))?)
+        }
         None => None,
     };
-    std::fs::create_dir_all(&a.data_dir).with_context(|| format!("creating --data-dir {}", a.data_dir.display()))?;
+    std::fs::create_dir_all(&a.data_dir)
+        .with_context(|| format!("creating --data-dir {}", a.data_dir.display()))?;
     let store = Arc::new(ImageStore::open(&a.data_dir.join("images.sqlite"))?);
     let metrics = Arc::new(Registry::default());
     let state = AppState::new(limits.clone(), Arc::clone(&metrics));
 
-    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build().context("starting the async runtime")?;
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("starting the async runtime")?;
     runtime.block_on(async move {
-        let listener = tokio::net::TcpListener::bind(a.listen).await.with_context(|| format!("binding {}", a.listen))?;
+        let listener = tokio::net::TcpListener::bind(a.listen)
+            .await
+            .with_context(|| format!("binding {}", a.listen))?;
         let local = listener.local_addr()?;
         // Tests and scripts read this line to learn the port when asked for port 0.
         eprintln!("befit: listening on http://{local}");
@@ -100,7 +132,8 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             tokio::task::spawn_blocking(move || {
                 match load_models(&bundles, env, &settings, &metrics) {
                     Ok(models) => {
-                        let engine = Engine::new(models, store, image_root, limits.max_pixels, metrics);
+                        let engine =
+                            Engine::new(models, store, image_root, limits.max_pixels, metrics);
                         state.set_engine(Arc::new(engine));
                         tracing::info!("ready");
                     }
@@ -131,10 +164,11 @@ async fn shutdown_signal() {
     let ctrl_c = tokio::signal::ctrl_c();
     #[cfg(unix)]
     {
-        let mut term = match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-            Ok(term) => term,
-            Err(_) => return std::future::pending().await,
-        };
+        let mut term =
+            match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+                Ok(term) => term,
+                Err(_) => return std::future::pending().await,
+            };
         tokio::select! {
             _ = ctrl_c => {},
             _ = term.recv() => {},
@@ -146,7 +180,10 @@ async fn shutdown_signal() {
 
 pub fn check_bundle(a: CheckBundleArgs) -> anyhow::Result<ExitCode> {
     let env = ort_environment(a.runtime.ort_lib)?;
-    let settings = ModelSettings { workers: 1, ..ModelSettings::default() };
+    let settings = ModelSettings {
+        workers: 1,
+        ..ModelSettings::default()
+    };
     let metrics = Arc::new(Registry::default());
     let models = load_models(&[&a.bundle], env, &settings, &metrics)?;
     let m = &models[0];

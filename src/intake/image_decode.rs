@@ -103,7 +103,11 @@ mod tests {
         let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
         // zlib header 78 9c, an empty final stored block, and the Adler-32 of nothing (1).
         let empty_zlib = [0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01];
-        for (kind, data) in [(&b"IHDR"[..], &ihdr[..]), (b"IDAT", &empty_zlib), (b"IEND", &[])] {
+        for (kind, data) in [
+            (&b"IHDR"[..], &ihdr[..]),
+            (b"IDAT", &empty_zlib),
+            (b"IEND", &[]),
+        ] {
             let mut chunk = kind.to_vec();
             chunk.extend_from_slice(data);
             png.extend_from_slice(&(data.len() as u32).to_be_bytes());

@@ -10,8 +10,8 @@ use crate::bundle::{ImageSpec, ResizeRule};
 ///
 /// `shorter-then-crop` sends the shorter side to `size` and the other to
 /// `round(other * size / shorter)`, then crops the centre at
-/// `round((side - size) / 2)`; rounding is half-to-even, like Python's `round`
-/// that the fixtures' preprocessing uses.
+/// `round((side - size) / 2)`; halves round up (`docs/bundles.md`), as the
+/// fixtures' preprocessing does.
 pub fn to_tensor(image: &RgbImage, spec: &ImageSpec) -> Vec<f32> {
     let size = spec.size;
     let square = match spec.resize {
@@ -24,8 +24,8 @@ pub fn to_tensor(image: &RgbImage, spec: &ImageSpec) -> Vec<f32> {
                 (scaled_side(w, size, h), size)
             };
             let resized = resample::resize(image, new_w, new_h, spec.filter);
-            let left = half_even(f64::from(new_w - size) / 2.0);
-            let top = half_even(f64::from(new_h - size) / 2.0);
+            let left = half_up(f64::from(new_w - size) / 2.0);
+            let top = half_up(f64::from(new_h - size) / 2.0);
             image::imageops::crop_imm(&resized, left, top, size, size).to_image()
         }
     };
@@ -33,11 +33,11 @@ pub fn to_tensor(image: &RgbImage, spec: &ImageSpec) -> Vec<f32> {
 }
 
 fn scaled_side(side: u32, size: u32, shorter: u32) -> u32 {
-    half_even(f64::from(side) * f64::from(size) / f64::from(shorter)).max(size)
+    half_up(f64::from(side) * f64::from(size) / f64::from(shorter)).max(size)
 }
 
-fn half_even(x: f64) -> u32 {
-    x.round_ties_even() as u32
+fn half_up(x: f64) -> u32 {
+    x.round() as u32
 }
 
 fn normalise(image: &RgbImage, spec: &ImageSpec) -> Vec<f32> {
@@ -77,7 +77,9 @@ mod tests {
         let t = to_tensor(&img, &spec(2, ResizeRule::Stretch));
         // Layout [c][y][x], planes of 4; pixel (1,0): (1-0.5)/0.5 = 1, (0-0.25)/0.25 = -1, 0.2/1 = 0.2.
         assert_eq!(t.len(), 12);
-        assert!((t[1] - 1.0).abs() < 1e-6 && (t[5] + 1.0).abs() < 1e-6 && (t[9] - 0.2).abs() < 1e-6);
+        assert!(
+            (t[1] - 1.0).abs() < 1e-6 && (t[5] + 1.0).abs() < 1e-6 && (t[9] - 0.2).abs() < 1e-6
+        );
         assert!((t[0] + 1.0).abs() < 1e-6);
     }
 
@@ -94,9 +96,9 @@ mod tests {
     }
 
     #[test]
-    fn rounding_is_half_to_even_like_python() {
-        assert_eq!(half_even(37.5), 38);
-        assert_eq!(half_even(36.5), 36);
+    fn rounding_takes_halves_up() {
+        assert_eq!(half_up(37.5), 38);
+        assert_eq!(half_up(36.5), 37);
         assert_eq!(scaled_side(640, 224, 480), 299);
     }
 }

@@ -25,7 +25,11 @@ pub enum BaselineError {
 }
 
 /// Advantages `r_i - b_i` of a group's rewards.
-pub fn advantages(rewards: &[f32], baseline: Baseline, greedy_reward: Option<f32>) -> Result<Vec<f32>, BaselineError> {
+pub fn advantages(
+    rewards: &[f32],
+    baseline: Baseline,
+    greedy_reward: Option<f32>,
+) -> Result<Vec<f32>, BaselineError> {
     match baseline {
         Baseline::None => Ok(rewards.to_vec()),
         Baseline::MeanOfOthers => {
@@ -62,13 +66,25 @@ mod tests {
         assert!(a.iter().sum::<f32>().abs() < 1e-5);
         let mean = 3.0;
         assert!((a[1] - 4.0 / 3.0 * (2.0 - mean)).abs() < 1e-6);
-        assert_eq!(advantages(&[1.0], Baseline::MeanOfOthers, None), Err(BaselineError::TooFewSamples));
+        assert_eq!(
+            advantages(&[1.0], Baseline::MeanOfOthers, None),
+            Err(BaselineError::TooFewSamples)
+        );
     }
 
     #[test]
     fn greedy_and_none() {
-        assert_eq!(advantages(&[0.5, 0.25], Baseline::Greedy, Some(0.25)).unwrap(), vec![0.25, 0.0]);
-        assert_eq!(advantages(&[0.5], Baseline::Greedy, None), Err(BaselineError::NoGreedy));
-        assert_eq!(advantages(&[0.5, -1.0], Baseline::None, None).unwrap(), vec![0.5, -1.0]);
+        assert_eq!(
+            advantages(&[0.5, 0.25], Baseline::Greedy, Some(0.25)).unwrap(),
+            vec![0.25, 0.0]
+        );
+        assert_eq!(
+            advantages(&[0.5], Baseline::Greedy, None),
+            Err(BaselineError::NoGreedy)
+        );
+        assert_eq!(
+            advantages(&[0.5, -1.0], Baseline::None, None).unwrap(),
+            vec![0.5, -1.0]
+        );
     }
 }

@@ -44,10 +44,14 @@ impl Scale {
     /// The problem with the scale's parameters, if any.
     pub fn check(&self) -> Result<(), String> {
         match self {
-            Scale::ClipS { weight } | Scale::RefClipS { weight } if !(weight.is_finite() && *weight > 0.0) => {
+            Scale::ClipS { weight } | Scale::RefClipS { weight }
+                if !(weight.is_finite() && *weight > 0.0) =>
+            {
                 Err(format!("weight must be a positive number, got {weight}"))
             }
-            Scale::Affine { a, b } if !(a.is_finite() && b.is_finite()) => Err("a and b must be finite numbers".into()),
+            Scale::Affine { a, b } if !(a.is_finite() && b.is_finite()) => {
+                Err("a and b must be finite numbers".into())
+            }
             _ => Ok(()),
         }
     }

@@ -39,7 +39,12 @@ struct Inner<'a> {
 
 impl ApiError {
     pub fn new(status: StatusCode, code: &'static str, message: impl Into<String>) -> ApiError {
-        ApiError { status, code, message: message.into(), field: None }
+        ApiError {
+            status,
+            code,
+            message: message.into(),
+            field: None,
+        }
     }
 
     /// 400 `invalid_field` blaming `field`.
@@ -49,12 +54,17 @@ impl ApiError {
 
     /// 400 `over_limit` blaming `field`, naming the flag that raises the limit.
     pub fn over_limit(field: impl Into<String>, what: &str, limit: usize, flag: &str) -> ApiError {
-        let message = format!("{what} is over the server's limit of {limit} (raise it with {flag})");
+        let message =
+            format!("{what} is over the server's limit of {limit} (raise it with {flag})");
         ApiError::new(StatusCode::BAD_REQUEST, "over_limit", message).at(field)
     }
 
     pub fn not_ready() -> ApiError {
-        ApiError::new(StatusCode::SERVICE_UNAVAILABLE, "not_ready", "bundles are still loading; retry shortly")
+        ApiError::new(
+            StatusCode::SERVICE_UNAVAILABLE,
+            "not_ready",
+            "bundles are still loading; retry shortly",
+        )
     }
 
     pub fn overloaded(message: impl Into<String>) -> ApiError {
@@ -64,7 +74,11 @@ impl ApiError {
     /// A fault of ours: logged here with its details, answered without them.
     pub fn internal(details: impl std::fmt::Display) -> ApiError {
         tracing::error!(error = %details, "internal error");
-        ApiError::new(StatusCode::INTERNAL_SERVER_ERROR, "internal", "internal error; the server log has details")
+        ApiError::new(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            "internal",
+            "internal error; the server log has details",
+        )
     }
 
     /// Sets the field to blame, unless one is already set.
@@ -78,10 +92,18 @@ impl ApiError {
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let body = Body { error: Inner { code: self.code, message: &self.message, field: self.field.as_deref() } };
+        let body = Body {
+            error: Inner {
+                code: self.code,
+                message: &self.message,
+                field: self.field.as_deref(),
+            },
+        };
         let mut response = (self.status, axum::Json(body)).into_response();
         if self.status == StatusCode::SERVICE_UNAVAILABLE {
-            response.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(RETRY_AFTER_SECONDS));
+            response
+                .headers_mut()
+                .insert(header::RETRY_AFTER, HeaderValue::from(RETRY_AFTER_SECONDS));
         }
         response
     }
@@ -94,23 +116,31 @@ impl From<EngineError> for ApiError {
             EngineError::UnknownModel { .. } => {
                 ApiError::new(StatusCode::NOT_FOUND, "unknown_model", message).at("model")
             }
-            EngineError::UnknownImage(_) => ApiError::new(StatusCode::NOT_FOUND, "unknown_image", message),
-            EngineError::BadImageId(_) => ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message),
+            EngineError::UnknownImage(_) => {
+                ApiError::new(StatusCode::NOT_FOUND, "unknown_image", message)
+            }
+            EngineError::BadImageId(_) => {
+                ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message)
+            }
             EngineError::Decode(DecodeError::TooLarge { .. }) => {
                 ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "image_too_large", message)
             }
-            EngineError::Decode(_) => ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message),
+            EngineError::Decode(_) => {
+                ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message)
+            }
             EngineError::Path(PathError::NoRoot | PathError::Escapes(_)) => {
                 ApiError::new(StatusCode::FORBIDDEN, "path_refused", message)
             }
-            EngineError::Path(_) => ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message),
+            EngineError::Path(_) => {
+                ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message)
+            }
             EngineError::Encode(EncodeError::Overloaded { .. }) => ApiError::overloaded(message),
             EngineError::Encode(EncodeError::Caption { .. }) => {
                 ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message)
             }
-            EngineError::Encode(EncodeError::Failed { .. }) | EngineError::Store(_) | EngineError::Task(_) => {
-                ApiError::internal(message)
-            }
+            EngineError::Encode(EncodeError::Failed { .. })
+            | EngineError::Store(_)
+            | EngineError::Task(_) => ApiError::internal(message),
         }
     }
 }

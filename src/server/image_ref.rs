@@ -25,11 +25,19 @@ impl ImageRef {
             (None, Some(b64), None) => {
                 let bytes = base64::engine::general_purpose::STANDARD
                     .decode(b64.trim())
-                    .map_err(|e| ApiError::invalid(format!("{field}.base64"), format!("not valid base64: {e}")))?;
+                    .map_err(|e| {
+                        ApiError::invalid(
+                            format!("{field}.base64"),
+                            format!("not valid base64: {e}"),
+                        )
+                    })?;
                 Ok(ImageSource::Bytes(Arc::new(bytes)))
             }
             (None, None, Some(path)) => Ok(ImageSource::Path(path.clone())),
-            _ => Err(ApiError::invalid(field, "give exactly one of `id`, `base64` or `path`")),
+            _ => Err(ApiError::invalid(
+                field,
+                "give exactly one of `id`, `base64` or `path`",
+            )),
         }
     }
 }

@@ -27,8 +27,14 @@ pub fn json_rejection(rejection: JsonRejection) -> ApiError {
     match rejection {
         JsonRejection::JsonDataError(e) => {
             let text = e.body_text();
-            let detail = text.strip_prefix("Failed to deserialize the JSON body into the target type: ").unwrap_or(&text);
-            let mut error = ApiError::new(StatusCode::BAD_REQUEST, "bad_json", format!("request shape: {detail}"));
+            let detail = text
+                .strip_prefix("Failed to deserialize the JSON body into the target type: ")
+                .unwrap_or(&text);
+            let mut error = ApiError::new(
+                StatusCode::BAD_REQUEST,
+                "bad_json",
+                format!("request shape: {detail}"),
+            );
             if let Some((path, _)) = detail.split_once(": ") {
                 if !path.contains(' ') && path != "." {
                     error = error.at(path);
@@ -36,9 +42,11 @@ pub fn json_rejection(rejection: JsonRejection) -> ApiError {
             }
             error
         }
-        JsonRejection::JsonSyntaxError(e) => {
-            ApiError::new(StatusCode::BAD_REQUEST, "bad_json", format!("not valid JSON: {}", e.body_text()))
-        }
+        JsonRejection::JsonSyntaxError(e) => ApiError::new(
+            StatusCode::BAD_REQUEST,
+            "bad_json",
+            format!("not valid JSON: {}", e.body_text()),
+        ),
         JsonRejection::MissingJsonContentType(_) => ApiError::new(
             StatusCode::UNSUPPORTED_MEDIA_TYPE,
             "unsupported_media_type",

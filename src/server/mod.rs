@@ -68,22 +68,34 @@ pub async fn run(
     state: AppState,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, app(state)).with_graceful_shutdown(shutdown).await
+    axum::serve(listener, app(state))
+        .with_graceful_shutdown(shutdown)
+        .await
 }
 
 async fn not_found() -> ApiError {
-    ApiError::new(StatusCode::NOT_FOUND, "not_found", "no such route; see proto-free-api.md for the routes")
+    ApiError::new(
+        StatusCode::NOT_FOUND,
+        "not_found",
+        "no such route; see proto-free-api.md for the routes",
+    )
 }
 
 async fn method_not_allowed() -> ApiError {
-    ApiError::new(StatusCode::METHOD_NOT_ALLOWED, "method_not_allowed", "this route does not take that method")
+    ApiError::new(
+        StatusCode::METHOD_NOT_ALLOWED,
+        "method_not_allowed",
+        "this route does not take that method",
+    )
 }
 
 async fn shed_or_timeout(error: BoxError) -> ApiError {
     if error.is::<tower::timeout::error::Elapsed>() {
         ApiError::overloaded("the request took longer than --request-timeout-secs")
     } else if error.is::<tower::load_shed::error::Overloaded>() {
-        ApiError::overloaded("too many requests in flight (--max-inflight); retry after the delay given")
+        ApiError::overloaded(
+            "too many requests in flight (--max-inflight); retry after the delay given",
+        )
     } else {
         ApiError::internal(error)
     }
@@ -100,7 +112,11 @@ async fn record(State(state): State<AppState>, request: Request, next: Next) -> 
     let response = next.run(request).await;
     let status = response.status().as_u16().to_string();
     let metrics = state.metrics();
-    metrics.add("befit_http_requests_total", &[("route", &route), ("method", &method), ("status", &status)], 1);
+    metrics.add(
+        "befit_http_requests_total",
+        &[("route", &route), ("method", &method), ("status", &status)],
+        1,
+    );
     metrics.observe(
         "befit_http_request_seconds",
         &[("route", &route), ("method", &method)],

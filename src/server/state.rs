@@ -22,7 +22,13 @@ struct Shared {
 impl AppState {
     /// State whose engine is set later, once bundles are loaded.
     pub fn new(limits: Limits, metrics: Arc<Registry>) -> AppState {
-        AppState { shared: Arc::new(Shared { engine: OnceLock::new(), limits, metrics }) }
+        AppState {
+            shared: Arc::new(Shared {
+                engine: OnceLock::new(),
+                limits,
+                metrics,
+            }),
+        }
     }
 
     /// Makes the service ready; later calls are ignored.

@@ -20,5 +20,11 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiErr
 }
 
 pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
-    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics().render())
+    (
+        [(
+            header::CONTENT_TYPE,
+            "text/plain; version=0.0.4; charset=utf-8",
+        )],
+        state.metrics().render(),
+    )
 }

@@ -35,7 +35,12 @@ struct RegisteredOut {
 
 impl From<Registered> for RegisteredOut {
     fn from(r: Registered) -> Self {
-        RegisteredOut { id: r.id, width: r.width, height: r.height, new: r.new }
+        RegisteredOut {
+            id: r.id,
+            width: r.width,
+            height: r.height,
+            new: r.new,
+        }
     }
 }
 
@@ -45,8 +50,16 @@ pub async fn register(
     body: Bytes,
 ) -> Result<Json<RegisterResponse>, ApiError> {
     let engine = state.engine()?;
-    let content_type = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
-    let mime = content_type.split(';').next().unwrap_or("").trim().to_ascii_lowercase();
+    let content_type = headers
+        .get(header::CONTENT_TYPE)
+        .and_then(|v| v.to_str().ok())
+        .unwrap_or("");
+    let mime = content_type
+        .split(';')
+        .next()
+        .unwrap_or("")
+        .trim()
+        .to_ascii_lowercase();
     let (sources, model_name) = match mime.as_str() {
         "application/json" => {
             let request: RegisterRequest = parse_json(&headers, body).await?;
@@ -83,15 +96,24 @@ pub async fn register(
         }
     };
     let model = engine.model(model_name.as_deref())?;
-    let registered = futures::future::try_join_all(sources.into_iter().map(|(field, source)| async move {
-        engine.register(source, Some(model)).await.map_err(|e| ApiError::from(e).at(field))
+    let registered =
+        futures::future::try_join_all(sources.into_iter().map(|(field, source)| async move {
+            engine
+                .register(source, Some(model))
+                .await
+                .map_err(|e| ApiError::from(e).at(field))
+        }))
+        .await?;
+    Ok(Json(RegisterResponse {
+        images: registered.into_iter().map(RegisteredOut::from).collect(),
     }))
-    .await?;
-    Ok(Json(RegisterResponse { images: registered.into_iter().map(RegisteredOut::from).collect() }))
 }
 
 /// Parses an already-read body through the same rejections as `ApiJson`.
-async fn parse_json<T: serde::de::DeserializeOwned>(headers: &HeaderMap, body: Bytes) -> Result<T, ApiError> {
+async fn parse_json<T: serde::de::DeserializeOwned>(
+    headers: &HeaderMap,
+    body: Bytes,
+) -> Result<T, ApiError> {
     let mut request = axum::http::Request::new(axum::body::Body::from(body));
     *request.headers_mut() = headers.clone();
     match <axum::Json<T> as axum::extract::FromRequest<()>>::from_request(request, &()).await {

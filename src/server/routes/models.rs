@@ -38,5 +38,7 @@ pub async fn list(State(state): State<AppState>) -> Result<Json<Value>, ApiError
             })
         })
         .collect();
-    Ok(Json(json!({"default": engine.models()[0].id, "models": models})))
+    Ok(Json(
+        json!({"default": engine.models()[0].id, "models": models}),
+    ))
 }

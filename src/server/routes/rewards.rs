@@ -72,24 +72,44 @@ fn validate(request: &RewardsRequest, limits: &Limits) -> Result<(), ApiError> {
         return Err(ApiError::invalid("groups", "give at least one group"));
     }
     if request.groups.len() > limits.max_groups {
-        return Err(ApiError::over_limit("groups", "number of groups", limits.max_groups, "--max-groups"));
+        return Err(ApiError::over_limit(
+            "groups",
+            "number of groups",
+            limits.max_groups,
+            "--max-groups",
+        ));
     }
-    request.scale.check().map_err(|m| ApiError::invalid("scale", m))?;
+    request
+        .scale
+        .check()
+        .map_err(|m| ApiError::invalid("scale", m))?;
     let mut total = 0usize;
     for (g, group) in request.groups.iter().enumerate() {
         let field = |name: &str| format!("groups[{g}].{name}");
         if group.captions.is_empty() {
-            return Err(ApiError::invalid(field("captions"), "give at least one caption"));
+            return Err(ApiError::invalid(
+                field("captions"),
+                "give at least one caption",
+            ));
         }
         if request.scale.needs_references() && group.references.is_empty() {
-            return Err(ApiError::invalid(field("references"), "the ref-clip-s scale needs reference captions"));
+            return Err(ApiError::invalid(
+                field("references"),
+                "the ref-clip-s scale needs reference captions",
+            ));
         }
         match request.baseline {
             Baseline::MeanOfOthers if group.captions.len() < 2 => {
-                return Err(ApiError::invalid(field("captions"), BaselineError::TooFewSamples.to_string()));
+                return Err(ApiError::invalid(
+                    field("captions"),
+                    BaselineError::TooFewSamples.to_string(),
+                ));
             }
             Baseline::Greedy if group.greedy.is_none() => {
-                return Err(ApiError::invalid(field("greedy"), BaselineError::NoGreedy.to_string()));
+                return Err(ApiError::invalid(
+                    field("greedy"),
+                    BaselineError::NoGreedy.to_string(),
+                ));
             }
             _ => {}
         }
@@ -98,17 +118,31 @@ fn validate(request: &RewardsRequest, limits: &Limits) -> Result<(), ApiError> {
         let texts = texts.chain(group.greedy.iter().map(|c| ("greedy", c)));
         for (i, (kind, text)) in texts.enumerate() {
             total += 1;
-            let at = if kind == "greedy" { field(kind) } else { format!("{}[{}]", field(kind), position(group, kind, i)) };
+            let at = if kind == "greedy" {
+                field(kind)
+            } else {
+                format!("{}[{}]", field(kind), position(group, kind, i))
+            };
             if text.trim().is_empty() {
                 return Err(ApiError::invalid(at, "captions must not be empty"));
             }
             if text.len() > limits.max_caption_bytes {
-                return Err(ApiError::over_limit(at, "caption length in bytes", limits.max_caption_bytes, "--max-caption-bytes"));
+                return Err(ApiError::over_limit(
+                    at,
+                    "caption length in bytes",
+                    limits.max_caption_bytes,
+                    "--max-caption-bytes",
+                ));
             }
         }
     }
     if total > limits.max_captions {
-        return Err(ApiError::over_limit("groups", "number of captions", limits.max_captions, "--max-captions"));
+        return Err(ApiError::over_limit(
+            "groups",
+            "number of captions",
+            limits.max_captions,
+            "--max-captions",
+        ));
     }
     Ok(())
 }
@@ -121,13 +155,21 @@ fn position(group: &GroupIn, kind: &str, i: usize) -> usize {
     }
 }
 
-pub async fn score(State(state): State<AppState>, ApiJson(request): ApiJson<RewardsRequest>) -> Result<Json<RewardsResponse>, ApiError> {
+pub async fn score(
+    State(state): State<AppState>,
+    ApiJson(request): ApiJson<RewardsRequest>,
+) -> Result<Json<RewardsResponse>, ApiError> {
     let engine = state.engine()?;
     validate(&request, state.limits())?;
     let model = engine.model(request.model.as_deref())?;
     if let Some(name) = &request.remap {
         // No continuity map is registered under any name yet.
-        return Err(ApiError::new(axum::http::StatusCode::NOT_FOUND, "unknown_map", format!("no reward map named {name:?}")).at("remap"));
+        return Err(ApiError::new(
+            axum::http::StatusCode::NOT_FOUND,
+            "unknown_map",
+            format!("no reward map named {name:?}"),
+        )
+        .at("remap"));
     }
     let sources = request
         .groups
@@ -135,9 +177,13 @@ pub async fn score(State(state): State<AppState>, ApiJson(request): ApiJson<Rewa
         .enumerate()
         .map(|(g, group)| group.image.source(&format!("groups[{g}].image")))
         .collect::<Result<Vec<_>, _>>()?;
-    let images = futures::future::try_join_all(sources.iter().enumerate().map(|(g, source)| async move {
-        engine.image_vector(model, source).await.map_err(|e| ApiError::from(e).at(format!("groups[{g}].image")))
-    }));
+    let images =
+        futures::future::try_join_all(sources.iter().enumerate().map(|(g, source)| async move {
+            engine
+                .image_vector(model, source)
+                .await
+                .map_err(|e| ApiError::from(e).at(format!("groups[{g}].image")))
+        }));
     // Every caption of the request in one submission, so they share encoder batches.
     let mut texts: Vec<String> = Vec::new();
     for group in &request.groups {
@@ -161,24 +207,40 @@ pub async fn score(State(state): State<AppState>, ApiJson(request): ApiJson<Rewa
         });
         let score_one = |v: &[f32]| {
             let cosine = dot(v, &image);
-            let reference = references.iter().map(|r| dot(v, &r.vector)).reduce(f32::max);
+            let reference = references
+                .iter()
+                .map(|r| dot(v, &r.vector))
+                .reduce(f32::max);
             (cosine, request.scale.reward(cosine, reference))
         };
         let scored: Vec<(f32, f32)> = samples.iter().map(|s| score_one(&s.vector)).collect();
         let greedy_out = greedy.map(|g| {
             let (cosine, reward) = score_one(&g.vector);
-            Scored { cosine, reward, truncated: g.truncated }
+            Scored {
+                cosine,
+                reward,
+                truncated: g.truncated,
+            }
         });
         let rewards: Vec<f32> = scored.iter().map(|(_, r)| *r).collect();
-        let advantage = advantages(&rewards, request.baseline, greedy_out.as_ref().map(|g| g.reward))
-            .map_err(|e| ApiError::invalid("baseline", e.to_string()))?;
+        let advantage = advantages(
+            &rewards,
+            request.baseline,
+            greedy_out.as_ref().map(|g| g.reward),
+        )
+        .map_err(|e| ApiError::invalid("baseline", e.to_string()))?;
         groups.push(GroupOut {
             image: image_id,
             samples: scored
                 .iter()
                 .zip(samples)
                 .zip(advantage)
-                .map(|(((cosine, reward), s), advantage)| Sample { cosine: *cosine, reward: *reward, advantage, truncated: s.truncated })
+                .map(|(((cosine, reward), s), advantage)| Sample {
+                    cosine: *cosine,
+                    reward: *reward,
+                    advantage,
+                    truncated: s.truncated,
+                })
                 .collect(),
             greedy: greedy_out,
         });

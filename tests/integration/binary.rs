@@ -1,0 +1,136 @@
+//! End-to-end against the real `befit` binary on port 0.
+
+use std::process::Command;
+
+use serde_json::{json, Value};
+
+use crate::util::*;
+
+fn post(url: &str, path: &str, body: &Value) -> (u16, Value) {
+    let r = reqwest::blocking::Client::new()
+        .post(format!("{url}{path}"))
+        .json(body)
+        .send()
+        .unwrap();
+    let status = r.status().as_u16();
+    (status, r.json().unwrap_or(Value::Null))
+}
+
+#[test]
+fn registered_images_survive_a_restart() {
+    let data = tempfile::tempdir().unwrap();
+    let bundle = bundle_dir("blocks-v1");
+    let args = [
+        "--bundle",
+        bundle.to_str().unwrap(),
+        "--data-dir",
+        data.path().to_str().unwrap(),
+    ];
+    let row = &probe_rows("probe.jsonl")[5];
+    let bytes = read(probe_dir().join(&row.image));
+    let (id, cosine) = {
+        let server = Server::start(&args);
+        let (status, reg) = post(
+            &server.url,
+            "/v1/images",
+            &json!({"images": [{"base64": b64(&bytes)}]}),
+        );
+        assert_eq!(status, 200, "{reg}");
+        let id = reg["images"][0]["id"].as_str().unwrap().to_string();
+        let (_, r) = post(
+            &server.url,
+            "/v1/rewards",
+            &json!({"groups": [{"image": {"id": id}, "captions": [row.captions[0]]}]}),
+        );
+        (id, r["groups"][0]["samples"][0]["cosine"].as_f64().unwrap())
+    };
+    let server = Server::start(&args);
+    let (status, r) = post(
+        &server.url,
+        "/v1/rewards",
+        &json!({"groups": [{"image": {"id": id}, "captions": [row.captions[0]]}]}),
+    );
+    assert_eq!(status, 200, "{r}");
+    assert_eq!(
+        r["groups"][0]["samples"][0]["cosine"].as_f64().unwrap(),
+        cosine
+    );
+    let (_, again) = post(
+        &server.url,
+        "/v1/images",
+        &json!({"images": [{"base64": b64(&bytes)}]}),
+    );
+    assert_eq!(again["images"][0]["new"], false);
+}
+
+#[test]
+fn a_missing_runtime_library_is_a_clear_error() {
+    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args([
+            "check-bundle",
+            bundle_dir("blocks-v1").to_str().unwrap(),
+            "--ort-lib",
+            "/nowhere/libonnxruntime.so",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("ONNX Runtime library not found") && stderr.contains("make ort"),
+        "{stderr}"
+    );
+}
+
+#[test]
+fn a_bundle_that_disagrees_with_its_graph_names_file_and_field() {
+    let dir = tempfile::tempdir().unwrap();
+    let src = bundle_dir("blocks-v1");
+    for entry in std::fs::read_dir(&src).unwrap() {
+        let entry = entry.unwrap();
+        std::fs::copy(entry.path(), dir.path().join(entry.file_name())).unwrap();
+    }
+    let manifest = std::fs::read_to_string(dir.path().join("bundle.toml")).unwrap();
+    let dimension_line = manifest
+        .lines()
+        .find(|l| l.trim_start().starts_with("dimension"))
+        .unwrap()
+        .to_string();
+    std::fs::write(
+        dir.path().join("bundle.toml"),
+        manifest.replace(&dimension_line, "dimension = 65"),
+    )
+    .unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args([
+            "check-bundle",
+            dir.path().to_str().unwrap(),
+            "--ort-lib",
+            ort_lib().to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("bundle.toml: field `image.output`") && stderr.contains("expected 65"),
+        "{stderr}"
+    );
+
+    let good = Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args([
+            "check-bundle",
+            src.to_str().unwrap(),
+            "--ort-lib",
+            ort_lib().to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert!(
+        good.status.success(),
+        "{}",
+        String::from_utf8_lossy(&good.stderr)
+    );
+    let report: Value = serde_json::from_slice(&good.stdout).unwrap();
+    assert_eq!(report["id"], "blocks@v1");
+}

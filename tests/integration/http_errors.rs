@@ -1,0 +1,440 @@
+//! Every error row of `proto-free-api.md`: status, code, a message that helps,
+//! and the server still answering afterwards.
+
+use serde_json::{json, Value};
+
+use befit::server::Limits;
+
+use crate::util::*;
+
+async fn expect(
+    state: &befit::server::AppState,
+    method: &str,
+    uri: &str,
+    ctype: &str,
+    body: Vec<u8>,
+    status: u16,
+    code: &str,
+    needle: &str,
+) -> Value {
+    let (got, headers, json) = call(state, method, uri, ctype, body).await;
+    assert_eq!(got.as_u16(), status, "{uri}: {json}");
+    assert_eq!(json["error"]["code"], code, "{uri}: {json}");
+    let message = json["error"]["message"].as_str().unwrap();
+    assert!(
+        message.contains(needle),
+        "{uri}: message {message:?} should mention {needle:?}"
+    );
+    if status == 503 {
+        assert_eq!(headers["retry-after"], "1");
+    }
+    json
+}
+
+fn j(v: Value) -> Vec<u8> {
+    serde_json::to_vec(&v).unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn every_error_row_has_its_status_and_a_useful_message() {
+    let limits = Limits {
+        max_body_bytes: 64 * 1024,
+        max_groups: 4,
+        max_captions: 8,
+        max_caption_bytes: 100,
+        ..Limits::default()
+    };
+    let state = state_with(&["blocks-v1"], limits);
+    let row = &probe_rows("probe.jsonl")[0];
+    let good_image = json!({"path": row.image});
+    let s = &state;
+    let ct = "application/json";
+
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        b"{not json".to_vec(),
+        400,
+        "bad_json",
+        "not valid JSON",
+    )
+    .await;
+    let e = expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": good_image, "captions": "a red ring"}]})),
+        400,
+        "bad_json",
+        "groups[0].captions",
+    )
+    .await;
+    assert_eq!(e["error"]["field"], "groups[0].captions");
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [], "colour": 1})),
+        400,
+        "bad_json",
+        "colour",
+    )
+    .await;
+    let e = expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": good_image, "captions": []}]})),
+        400,
+        "invalid_field",
+        "at least one caption",
+    )
+    .await;
+    assert_eq!(e["error"]["field"], "groups[0].captions");
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": good_image, "captions": ["  "]}]})),
+        400,
+        "invalid_field",
+        "empty",
+    )
+    .await;
+    expect(s, "POST", "/v1/rewards", ct, j(json!({"baseline": "mean-of-others", "groups": [{"image": good_image, "captions": ["a"]}]})), 400, "invalid_field", "at least 2").await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"baseline": "greedy", "groups": [{"image": good_image, "captions": ["a"]}]})),
+        400,
+        "invalid_field",
+        "greedy",
+    )
+    .await;
+    expect(s, "POST", "/v1/rewards", ct, j(json!({"scale": {"kind": "ref-clip-s"}, "groups": [{"image": good_image, "captions": ["a"]}]})), 400, "invalid_field", "reference").await;
+    expect(s, "POST", "/v1/rewards", ct, j(json!({"scale": {"kind": "clip-s", "weight": -1}, "groups": [{"image": good_image, "captions": ["a"]}]})), 400, "invalid_field", "positive").await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"id": "abc"}, "captions": ["a"]}]})),
+        400,
+        "invalid_field",
+        "not an image id",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"id": "ab", "path": "x"}, "captions": ["a"]}]})),
+        400,
+        "invalid_field",
+        "exactly one",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"base64": "@@@"}, "captions": ["a"]}]})),
+        400,
+        "invalid_field",
+        "base64",
+    )
+    .await;
+    // Limits, each naming its flag.
+    let five: Vec<Value> = (0..5)
+        .map(|_| json!({"image": good_image, "captions": ["a"]}))
+        .collect();
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": five})),
+        400,
+        "over_limit",
+        "--max-groups",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": good_image, "captions": vec!["a"; 9]}]})),
+        400,
+        "over_limit",
+        "--max-captions",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": good_image, "captions": ["x".repeat(101)]}]})),
+        400,
+        "over_limit",
+        "--max-caption-bytes",
+    )
+    .await;
+    // Paths.
+    let e = expect(s, "POST", "/v1/rewards", ct, j(json!({"groups": [{"image": {"path": "../models/blocks-v1/bundle.toml"}, "captions": ["a"]}]})), 403, "path_refused", "leaves the image root").await;
+    assert_eq!(e["error"]["field"], "groups[0].image");
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"path": "images/none.png"}, "captions": ["a"]}]})),
+        422,
+        "bad_image",
+        "no image file",
+    )
+    .await;
+    // Unknowns.
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"id": "0".repeat(64)}, "captions": ["a"]}]})),
+        404,
+        "unknown_image",
+        "register it first",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"model": "nope", "groups": [{"image": good_image, "captions": ["a"]}]})),
+        404,
+        "unknown_model",
+        "blocks@v1",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"remap": "old", "groups": [{"image": good_image, "captions": ["a"]}]})),
+        404,
+        "unknown_map",
+        "old",
+    )
+    .await;
+    expect(
+        s,
+        "GET",
+        "/v1/nothing",
+        "",
+        vec![],
+        404,
+        "not_found",
+        "no such route",
+    )
+    .await;
+    expect(
+        s,
+        "GET",
+        "/v1/rewards",
+        "",
+        vec![],
+        405,
+        "method_not_allowed",
+        "method",
+    )
+    .await;
+    // Size and type.
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        vec![b' '; 70 * 1024],
+        413,
+        "body_too_large",
+        "--max-body-bytes",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/images",
+        "image/png",
+        vec![0u8; 70 * 1024],
+        413,
+        "body_too_large",
+        "--max-body-bytes",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        "text/plain",
+        j(json!({})),
+        415,
+        "unsupported_media_type",
+        "application/json",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/images",
+        "text/plain",
+        b"x".to_vec(),
+        415,
+        "unsupported_media_type",
+        "image/png",
+    )
+    .await;
+    // Images that are not images, or too large.
+    expect(
+        s,
+        "POST",
+        "/v1/images",
+        "image/png",
+        b"definitely not a png".to_vec(),
+        422,
+        "bad_image",
+        "not a PNG, JPEG or WebP",
+    )
+    .await;
+    let huge = huge_png(50_000, 50_000);
+    expect(
+        s,
+        "POST",
+        "/v1/images",
+        "image/png",
+        huge.clone(),
+        422,
+        "image_too_large",
+        "--max-pixels",
+    )
+    .await;
+    expect(
+        s,
+        "POST",
+        "/v1/rewards",
+        ct,
+        j(json!({"groups": [{"image": {"base64": b64(&huge)}, "captions": ["a"]}]})),
+        422,
+        "image_too_large",
+        "2500000000",
+    )
+    .await;
+
+    // Still answering, and correctly.
+    let (status, ok) = post_json(
+        s,
+        "/v1/rewards",
+        &json!({"groups": [{"image": good_image, "captions": [row.captions[0]]}]}),
+    )
+    .await;
+    assert_eq!(status, 200, "{ok}");
+    assert!(ok["groups"][0]["samples"][0]["cosine"].as_f64().unwrap() > 0.0);
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn paths_are_refused_without_an_image_root() {
+    let state = {
+        use befit::encoders::Engine;
+        use std::sync::Arc;
+        let metrics = Arc::new(befit::metrics::Registry::default());
+        let state = befit::server::AppState::new(Limits::default(), Arc::clone(&metrics));
+        let store = Arc::new(befit::store::images::ImageStore::in_memory().unwrap());
+        state.set_engine(Arc::new(Engine::new(
+            vec![model("blocks-v1")],
+            store,
+            None,
+            Limits::default().max_pixels,
+            metrics,
+        )));
+        state
+    };
+    let body = j(json!({"groups": [{"image": {"path": "images/00000.png"}, "captions": ["a"]}]}));
+    expect(
+        &state,
+        "POST",
+        "/v1/rewards",
+        "application/json",
+        body,
+        403,
+        "path_refused",
+        "--image-root",
+    )
+    .await;
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn not_ready_until_the_engine_is_set() {
+    let state = befit::server::AppState::new(Limits::default(), Default::default());
+    expect(
+        &state,
+        "GET",
+        "/readyz",
+        "",
+        vec![],
+        503,
+        "not_ready",
+        "loading",
+    )
+    .await;
+    let (status, _, _) = call(&state, "GET", "/healthz", "", vec![]).await;
+    assert_eq!(status, 200);
+}
+
+/// A PNG declaring `w x h` pixels with an empty image stream (see intake::image_decode's tests).
+fn huge_png(w: u32, h: u32) -> Vec<u8> {
+    fn crc32(data: &[u8]) -> u32 {
+        let mut crc = 0xFFFF_FFFFu32;
+        for &byte in data {
+            crc ^= u32::from(byte);
+            for _ in 0..8 {
+                crc = if crc & 1 == 1 {
+                    (crc >> 1) ^ 0xEDB8_8320
+                } else {
+                    crc >> 1
+                };
+            }
+        }
+        !crc
+    }
+    let mut ihdr = w.to_be_bytes().to_vec();
+    ihdr.extend_from_slice(&h.to_be_bytes());
+    ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
+    let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
+    for (kind, data) in [
+        (&b"IHDR"[..], &ihdr[..]),
+        (
+            b"IDAT",
+            &[0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01][..],
+        ),
+        (b"IEND", &[][..]),
+    ] {
+        let mut chunk = kind.to_vec();
+        chunk.extend_from_slice(data);
+        png.extend_from_slice(&(data.len() as u32).to_be_bytes());
+        png.extend_from_slice(&chunk);
+        png.extend_from_slice(&crc32(&chunk).to_be_bytes());
+    }
+    png
+}

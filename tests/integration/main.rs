@@ -1,0 +1,12 @@
+//! befit's integration tests, one binary: shared set-up in `util`, one module
+//! per concern. They need the committed fixtures and the ONNX Runtime library
+//! (`make ort`, or ORT_DYLIB_PATH).
+
+mod util;
+
+mod binary;
+mod concurrency;
+mod contrast;
+mod http_errors;
+mod http_rewards;
+mod parity;

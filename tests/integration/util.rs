@@ -1,0 +1,236 @@
+//! Shared set-up: fixtures, ONNX Runtime, models, an in-process router, and
+//! the real binary on port 0.
+
+#![allow(dead_code)]
+
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::{Arc, OnceLock};
+use std::time::{Duration, Instant};
+
+use axum::body::Body;
+use axum::http::{Request, StatusCode};
+use befit::bundle::Bundle;
+use befit::encoders::{Engine, Model, ModelSettings};
+use befit::intake::image_root::ImageRoot;
+use befit::metrics::Registry;
+use befit::runtime::LibrarySearch;
+use befit::server::{AppState, Limits};
+use befit::store::images::ImageStore;
+use http_body_util::BodyExt;
+use serde_json::Value;
+use tower::ServiceExt;
+
+pub fn repo() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+pub fn fixtures() -> PathBuf {
+    repo().join("fixtures")
+}
+
+pub fn bundle_dir(name: &str) -> PathBuf {
+    fixtures().join("models").join(name)
+}
+
+pub fn probe_dir() -> PathBuf {
+    fixtures().join("probe")
+}
+
+/// The ONNX Runtime library, as the binary would find it from the repository.
+pub fn ort_lib() -> PathBuf {
+    let env = std::env::var_os("ORT_DYLIB_PATH")
+        .filter(|v| !v.is_empty())
+        .map(PathBuf::from);
+    LibrarySearch {
+        flag: None,
+        env,
+        roots: vec![repo()],
+    }
+    .locate()
+    .unwrap_or_else(|e| panic!("{e}"))
+}
+
+pub fn ort_env() -> &'static ort::environment::Environment {
+    befit::runtime::environment(&ort_lib()).unwrap_or_else(|e| panic!("{e}"))
+}
+
+/// One loaded model per bundle and settings, shared by the tests of this binary.
+pub fn model(name: &str) -> Arc<Model> {
+    static MODELS: OnceLock<std::sync::Mutex<Vec<(String, Arc<Model>)>>> = OnceLock::new();
+    let cache = MODELS.get_or_init(Default::default);
+    let mut cache = cache.lock().unwrap();
+    if let Some((_, m)) = cache.iter().find(|(n, _)| n == name) {
+        return Arc::clone(m);
+    }
+    let bundle = Bundle::open(&bundle_dir(name)).unwrap();
+    let settings = ModelSettings {
+        workers: 2,
+        caption_cache: 0,
+        ..ModelSettings::default()
+    };
+    let m =
+        Arc::new(Model::load(bundle, ort_env(), &settings, Arc::new(Registry::default())).unwrap());
+    cache.push((name.to_string(), Arc::clone(&m)));
+    m
+}
+
+/// A ready state over fresh in-memory stores, with the probe folder as image root.
+pub fn state_with(models: &[&str], limits: Limits) -> AppState {
+    let metrics = Arc::new(Registry::default());
+    let state = AppState::new(limits.clone(), Arc::clone(&metrics));
+    let models = models.iter().map(|n| model(n)).collect();
+    let store = Arc::new(ImageStore::in_memory().unwrap());
+    let root = Some(ImageRoot::new(&probe_dir()).unwrap());
+    state.set_engine(Arc::new(Engine::new(
+        models,
+        store,
+        root,
+        limits.max_pixels,
+        metrics,
+    )));
+    state
+}
+
+pub fn state() -> AppState {
+    state_with(&["blocks-v1"], Limits::default())
+}
+
+/// Sends one request through the router; returns status, headers and JSON body (Null when not JSON).
+pub async fn call(
+    state: &AppState,
+    method: &str,
+    uri: &str,
+    content_type: &str,
+    body: Vec<u8>,
+) -> (StatusCode, axum::http::HeaderMap, Value) {
+    let request = Request::builder()
+        .method(method)
+        .uri(uri)
+        .header("content-type", content_type)
+        .body(Body::from(body))
+        .unwrap();
+    let response = befit::server::app(state.clone())
+        .oneshot(request)
+        .await
+        .unwrap();
+    let status = response.status();
+    let headers = response.headers().clone();
+    let bytes = response.into_body().collect().await.unwrap().to_bytes();
+    let json = serde_json::from_slice(&bytes).unwrap_or(Value::Null);
+    (status, headers, json)
+}
+
+pub async fn post_json(state: &AppState, uri: &str, body: &Value) -> (StatusCode, Value) {
+    let (status, _, json) = call(
+        state,
+        "POST",
+        uri,
+        "application/json",
+        serde_json::to_vec(body).unwrap(),
+    )
+    .await;
+    (status, json)
+}
+
+/// One probe row.
+#[derive(Debug, Clone, serde::Deserialize)]
+pub struct ProbeRow {
+    pub image: String,
+    pub captions: Vec<String>,
+    #[serde(default)]
+    pub contrasts: Vec<Contrast>,
+}
+
+#[derive(Debug, Clone, serde::Deserialize)]
+pub struct Contrast {
+    pub caption: String,
+    pub changed: String,
+    pub from: usize,
+}
+
+pub fn probe_rows(file: &str) -> Vec<ProbeRow> {
+    let text = std::fs::read_to_string(probe_dir().join(file)).unwrap();
+    text.lines()
+        .filter(|l| !l.trim().is_empty())
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+/// The real binary, serving on a free port; killed on drop.
+pub struct Server {
+    pub child: Child,
+    pub url: String,
+}
+
+impl Server {
+    pub fn start(args: &[&str]) -> Server {
+        let mut child = Command::new(env!("CARGO_BIN_EXE_befit"))
+            .arg("serve")
+            .args(["--listen", "127.0.0.1:0", "--ort-lib"])
+            .arg(ort_lib())
+            .args(args)
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .spawn()
+            .expect("start befit");
+        let stderr = child.stderr.take().unwrap();
+        let (tx, rx) = std::sync::mpsc::channel();
+        std::thread::spawn(move || {
+            let mut sent = false;
+            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
+                if !sent {
+                    if let Some(url) = line.strip_prefix("befit: listening on ") {
+                        let _ = tx.send(url.to_string());
+                        sent = true;
+                    }
+                }
+            }
+        });
+        let url = rx
+            .recv_timeout(Duration::from_secs(30))
+            .expect("befit did not print its address");
+        let server = Server { child, url };
+        server.wait_ready();
+        server
+    }
+
+    fn wait_ready(&self) {
+        let client = reqwest::blocking::Client::new();
+        let deadline = Instant::now() + Duration::from_secs(60);
+        while Instant::now() < deadline {
+            if let Ok(r) = client.get(format!("{}/readyz", self.url)).send() {
+                if r.status() == 200 {
+                    return;
+                }
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        panic!("befit did not become ready");
+    }
+
+    pub fn kill(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        self.kill();
+    }
+}
+
+pub fn read(path: impl AsRef<Path>) -> Vec<u8> {
+    std::fs::read(path.as_ref()).unwrap_or_else(|e| panic!("{}: {e}", path.as_ref().display()))
+}
+
+pub fn b64(bytes: &[u8]) -> String {
+    use base64::Engine as _;
+    base64::engine::general_purpose::STANDARD.encode(bytes)
+}
+
+pub fn cosine(a: &[f32], b: &[f32]) -> f64 {
+    befit::vectors::cosine(a, b) as f64
+}
