@@ -3,17 +3,23 @@ checks captions against a scene's known facts.
 
 Captions follow the blocks world's caption grammar (`tools/blocksworld/
 captions.py`): the vocabulary below is that grammar's, first wording of each
-word, and the policy writes three of its templates,
+word, and the policy writes four of its templates. A *list* caption names the
+count and every piece:
 
-- one piece:    "one piece: a small red circle"                       (count_colon)
-- two pieces:   "two pieces on the table, with a small red circle
-                 to the left of a large blue ring"                    (with)
-- three pieces: "a small red circle to the left of a large blue ring,
-                 and a small green cross"                             (and_third)
+- "one piece: a small red circle"                                  (count_colon)
+- "three pieces: a small red circle, a large blue ring and a small green cross"
 
-so every caption it writes states a count (by number or by listing), every
-piece it mentions in full, and a relation between its first two pieces from
-two pieces on.
+a *relation* caption (two pieces or more) puts a relation between the first
+two pieces:
+
+- "two pieces on the table, with a small red circle to the left of
+   a large blue ring"                                              (with)
+- "a small red circle to the left of a large blue ring, and a small
+   green cross"                                                    (and_third)
+
+so every caption it writes states a count (by number or by listing) and every
+piece it mentions in full; which form to use is one more choice of the
+policy.
 
 The judge (`parse`, `judge`) reads any caption of that grammar, paraphrases
 included, and compares what it claims with the scene facts of `probe.jsonl`;
@@ -21,8 +27,8 @@ it never asks befit. A caption is *correct* when every fact it states is true
 and it mentions exactly the pieces on the table.
 
 The policy is a per-image factorised distribution: independent softmax
-logits per image for each slot (count; size, colour, shape of pieces 1..3;
-relation), trained with REINFORCE.
+logits per image for each slot (count; form; size, colour, shape of pieces
+1..3; relation), trained with REINFORCE.
 """
 
 from __future__ import annotations
@@ -170,9 +176,12 @@ def judge(caption: str, scene: dict) -> Verdict:
 
 # -- captions from slots -------------------------------------------------------
 
-# Slot layout of one caption: count, then size/colour/shape of pieces 1..3, then relation.
+FORMS = ("list", "relation")
+
+# Slot layout of one caption: count, form, size/colour/shape of pieces 1..3, relation.
 SLOTS: Tuple[Tuple[str, Tuple[str, ...]], ...] = (
     ("count", ("1", "2", "3")),
+    ("form", FORMS),
     *(
         (f"{attr}{k}", values)
         for k in range(3)
@@ -183,24 +192,26 @@ SLOTS: Tuple[Tuple[str, Tuple[str, ...]], ...] = (
 SLOT_SIZES = np.array([len(v) for _, v in SLOTS])
 SLOT_OFFSETS = np.concatenate([[0], np.cumsum(SLOT_SIZES)[:-1]])
 N_LOGITS = int(SLOT_SIZES.sum())
-COUNT_SLOT, RELATION_SLOT = 0, len(SLOTS) - 1
+COUNT_SLOT, FORM_SLOT, RELATION_SLOT = 0, 1, len(SLOTS) - 1
 
 
 def piece_slots(k: int) -> Tuple[int, int, int]:
     """Slot indices of the size, colour and shape of piece k (0-based)."""
-    return (1 + 3 * k, 2 + 3 * k, 3 + 3 * k)
+    return (2 + 3 * k, 3 + 3 * k, 4 + 3 * k)
 
 
 def used_slots(actions: np.ndarray) -> np.ndarray:
     """Mask (..., n_slots) of the slots a caption uses: the count, the
-    pieces it lists, and the relation from two pieces on."""
+    pieces it lists, the form from two pieces on, and the relation when the
+    form is "relation"."""
     n = actions[..., COUNT_SLOT] + 1
     mask = np.zeros(actions.shape, dtype=bool)
     mask[..., COUNT_SLOT] = True
+    mask[..., FORM_SLOT] = n >= 2
     for k in range(3):
         for s in piece_slots(k):
             mask[..., s] = n > k
-    mask[..., RELATION_SLOT] = n >= 2
+    mask[..., RELATION_SLOT] = (n >= 2) & (actions[..., FORM_SLOT] == FORMS.index("relation"))
     return mask
 
 
@@ -215,12 +226,26 @@ def render(action: Sequence[int]) -> str:
         _phrase(SIZES[action[a]], COLOURS[action[b]], SHAPES[action[c]])
         for a, b, c in (piece_slots(k) for k in range(n))
     ]
-    if n == 1:
-        return f"one piece: {pieces[0]}"
+    if n == 1 or FORMS[action[FORM_SLOT]] == "list":
+        noun = "piece" if n == 1 else "pieces"
+        listing = pieces[0] if n == 1 else ", ".join(pieces[:-1]) + " and " + pieces[-1]
+        return f"{COUNT_WORDS[n][0]} {noun}: {listing}"
     rel = RELATION_WORDS[RELATIONS[action[RELATION_SLOT]]][0]
     if n == 2:
         return f"two pieces on the table, with {pieces[0]} {rel} {pieces[1]}"
     return f"{pieces[0]} {rel} {pieces[1]}, and {pieces[2]}"
+
+
+def true_action(scene: dict) -> np.ndarray:
+    """The list caption of a scene's own facts, as slot choices: what a
+    perfect policy could write (pieces in the scene's order)."""
+    action = np.zeros(len(SLOTS), dtype=np.int64)
+    action[COUNT_SLOT] = scene["count"] - 1
+    action[FORM_SLOT] = FORMS.index("list")
+    for k, piece in enumerate(scene["pieces"]):
+        a, b, c = piece_slots(k)
+        action[a], action[b], action[c] = SIZES.index(piece["size"]), COLOURS.index(piece["colour"]), SHAPES.index(piece["shape"])
+    return action
 
 
 # -- the policy ---------------------------------------------------------------
@@ -300,9 +325,10 @@ def chance_correctness(scenes: Sequence[dict]) -> float:
     """Expected share of correct captions when every slot is drawn
     uniformly, exactly: the count slot must name the scene's count (1/3),
     the piece slots must list its pieces in some order (each of the n!
-    orders has probability 60**-n), and from two pieces on the relation slot
-    must name the clear relation of the first two listed (1/4, or 0 when that
-    pair has none)."""
+    orders has probability 60**-n), and from two pieces on either the form
+    is "list" (1/2) or it is "relation" (1/2) and the relation slot names the
+    clear relation of the first two listed (1/4, or 0 when that pair has
+    none)."""
     kinds = len(SIZES) * len(COLOURS) * len(SHAPES)
     total = 0.0
     for scene in scenes:
@@ -312,7 +338,8 @@ def chance_correctness(scenes: Sequence[dict]) -> float:
         for order in itertools.permutations(range(n)):
             if n == 1:
                 p += 1.0
-            elif relation_between(pieces[order[0]], pieces[order[1]], scene["width"], scene["height"]) is not None:
-                p += 1.0 / len(RELATIONS)
+            else:
+                clear = relation_between(pieces[order[0]], pieces[order[1]], scene["width"], scene["height"])
+                p += 0.5 + (0.5 / len(RELATIONS) if clear is not None else 0.0)
         total += p / len(SLOTS[COUNT_SLOT][1]) / kinds**n
     return total / max(1, len(scenes))

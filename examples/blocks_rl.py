@@ -28,7 +28,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from blocks_policy import FactorisedPolicy, chance_correctness, judge, render  # noqa: E402
+from blocks_policy import FactorisedPolicy, chance_correctness, judge, parse, render, true_action  # noqa: E402
 
 from befit_client import Client, encode_png  # noqa: E402
 
@@ -40,7 +40,7 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
     p.add_argument("--url", default="http://127.0.0.1:7878", help="befit server (default %(default)s)")
     p.add_argument("--probe", type=Path, default=REPO / "fixtures/probe/probe.jsonl", help="probe rows with scene facts")
     p.add_argument("--images", type=int, default=300, help="probe images to caption (default %(default)s)")
-    p.add_argument("--steps", type=int, default=150, help="policy updates (default %(default)s)")
+    p.add_argument("--steps", type=int, default=300, help="policy updates (default %(default)s)")
     p.add_argument("--samples", type=int, default=8, help="captions sampled per image and step (default %(default)s)")
     p.add_argument(
         "--baseline",
@@ -49,13 +49,13 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
         help="befit's baseline: mean of the other samples (Luo 2020) or the greedy caption (self-critical)",
     )
     p.add_argument("--scale", default="cosine", choices=("cosine", "clip-s"), help="reward scale (default %(default)s)")
-    p.add_argument("--lr", type=float, default=0.1, help="Adam step size on the logits (default %(default)s)")
+    p.add_argument("--lr", type=float, default=0.05, help="Adam step size on the logits (default %(default)s)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the policy and image choice")
     p.add_argument("--model", default=None, help="befit model id or name (default: the server's)")
     p.add_argument("--no-normalise", action="store_true", help="use befit's advantages as they are, not divided by their std")
     p.add_argument("--plot", type=Path, default=Path("blocks_rl.png"), help="output plot (default %(default)s)")
     p.add_argument("--log", type=Path, default=None, help="also write per-step metrics as JSON here")
-    p.add_argument("--every", type=int, default=10, help="print progress every this many steps")
+    p.add_argument("--every", type=int, default=20, help="print progress every this many steps")
     args = p.parse_args(argv)
     if args.samples < 2 and args.baseline == "mean-of-others":
         p.error("mean-of-others needs --samples 2 or more")
@@ -72,9 +72,27 @@ def load_rows(path: Path, n: int, rng: np.random.Generator) -> List[dict]:
     return [rows[i] for i in keep]
 
 
-def correctness(captions: List[str], scenes: List[dict]) -> Dict[str, float]:
-    """Share of correct captions and of each kind of true claim."""
-    verdicts = [judge(c, s) for c, s in zip(captions, scenes)]
+_VERDICTS: Dict[tuple, object] = {}
+
+
+def _judge(caption: str, scene: dict, key: int):
+    # A converging policy repeats its captions: judge each (image, caption) once.
+    k = (key, caption)
+    if k not in _VERDICTS:
+        _VERDICTS[k] = judge(caption, scene)
+    return _VERDICTS[k]
+
+
+def correctness(captions: List[str], scenes: List[dict], keys: List[int]) -> Dict[str, float]:
+    """Share of correct captions and of each kind of true claim; `keys`
+    name each caption's image (for the memo)."""
+    verdicts = [_judge(c, s, k) for c, s, k in zip(captions, scenes, keys)]
+    # Size and colour alone, shape aside: how much of each piece is right.
+    size_colour = [
+        (k[0], k[1]) in {(p["size"], p["colour"]) for p in s["pieces"]}
+        for c, s in zip(captions, scenes)
+        for k in parse(c).pieces
+    ]
     count = [v.count_ok for v in verdicts if v.count_ok is not None]
     rel = [v.relation_ok for v in verdicts if v.relation_ok is not None]
     return {
@@ -82,6 +100,7 @@ def correctness(captions: List[str], scenes: List[dict]) -> Dict[str, float]:
         "count": float(np.mean(count)) if count else float("nan"),
         "pieces": float(sum(v.pieces_ok for v in verdicts) / max(1, sum(v.pieces_stated for v in verdicts))),
         "relation": float(np.mean(rel)) if rel else float("nan"),
+        "size_colour": float(np.mean(size_colour)) if size_colour else float("nan"),
     }
 
 
@@ -93,6 +112,10 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
     client = Client(args.url, model=args.model, pin_digest="first")
     client.wait_ready(timeout=120)
     ids = client.register_images([args.probe.parent / r["image"] for r in rows])
+    # What befit gives each scene's own facts, worded as the policy would:
+    # a policy whose reward passes this has found the reward model's errors.
+    truth = [render(true_action(s)) for s in scenes]
+    true_reward = client.rewards(ids, [[t] for t in truth], scale=args.scale).reward[:, 0]
     policy = FactorisedPolicy(len(rows), rng, lr=args.lr)
     history: List[Dict[str, float]] = []
     model = None
@@ -110,18 +133,24 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
         out = client.rewards(ids, captions, scale=args.scale, baseline=args.baseline, greedy=greedy)
         request_seconds += time.monotonic() - t0
         model = out.model
-        g = correctness(greedy, scenes)
-        s = correctness([c for caps in captions for c in caps], [sc for sc in scenes for _ in range(args.samples)])
+        g = correctness(greedy, scenes, list(range(len(scenes))))
+        s = correctness(
+            [c for caps in captions for c in caps],
+            [sc for sc in scenes for _ in range(args.samples)],
+            [i for i in range(len(scenes)) for _ in range(args.samples)],
+        )
         history.append(
             {
                 "step": step,
                 "seconds": time.monotonic() - started,
                 "reward": float(out.reward.mean()),
                 "greedy_reward": float(np.nanmean(out.greedy_reward)),
+                "true_reward": float(true_reward.mean()),
                 "greedy_correct": g["correct"],
                 "greedy_count": g["count"],
                 "greedy_pieces": g["pieces"],
                 "greedy_relation": g["relation"],
+                "greedy_size_colour": g["size_colour"],
                 "sample_correct": s["correct"],
             }
         )
@@ -130,7 +159,8 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
             print(
                 f"step {step:4d}  {h['seconds']:6.1f}s  reward {h['reward']:.4f}  greedy reward {h['greedy_reward']:.4f}  "
                 f"greedy correct {h['greedy_correct']:.3f} (count {h['greedy_count']:.2f}, pieces {h['greedy_pieces']:.2f}, "
-                f"relation {h['greedy_relation']:.2f})  sampled correct {h['sample_correct']:.3f}",
+                f"size+colour {h['greedy_size_colour']:.2f}, relation {h['greedy_relation']:.2f})  "
+                f"sampled correct {h['sample_correct']:.3f}",
                 flush=True,
             )
         if step == args.steps:
@@ -140,6 +170,8 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
             adv = adv / (adv.std() + 1e-8)
         policy.step(policy.gradient(actions, adv))
     elapsed = time.monotonic() - started
+    final_ok = np.array([judge(c, s).correct for c, s in zip(greedy, scenes)])
+    above = out.greedy_reward > true_reward + 1e-6
     summary = {
         "model": None if model is None else {"id": model.id, "digest": model.digest},
         "images": len(rows),
@@ -157,6 +189,9 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
             for level in (0.25, 0.5, 0.75, 0.9)
         },
         "retries": client.transport.retries_done,
+        "true_caption_reward": float(true_reward.mean()),
+        # Images whose wrong greedy caption befit rewards above the true one.
+        "wrong_above_truth": float((above & ~final_ok).mean()),
     }
     print(
         f"done: {args.steps} steps in {elapsed:.1f}s ({request_seconds:.1f}s waiting for befit, "
@@ -164,6 +199,11 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
         f"{summary['greedy_correct_end']:.3f} (chance {chance:.4f}); first step reaching "
         + ", ".join(f"{k}: {v}" for k, v in summary["steps_to"].items())
         + f"; reward model {model.id if model else '?'} {model.digest[:12] if model else ''}"
+    )
+    print(
+        f"greedy reward {history[-1]['greedy_reward']:.4f} vs {summary['true_caption_reward']:.4f} for the true captions; "
+        f"on {summary['wrong_above_truth']:.0%} of the images befit rewards the wrong greedy caption above the true one "
+        "(errors of the reward model, not of the loop)"
     )
     plot(history, chance, args)
     if args.log is not None:
@@ -180,20 +220,22 @@ def plot(history: List[Dict[str, float]], chance: float, args: argparse.Namespac
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:
-        plain_plot(steps, [series["reward"], series["greedy_reward"]], [series["greedy_correct"], series["sample_correct"]], args.plot)
+        plain_plot(steps, [series["reward"], series["greedy_reward"], series["true_reward"]], [series["greedy_correct"], series["sample_correct"]], args.plot)
         print(f"wrote {args.plot} (matplotlib not installed: curves only, no text)")
         return
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(7, 7), sharex=True)
     top.plot(steps, series["reward"], label="sampled captions (mean)")
     top.plot(steps, series["greedy_reward"], label="greedy caption (mean)")
+    top.plot(steps, series["true_reward"], "--", color="grey", label="true captions (mean)")
     top.set_ylabel(f"befit reward ({args.scale})")
     top.legend(loc="lower right")
     top.grid(alpha=0.3)
     bottom.plot(steps, series["greedy_correct"], label="greedy caption correct")
     bottom.plot(steps, series["sample_correct"], label="sampled caption correct")
     bottom.plot(steps, series["greedy_count"], ":", label="greedy: count right")
-    bottom.plot(steps, series["greedy_pieces"], ":", label="greedy: pieces present")
-    bottom.plot(steps, series["greedy_relation"], ":", label="greedy: relation right")
+    bottom.plot(steps, series["greedy_pieces"], ":", label="greedy: pieces present (size, colour, shape)")
+    bottom.plot(steps, series["greedy_size_colour"], ":", label="greedy: size and colour of pieces present")
+    bottom.plot(steps, series["greedy_relation"], ":", label="greedy: relation right (when stated)")
     bottom.axhline(chance, color="grey", linestyle="--", label=f"chance ({chance:.4f})")
     bottom.set_ylim(-0.02, 1.02)
     bottom.set_xlabel("policy step")
@@ -212,7 +254,7 @@ def plot(history: List[Dict[str, float]], chance: float, args: argparse.Namespac
 def plain_plot(steps: np.ndarray, top: List[np.ndarray], bottom: List[np.ndarray], path: Path) -> None:
     """Two panels of polylines on white, drawn with numpy: no labels."""
     w, h, pad = 640, 240, 12
-    colours = [(31, 119, 180), (255, 127, 14)]
+    colours = [(31, 119, 180), (255, 127, 14), (128, 128, 128)]
     img = np.full((2 * h, w, 3), 255, dtype=np.uint8)
     for panel, curves in enumerate((top, bottom)):
         y0 = panel * h

@@ -52,11 +52,15 @@ def scene(*pieces, width=64, height=64):
 
 def test_rendered_captions_round_trip_through_the_judge():
     s = scene(("small", "red", "circle", 10, 30), ("large", "blue", "ring", 50, 30), ("small", "green", "cross", 30, 55))
-    # count 3, pieces red circle / blue ring / green cross, relation "left of".
-    action = [2, 0, 0, 0, 1, 4, 4, 0, 3, 3, 0]
+    # count 3, form relation, pieces red circle / blue ring / green cross, relation "left of".
+    action = [2, 1, 0, 0, 0, 1, 4, 4, 0, 3, 3, 0]
     caption = bp.render(action)
     assert caption == "a small red circle to the left of a large blue ring, and a small green cross"
     assert bp.judge(caption, s).correct
+    listed = list(action)
+    listed[bp.FORM_SLOT] = 0
+    assert bp.render(listed) == "three pieces: a small red circle, a large blue ring and a small green cross"
+    assert bp.judge(bp.render(listed), s).correct
     wrong_rel = list(action)
     wrong_rel[bp.RELATION_SLOT] = 1
     assert not bp.judge(bp.render(wrong_rel), s).correct
@@ -64,8 +68,18 @@ def test_rendered_captions_round_trip_through_the_judge():
     wrong_count[bp.COUNT_SLOT] = 1  # two pieces: drops the cross, so incomplete
     v = bp.judge(bp.render(wrong_count), s)
     assert v.true is False and v.count_ok is False and not v.complete
-    one = bp.render([0, 1, 5, 4] + [0] * 7)
+    one = bp.render([0, 1, 1, 5, 4] + [0] * 7)  # the form does not matter for one piece
     assert one == "one piece: a large purple ring"
+    assert bp.render(bp.true_action(s)) == listed_caption(s)
+
+
+def listed_caption(s):
+    a, b, c = (f"a {p['size']} {p['colour']} {p['shape']}" for p in s["pieces"])
+    return f"three pieces: {a}, {b} and {c}"
+
+
+def test_true_action_is_correct_for_every_probe_scene(probe_rows):
+    assert all(bp.judge(bp.render(bp.true_action(r["scene"])), r["scene"]).correct for r in probe_rows)
 
 
 def test_relation_needs_a_clear_offset():
@@ -77,11 +91,14 @@ def test_relation_needs_a_clear_offset():
 
 
 def test_used_slots_follow_the_count():
-    actions = np.zeros((3, len(bp.SLOTS)), dtype=int)
-    actions[:, bp.COUNT_SLOT] = [0, 1, 2]
+    actions = np.zeros((5, len(bp.SLOTS)), dtype=int)
+    actions[:, bp.COUNT_SLOT] = [0, 1, 2, 1, 2]
+    actions[:, bp.FORM_SLOT] = [1, 1, 1, 0, 0]  # relation, relation, relation, list, list
     mask = bp.used_slots(actions)
-    assert mask.sum(axis=1).tolist() == [4, 8, 11]
-    assert not mask[0, bp.RELATION_SLOT] and mask[1, bp.RELATION_SLOT]
+    # count, (form), 3 slots per piece, (relation)
+    assert mask.sum(axis=1).tolist() == [4, 9, 12, 8, 11]
+    assert not mask[0, bp.FORM_SLOT] and not mask[0, bp.RELATION_SLOT]
+    assert mask[1, bp.RELATION_SLOT] and not mask[3, bp.RELATION_SLOT]
 
 
 def test_gradient_matches_finite_differences():
@@ -130,7 +147,7 @@ def test_reinforce_finds_the_right_caption_with_a_fact_reward(probe_rows):
 def test_chance_matches_monte_carlo(probe_rows):
     scenes = [r["scene"] for r in probe_rows if r["scene"]["count"] <= 2][:30]
     exact = bp.chance_correctness(scenes)
-    # One-piece scenes: 1/3 * 1/60; two pieces: 1/3 * 2/3600 * 1/4 when clear.
+    # One piece: 1/3 * 1/60; two: 1/3 * 2/3600 * (1/2 + 1/8 when the pair is clearly placed).
     assert 0 < exact < 1 / 180
     rng = np.random.default_rng(2)
     uniform = bp.FactorisedPolicy(len(scenes), rng, init_scale=0.0)
