@@ -7,7 +7,15 @@ fn main() -> ExitCode {
     match befit::cli::run(std::env::args_os()) {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("befit: error: {e:#}");
+            // Each cause once: an error whose message already quotes its source is not repeated.
+            let mut parts: Vec<String> = Vec::new();
+            for cause in e.chain() {
+                let text = cause.to_string();
+                if parts.last().is_none_or(|last| !last.contains(&text)) {
+                    parts.push(text);
+                }
+            }
+            eprintln!("befit: error: {}", parts.join(": "));
             ExitCode::FAILURE
         }
     }

@@ -28,6 +28,10 @@ pub enum Command {
     Serve(ServeArgs),
     /// Check a bundle against its ONNX graphs and print its identity and digest.
     CheckBundle(CheckBundleArgs),
+    /// Calibration of one bundle on a labelled probe set.
+    Calibrate(CalibrateArgs),
+    /// Drift between two bundle versions on a labelled probe set.
+    Drift(DriftArgs),
 }
 
 /// Where ONNX Runtime is.
@@ -103,12 +107,95 @@ pub struct ServeArgs {
     /// Most images in one registration or vectors request.
     #[arg(long, default_value_t = DEFAULT_MAX_IMAGES)]
     pub max_images: usize,
+    /// Most rows of a probe set sent to /v1/calibration or /v1/drift.
+    #[arg(long, default_value_t = DEFAULT_MAX_PROBE_ROWS)]
+    pub max_probe_rows: usize,
     /// Requests served at once; more get 503 with Retry-After.
     #[arg(long, default_value_t = DEFAULT_MAX_INFLIGHT)]
     pub max_inflight: usize,
     /// Wall-clock limit of one request, in seconds.
     #[arg(long, default_value_t = DEFAULT_REQUEST_TIMEOUT_SECS)]
     pub request_timeout_secs: u64,
+    /// A reward continuity map (from `befit drift --save-map`) that rewards requests may name
+    /// as `remap`: NAME=FILE; repeatable. Maps saved by POST /v1/drift live in the data folder.
+    #[arg(long = "map", value_name = "NAME=FILE")]
+    pub maps: Vec<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct CalibrateArgs {
+    /// Model bundle folder.
+    #[arg(long, value_name = "DIR")]
+    pub bundle: PathBuf,
+    /// Probe set, JSON Lines (image paths relative to the file).
+    #[arg(long, value_name = "FILE")]
+    pub probe: PathBuf,
+    /// Hinge margin alpha.
+    #[arg(long, default_value_t = crate::stats::hinge::DEFAULT_MARGIN)]
+    pub margin: f64,
+    /// Images per batch for the batch-averaged hinge losses.
+    #[arg(long, default_value_t = crate::stats::hinge::DEFAULT_BATCH_IMAGES)]
+    pub batch_images: usize,
+    /// Go on without rows that cannot be read or embedded (they are listed as warnings).
+    #[arg(long)]
+    pub skip_bad: bool,
+    /// Print every figure as JSON.
+    #[arg(long)]
+    pub json: bool,
+    /// Write a self-contained HTML report.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Write the vectors and figures for the reference cross-check.
+    #[arg(long, value_name = "FILE")]
+    pub export: Option<PathBuf>,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct DriftArgs {
+    /// The old bundle.
+    #[arg(long, value_name = "DIR")]
+    pub from: PathBuf,
+    /// The new bundle.
+    #[arg(long, value_name = "DIR")]
+    pub to: PathBuf,
+    /// Probe set, JSON Lines.
+    #[arg(long, value_name = "FILE")]
+    pub probe: PathBuf,
+    /// Hinge margin alpha of the compared calibrations.
+    #[arg(long, default_value_t = crate::stats::hinge::DEFAULT_MARGIN)]
+    pub margin: f64,
+    /// Captions per image compared by the neighbour overlap.
+    #[arg(long, default_value_t = crate::stats::drift::DEFAULT_NEIGHBOUR_K)]
+    pub k: usize,
+    /// Pairs listed as moved most.
+    #[arg(long, default_value_t = crate::stats::drift::DEFAULT_MOVED_PAIRS)]
+    pub moved: usize,
+    /// Go on without rows that cannot be read or embedded.
+    #[arg(long)]
+    pub skip_bad: bool,
+    /// Print every figure as JSON.
+    #[arg(long)]
+    pub json: bool,
+    /// Write a self-contained HTML report.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Write the vectors and figures for the reference cross-check.
+    #[arg(long, value_name = "FILE")]
+    pub export: Option<PathBuf>,
+    /// Write the fitted new-to-old reward map (monotone unless --affine-map) for `serve --map`.
+    #[arg(long, value_name = "FILE")]
+    pub save_map: Option<PathBuf>,
+    /// Save the affine fit instead of the monotone one.
+    #[arg(long)]
+    pub affine_map: bool,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
 }
 
 #[derive(Debug, Args)]

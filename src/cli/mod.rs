@@ -3,6 +3,7 @@
 //! environment variables (`ORT_DYLIB_PATH`, `RUST_LOG`).
 
 pub mod args;
+mod probe_commands;
 mod serve;
 
 use std::ffi::OsString;
@@ -29,6 +30,8 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
     match cli.command {
         Command::Serve(a) => serve::serve(a),
         Command::CheckBundle(a) => serve::check_bundle(a),
+        Command::Calibrate(a) => probe_commands::calibrate(a),
+        Command::Drift(a) => probe_commands::drift(a),
     }
 }
 

@@ -14,8 +14,11 @@ use crate::bundle::Bundle;
 use crate::encoders::{Engine, Model, ModelSettings};
 use crate::intake::image_root::ImageRoot;
 use crate::metrics::Registry;
+use crate::server::state::{read_map, valid_map_name};
 use crate::server::{AppState, Limits};
+use crate::stats::ContinuityMap;
 use crate::store::images::ImageStore;
+use std::collections::BTreeMap;
 
 /// Encoder settings from the flags, checked.
 pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
@@ -97,6 +100,7 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         max_caption_bytes: a.max_caption_bytes,
         max_images: a.max_images,
         max_pixels: a.encoders.max_pixels,
+        max_probe_rows: a.max_probe_rows,
         max_inflight: a.max_inflight,
         request_timeout: Duration::from_secs(a.request_timeout_secs.max(1)),
     };
@@ -111,7 +115,9 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         .with_context(|| format!("creating --data-dir {}", a.data_dir.display()))?;
     let store = Arc::new(ImageStore::open(&a.data_dir.join("images.sqlite"))?);
     let metrics = Arc::new(Registry::default());
-    let state = AppState::new(limits.clone(), Arc::clone(&metrics));
+    let maps_dir = a.data_dir.join("maps");
+    let maps = load_maps(&maps_dir, &a.maps)?;
+    let state = AppState::with_maps(limits.clone(), Arc::clone(&metrics), maps, Some(maps_dir));
 
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
@@ -158,6 +164,36 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         outcome
     })?;
     Ok(ExitCode::SUCCESS)
+}
+
+/// Reward maps saved in the data folder, then those given with `--map NAME=FILE` (which win).
+fn load_maps(dir: &Path, flags: &[String]) -> anyhow::Result<BTreeMap<String, ContinuityMap>> {
+    let mut maps = BTreeMap::new();
+    if dir.is_dir() {
+        for entry in std::fs::read_dir(dir).with_context(|| format!("reading {}", dir.display()))? {
+            let path = entry?.path();
+            let Some(name) = path
+                .file_name()
+                .and_then(|n| n.to_str())
+                .and_then(|n| n.strip_suffix(".json"))
+            else {
+                continue;
+            };
+            if valid_map_name(name) {
+                maps.insert(name.to_string(), read_map(&path)?);
+            }
+        }
+    }
+    for flag in flags {
+        let Some((name, file)) = flag.split_once('=') else {
+            bail!("--map {flag:?}: give NAME=FILE");
+        };
+        if !valid_map_name(name) {
+            bail!("--map {flag:?}: the name must match [A-Za-z0-9._-]+");
+        }
+        maps.insert(name.to_string(), read_map(Path::new(file))?);
+    }
+    Ok(maps)
 }
 
 async fn shutdown_signal() {

@@ -58,3 +58,55 @@ impl Embedder for ModelEmbedder {
         rows(vectors, self.dimension())
     }
 }
+
+/// A probe encoder over a running engine: images named by id come from the
+/// store, images named by path from the image root. For the HTTP statistics
+/// routes; it blocks, so run it on a blocking thread.
+pub struct EngineProbeEncoder {
+    pub engine: Arc<super::Engine>,
+    pub model: Arc<Model>,
+    pub runtime: tokio::runtime::Handle,
+}
+
+impl crate::probe::ProbeEncoder for EngineProbeEncoder {
+    fn dimension(&self) -> usize {
+        self.model.dimension()
+    }
+
+    fn embed_images(&self, images: &[&crate::probe::ImageRef]) -> Result<Array2<f32>, EmbedError> {
+        use super::ImageSource;
+        let sources: Vec<ImageSource> = images
+            .iter()
+            .map(|image| match image {
+                crate::probe::ImageRef::Id(id) => ImageSource::Id(id.clone()),
+                crate::probe::ImageRef::Path(p) => {
+                    ImageSource::Path(p.to_string_lossy().into_owned())
+                }
+            })
+            .collect();
+        let work = futures::future::try_join_all(
+            sources
+                .iter()
+                .map(|s| self.engine.image_vector(&self.model, s)),
+        );
+        let found = self
+            .runtime
+            .block_on(work)
+            .map_err(|e| EmbedError(e.to_string()))?;
+        rows(
+            found.into_iter().map(|(_, v)| v.to_vec()).collect(),
+            self.dimension(),
+        )
+    }
+
+    fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError> {
+        let vectors = self
+            .runtime
+            .block_on(self.model.caption_vectors(texts))
+            .map_err(|e| EmbedError(e.to_string()))?;
+        rows(
+            vectors.iter().map(|v| v.vector.clone()).collect(),
+            self.dimension(),
+        )
+    }
+}

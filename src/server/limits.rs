@@ -15,6 +15,8 @@ pub const DEFAULT_MAX_CAPTIONS: usize = 16_384;
 pub const DEFAULT_MAX_CAPTION_BYTES: usize = 2048;
 /// Images in one registration or vectors request.
 pub const DEFAULT_MAX_IMAGES: usize = 256;
+/// Rows of a probe set sent to the statistics routes (the bundled probe set has 1,000).
+pub const DEFAULT_MAX_PROBE_ROWS: usize = 20_000;
 /// Requests served at once before new ones get 503.
 pub const DEFAULT_MAX_INFLIGHT: usize = 512;
 /// Wall-clock bound of one request.
@@ -29,6 +31,7 @@ pub struct Limits {
     pub max_caption_bytes: usize,
     pub max_images: usize,
     pub max_pixels: u64,
+    pub max_probe_rows: usize,
     pub max_inflight: usize,
     pub request_timeout: Duration,
 }
@@ -42,6 +45,7 @@ impl Default for Limits {
             max_caption_bytes: DEFAULT_MAX_CAPTION_BYTES,
             max_images: DEFAULT_MAX_IMAGES,
             max_pixels: DEFAULT_MAX_PIXELS,
+            max_probe_rows: DEFAULT_MAX_PROBE_ROWS,
             max_inflight: DEFAULT_MAX_INFLIGHT,
             request_timeout: Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
         }

@@ -61,6 +61,23 @@ fn registered_images_survive_a_restart() {
         &json!({"images": [{"base64": b64(&bytes)}]}),
     );
     assert_eq!(again["images"][0]["new"], false);
+    // The restarted server found the vector in the store, not by encoding the image again.
+    let metrics = reqwest::blocking::get(format!("{}/metrics", server.url))
+        .unwrap()
+        .text()
+        .unwrap();
+    assert!(
+        metrics.contains("befit_cache_hits_total{cache=\"image_store\"} 1"),
+        "{metrics}"
+    );
+    assert!(
+        metrics.contains("befit_encoder_batch_size_count{model=\"blocks@v1\",tower=\"text\"} 1"),
+        "{metrics}"
+    );
+    assert!(
+        !metrics.contains("tower=\"image\"} 1"),
+        "the image was encoded again:\n{metrics}"
+    );
 }
 
 #[test]

@@ -9,4 +9,5 @@ mod concurrency;
 mod contrast;
 mod http_errors;
 mod http_rewards;
+mod http_statistics;
 mod parity;

@@ -1,6 +1,7 @@
 //! `POST /v1/images`: registers images (raw body or JSON), idempotently.
 
 use axum::body::Bytes;
+use axum::extract::rejection::BytesRejection;
 use axum::extract::State;
 use axum::http::{header, HeaderMap, StatusCode};
 use axum::Json;
@@ -10,7 +11,7 @@ use std::sync::Arc;
 use crate::encoders::{ImageSource, Registered};
 use crate::server::error::ApiError;
 use crate::server::image_ref::ImageRef;
-use crate::server::json::json_rejection;
+use crate::server::json::{body_too_large, json_rejection};
 use crate::server::state::AppState;
 
 #[derive(Deserialize)]
@@ -47,8 +48,15 @@ impl From<Registered> for RegisteredOut {
 pub async fn register(
     State(state): State<AppState>,
     headers: HeaderMap,
-    body: Bytes,
+    body: Result<Bytes, BytesRejection>,
 ) -> Result<Json<RegisterResponse>, ApiError> {
+    let body = body.map_err(|rejection| {
+        if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
+            body_too_large()
+        } else {
+            ApiError::new(StatusCode::BAD_REQUEST, "bad_json", rejection.body_text())
+        }
+    })?;
     let engine = state.engine()?;
     let content_type = headers
         .get(header::CONTENT_TYPE)

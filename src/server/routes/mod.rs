@@ -5,6 +5,7 @@ pub mod health;
 pub mod images;
 pub mod models;
 pub mod rewards;
+pub mod statistics;
 pub mod vectors;
 
 use serde::Serialize;

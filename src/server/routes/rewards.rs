@@ -1,6 +1,7 @@
 //! `POST /v1/rewards`: rewards and advantages for sampled captions, grouped by image.
 
 use axum::extract::State;
+use axum::http::StatusCode;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 
@@ -162,15 +163,23 @@ pub async fn score(
     let engine = state.engine()?;
     validate(&request, state.limits())?;
     let model = engine.model(request.model.as_deref())?;
-    if let Some(name) = &request.remap {
-        // No continuity map is registered under any name yet.
-        return Err(ApiError::new(
-            axum::http::StatusCode::NOT_FOUND,
-            "unknown_map",
-            format!("no reward map named {name:?}"),
-        )
-        .at("remap"));
-    }
+    let remap = match &request.remap {
+        None => None,
+        Some(name) => Some(state.map(name).ok_or_else(|| {
+            let known = state.map_names();
+            let known = if known.is_empty() {
+                "none is registered".to_string()
+            } else {
+                format!("known: {}", known.join(", "))
+            };
+            ApiError::new(
+                StatusCode::NOT_FOUND,
+                "unknown_map",
+                format!("no reward map named {name:?}; {known}"),
+            )
+            .at("remap")
+        })?),
+    };
     let sources = request
         .groups
         .iter()
@@ -207,11 +216,13 @@ pub async fn score(
         });
         let score_one = |v: &[f32]| {
             let cosine = dot(v, &image);
+            // The map moves this bundle's image-caption cosine onto the old bundle's scale.
+            let on_scale = remap.as_ref().map_or(cosine, |m| m.apply(cosine));
             let reference = references
                 .iter()
                 .map(|r| dot(v, &r.vector))
                 .reduce(f32::max);
-            (cosine, request.scale.reward(cosine, reference))
+            (cosine, request.scale.reward(on_scale, reference))
         };
         let scored: Vec<(f32, f32)> = samples.iter().map(|s| score_one(&s.vector)).collect();
         let greedy_out = greedy.map(|g| {

@@ -1,0 +1,583 @@
+//! Drift between two bundle versions over the same probe set: do they agree
+//! on which pairs fit better, how alike are their spaces, which rewards moved,
+//! and the continuity maps that carry the new bundle's cosines onto the old
+//! one's scale. Every figure is defined in `docs/statistics.md`.
+
+use std::collections::BTreeMap;
+
+use ndarray::{concatenate, Array2, Axis};
+use serde::{Deserialize, Serialize};
+
+use super::agreement::{kendall_tau_b, ks_two_sample, spearman_rho, KsTest};
+use super::calibration::{calibrate_checked, CalibrationOptions, CalibrationReport};
+use super::continuity::{ContinuityMap, FittedMap};
+use super::pairs::ProbeVectors;
+use super::spaces::{linear_cka, procrustes, ProcrustesFit};
+use super::StatsError;
+
+/// Default k of the neighbour overlap.
+pub const DEFAULT_NEIGHBOUR_K: usize = 10;
+/// Default number of most-moved pairs listed.
+pub const DEFAULT_MOVED_PAIRS: usize = 20;
+/// Default most pairs drawn in the report's scatter plot; a few thousand
+/// points keep the HTML file small and the plot readable.
+pub const DEFAULT_SCATTER_POINTS: usize = 2000;
+
+/// Settings of a drift comparison.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct DriftOptions {
+    /// Settings of the two calibrations compared.
+    pub calibration: CalibrationOptions,
+    /// Captions per image compared by the neighbour overlap, at least 1.
+    pub neighbour_k: usize,
+    /// Pairs listed as moved most.
+    pub moved_pairs: usize,
+    /// Most pairs kept for the scatter plot (0 for none).
+    pub scatter_points: usize,
+}
+
+impl Default for DriftOptions {
+    fn default() -> Self {
+        DriftOptions {
+            calibration: CalibrationOptions::default(),
+            neighbour_k: DEFAULT_NEIGHBOUR_K,
+            moved_pairs: DEFAULT_MOVED_PAIRS,
+            scatter_points: DEFAULT_SCATTER_POINTS,
+        }
+    }
+}
+
+impl DriftOptions {
+    /// Refuses settings no figure can be computed with.
+    pub fn validate(&self) -> Result<(), StatsError> {
+        self.calibration.validate()?;
+        if self.neighbour_k == 0 {
+            return Err(StatsError::BadOption {
+                name: "neighbour_k",
+                why: "must be at least 1".into(),
+            });
+        }
+        Ok(())
+    }
+}
+
+/// Sizes of the probe and of the two spaces.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DriftCounts {
+    /// Images (N).
+    pub images: usize,
+    /// True captions (M).
+    pub captions: usize,
+    /// Contrast captions (K).
+    pub contrasts: usize,
+    /// Pairs compared: M true pairs, then K contrast pairs.
+    pub pairs: usize,
+    /// Vector length of the old bundle.
+    pub dimension_from: usize,
+    /// Vector length of the new bundle.
+    pub dimension_to: usize,
+}
+
+/// Rank agreement of the two bundles' cosines on the same pairs.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PairAgreement {
+    /// Pairs compared.
+    pub pairs: usize,
+    /// Spearman's rho (`scipy.stats.spearmanr`); null when a side is constant.
+    pub spearman_rho: Option<f64>,
+    /// Kendall's tau-b (`scipy.stats.kendalltau`); null when a side is constant.
+    pub kendall_tau_b: Option<f64>,
+}
+
+/// Rank agreement over all pairs and over true pairs only.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Agreement {
+    /// True and contrast pairs together.
+    pub all_pairs: PairAgreement,
+    /// True pairs only.
+    pub true_pairs: PairAgreement,
+}
+
+/// Linear CKA of the two bundles' vectors of the same rows.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CkaFigures {
+    /// Over the N image vectors.
+    pub images: Option<f64>,
+    /// Over the M + K caption vectors (true captions, then contrasts).
+    pub texts: Option<f64>,
+}
+
+/// Orthogonal Procrustes of the old bundle's rows onto the new one's; null
+/// when the bundles' dimensions differ.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ProcrustesFigures {
+    /// Over the N image vectors.
+    pub images: Option<ProcrustesFit>,
+    /// Over the M + K caption vectors.
+    pub texts: Option<ProcrustesFit>,
+}
+
+/// Whether each image's nearest captions stayed the same.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NeighbourOverlap {
+    /// Captions per image compared (at most M).
+    pub k: usize,
+    /// Mean over images of |top_k(old) & top_k(new)| / |top_k(old) | top_k(new)|,
+    /// top_k by cosine among all probe true captions, ties by caption order.
+    pub mean_jaccard: f64,
+}
+
+/// The two continuity maps from the new bundle's cosine to the old one's,
+/// fitted on all pairs.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ContinuityFits {
+    /// Least-squares line.
+    pub affine: FittedMap,
+    /// Isotonic (non-decreasing) regression.
+    pub monotone: FittedMap,
+}
+
+/// Which kind of pair a cosine belongs to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum PairKind {
+    /// An image with one of its true captions.
+    True,
+    /// An image with a contrast of one of its captions.
+    Contrast,
+}
+
+/// One pair whose reward moved much between the bundles.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct MovedPair {
+    /// Index of the pair: 0..M true captions, M..M+K contrasts.
+    pub pair: usize,
+    /// True or contrast pair.
+    pub kind: PairKind,
+    /// The contrast's label; null for a true pair.
+    pub changed: Option<String>,
+    /// The image, as named in the probe set.
+    pub image: String,
+    /// Line of the image's row in the probe file.
+    pub image_line: usize,
+    /// The caption scored.
+    pub caption: String,
+    /// For a contrast, the true caption it alters; null for a true pair.
+    pub true_caption: Option<String>,
+    /// Cosine under the old bundle.
+    pub cos_from: f64,
+    /// Cosine under the new bundle.
+    pub cos_to: f64,
+    /// cos_to - cos_from.
+    pub raw_delta: f64,
+    /// affine(cos_to) - cos_from, with the fitted affine continuity map: the
+    /// move left once the new scale is mapped onto the old.
+    pub mapped_delta: f64,
+}
+
+/// A sample of the pairs for the scatter plot.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Scatter {
+    /// Every `stride`-th pair (in pair order) is kept.
+    pub stride: usize,
+    /// [cosine under the new bundle, cosine under the old bundle] per kept pair.
+    pub points: Vec<[f64; 2]>,
+}
+
+/// One calibration figure under both bundles.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FigureChange {
+    /// Under the old bundle (null when not defined there).
+    pub from: Option<f64>,
+    /// Under the new bundle.
+    pub to: Option<f64>,
+    /// to - from, when both are defined.
+    pub delta: Option<f64>,
+}
+
+/// Every drift figure between two bundles over one probe set.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DriftReport {
+    /// The old bundle.
+    pub from_bundle: String,
+    /// The new bundle.
+    pub to_bundle: String,
+    /// Probe sizes and dimensions.
+    pub counts: DriftCounts,
+    /// Settings used.
+    pub options: DriftOptions,
+    /// Rank agreement of the cosines of the same pairs.
+    pub agreement: Agreement,
+    /// Kolmogorov-Smirnov between the true-pair cosine distributions.
+    pub true_cosine_ks: KsTest,
+    /// Linear CKA of the spaces.
+    pub cka: CkaFigures,
+    /// Orthogonal Procrustes residuals.
+    pub procrustes: ProcrustesFigures,
+    /// Nearest-caption overlap per image.
+    pub neighbour_overlap: NeighbourOverlap,
+    /// Maps from the new cosine to the old.
+    pub continuity: ContinuityFits,
+    /// Pairs by decreasing |mapped_delta|, ties by pair index.
+    pub moved: Vec<MovedPair>,
+    /// Pairs for the scatter plot.
+    pub scatter: Scatter,
+    /// Every calibration figure, old and new, by dotted name
+    /// (e.g. `retrieval.image_to_text.r_at_1`).
+    pub changes: BTreeMap<String, FigureChange>,
+    /// Calibration of the old bundle.
+    pub from: CalibrationReport,
+    /// Calibration of the new bundle.
+    pub to: CalibrationReport,
+}
+
+/// Compares bundle `from` (old) with bundle `to` (new) over the same probe
+/// rows: every figure of [`DriftReport`].
+pub fn drift(
+    from: &ProbeVectors,
+    to: &ProbeVectors,
+    options: &DriftOptions,
+) -> Result<DriftReport, StatsError> {
+    options.validate()?;
+    from.check()?;
+    to.check()?;
+    same_probe(from, to)?;
+    let (sa, sb) = (from.similarities(), to.similarities());
+    let cal_from = calibrate_checked(from, &sa, &options.calibration)?;
+    let cal_to = calibrate_checked(to, &sb, &options.calibration)?;
+
+    let m = from.caption_count();
+    let cos_a: Vec<f64> = sa
+        .true_cos
+        .iter()
+        .chain(&sa.contrast_cos)
+        .copied()
+        .collect();
+    let cos_b: Vec<f64> = sb
+        .true_cos
+        .iter()
+        .chain(&sb.contrast_cos)
+        .copied()
+        .collect();
+
+    let agreement = Agreement {
+        all_pairs: PairAgreement {
+            pairs: cos_a.len(),
+            spearman_rho: spearman_rho(&cos_a, &cos_b),
+            kendall_tau_b: kendall_tau_b(&cos_a, &cos_b),
+        },
+        true_pairs: PairAgreement {
+            pairs: m,
+            spearman_rho: spearman_rho(&sa.true_cos, &sb.true_cos),
+            kendall_tau_b: kendall_tau_b(&sa.true_cos, &sb.true_cos),
+        },
+    };
+    let texts = |v: &ProbeVectors| -> Array2<f64> {
+        concatenate(Axis(0), &[v.captions.view(), v.contrasts.view()])
+            .unwrap_or_else(|_| v.captions.clone())
+    };
+    let (texts_a, texts_b) = (texts(from), texts(to));
+    let continuity = ContinuityFits {
+        affine: ContinuityMap::fit_affine(&cos_b, &cos_a)?,
+        monotone: ContinuityMap::fit_monotone(&cos_b, &cos_a)?,
+    };
+    let moved = moved_pairs(
+        from,
+        &cos_a,
+        &cos_b,
+        &continuity.affine.map,
+        options.moved_pairs,
+    );
+    let k = options.neighbour_k.min(m);
+
+    Ok(DriftReport {
+        from_bundle: from.bundle.clone(),
+        to_bundle: to.bundle.clone(),
+        counts: DriftCounts {
+            images: from.image_count(),
+            captions: m,
+            contrasts: from.contrast_count(),
+            pairs: cos_a.len(),
+            dimension_from: from.dimension(),
+            dimension_to: to.dimension(),
+        },
+        options: options.clone(),
+        agreement,
+        true_cosine_ks: ks_two_sample(&sa.true_cos, &sb.true_cos),
+        cka: CkaFigures {
+            images: linear_cka(&from.images, &to.images),
+            texts: linear_cka(&texts_a, &texts_b),
+        },
+        procrustes: ProcrustesFigures {
+            images: procrustes(&from.images, &to.images),
+            texts: procrustes(&texts_a, &texts_b),
+        },
+        neighbour_overlap: NeighbourOverlap {
+            k,
+            mean_jaccard: mean_jaccard(&sa.s, &sb.s, k),
+        },
+        continuity,
+        moved,
+        scatter: scatter(&cos_a, &cos_b, options.scatter_points),
+        changes: figure_changes(&cal_from, &cal_to),
+        from: cal_from,
+        to: cal_to,
+    })
+}
+
+/// Refuses two vector sets that do not describe the same probe rows.
+fn same_probe(a: &ProbeVectors, b: &ProbeVectors) -> Result<(), StatsError> {
+    let differ = |what: &str| {
+        Err(StatsError::DifferentProbe {
+            why: format!("their {what} differ"),
+        })
+    };
+    if a.image_names != b.image_names || a.image_lines != b.image_lines {
+        return differ("images");
+    }
+    if a.caption_texts != b.caption_texts || a.caption_image != b.caption_image {
+        return differ("true captions");
+    }
+    if a.contrast_texts != b.contrast_texts
+        || a.contrast_labels != b.contrast_labels
+        || a.contrast_from != b.contrast_from
+    {
+        return differ("contrast captions");
+    }
+    Ok(())
+}
+
+/// The `k` captions (columns) with the highest cosine in `row`, ties by index.
+fn top_k(row: ndarray::ArrayView1<f64>, k: usize) -> Vec<usize> {
+    let mut idx: Vec<usize> = (0..row.len()).collect();
+    let by_rank = |&a: &usize, &b: &usize| row[b].total_cmp(&row[a]).then(a.cmp(&b));
+    if k < idx.len() {
+        idx.select_nth_unstable_by(k, by_rank);
+        idx.truncate(k);
+    }
+    idx.sort_unstable();
+    idx
+}
+
+fn mean_jaccard(sa: &Array2<f64>, sb: &Array2<f64>, k: usize) -> f64 {
+    let n = sa.nrows();
+    let total: f64 = sa
+        .outer_iter()
+        .zip(sb.outer_iter())
+        .map(|(ra, rb)| {
+            let (ta, tb) = (top_k(ra, k), top_k(rb, k));
+            let common = ta.iter().filter(|c| tb.binary_search(c).is_ok()).count();
+            common as f64 / (ta.len() + tb.len() - common) as f64
+        })
+        .sum();
+    total / n as f64
+}
+
+fn moved_pairs(
+    v: &ProbeVectors,
+    cos_a: &[f64],
+    cos_b: &[f64],
+    affine: &ContinuityMap,
+    count: usize,
+) -> Vec<MovedPair> {
+    let m = v.caption_count();
+    let mapped: Vec<f64> = cos_a
+        .iter()
+        .zip(cos_b)
+        .map(|(&a, &b)| affine.apply_f64(b) - a)
+        .collect();
+    let mut order: Vec<usize> = (0..cos_a.len()).collect();
+    order.sort_by(|&p, &q| mapped[q].abs().total_cmp(&mapped[p].abs()).then(p.cmp(&q)));
+    order
+        .into_iter()
+        .take(count)
+        .map(|p| {
+            let (kind, changed, caption, true_caption, image) = if p < m {
+                (
+                    PairKind::True,
+                    None,
+                    v.caption_texts[p].clone(),
+                    None,
+                    v.caption_image[p],
+                )
+            } else {
+                let k = p - m;
+                let from = v.contrast_from[k];
+                (
+                    PairKind::Contrast,
+                    Some(v.contrast_labels[k].clone()),
+                    v.contrast_texts[k].clone(),
+                    Some(v.caption_texts[from].clone()),
+                    v.caption_image[from],
+                )
+            };
+            MovedPair {
+                pair: p,
+                kind,
+                changed,
+                image: v.image_names[image].clone(),
+                image_line: v.image_lines[image],
+                caption,
+                true_caption,
+                cos_from: cos_a[p],
+                cos_to: cos_b[p],
+                raw_delta: cos_b[p] - cos_a[p],
+                mapped_delta: mapped[p],
+            }
+        })
+        .collect()
+}
+
+fn scatter(cos_a: &[f64], cos_b: &[f64], most: usize) -> Scatter {
+    if most == 0 || cos_a.is_empty() {
+        return Scatter {
+            stride: 0,
+            points: vec![],
+        };
+    }
+    let stride = cos_a.len().div_ceil(most).max(1);
+    Scatter {
+        stride,
+        points: (0..cos_a.len())
+            .step_by(stride)
+            .map(|p| [cos_b[p], cos_a[p]])
+            .collect(),
+    }
+}
+
+/// Leaves of a calibration report that are fixed by the probe and the
+/// options rather than measured, left out of the changes.
+const FIXED_FIGURES: [&str; 7] = [
+    "margin",
+    "batch_images",
+    "batches",
+    "dropped_images",
+    "positives",
+    "queries",
+    "count",
+];
+
+/// Every measured number of two calibration reports, by dotted path.
+fn figure_changes(a: &CalibrationReport, b: &CalibrationReport) -> BTreeMap<String, FigureChange> {
+    let mut fa = BTreeMap::new();
+    let mut fb = BTreeMap::new();
+    for (report, out) in [(a, &mut fa), (b, &mut fb)] {
+        let value = serde_json::to_value(report).expect("a calibration report is plain data");
+        for section in ["hinge", "cosines", "retrieval", "contrast", "suggested"] {
+            flatten(&value[section], section.to_string(), out);
+        }
+    }
+    let names: std::collections::BTreeSet<&String> = fa.keys().chain(fb.keys()).collect();
+    names
+        .into_iter()
+        .filter_map(|name| {
+            let from = fa.get(name).copied().flatten();
+            let to = fb.get(name).copied().flatten();
+            (from.is_some() || to.is_some()).then(|| {
+                let delta = from.zip(to).map(|(f, t)| t - f);
+                (name.clone(), FigureChange { from, to, delta })
+            })
+        })
+        .collect()
+}
+
+fn flatten(value: &serde_json::Value, path: String, out: &mut BTreeMap<String, Option<f64>>) {
+    match value {
+        serde_json::Value::Object(map) => {
+            for (key, v) in map {
+                if key == "histogram" || FIXED_FIGURES.contains(&key.as_str()) {
+                    continue;
+                }
+                flatten(v, format!("{path}.{key}"), out);
+            }
+        }
+        serde_json::Value::Number(n) => {
+            out.insert(path, n.as_f64());
+        }
+        serde_json::Value::Null => {
+            out.insert(path, None);
+        }
+        _ => {}
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::pairs::tests::from_similarity;
+    use ndarray::array;
+
+    #[test]
+    fn top_k_breaks_ties_by_caption_order() {
+        let row = array![0.5, 0.9, 0.5, 0.5];
+        assert_eq!(top_k(row.view(), 2), vec![0, 1]);
+        assert_eq!(top_k(row.view(), 3), vec![0, 1, 2]);
+        assert_eq!(top_k(row.view(), 9), vec![0, 1, 2, 3]);
+    }
+
+    #[test]
+    fn jaccard_worked_by_hand() {
+        // Image 0: top-2 under A {0, 1}, under B {1, 2}: 1 common of 3 -> 1/3.
+        // Image 1: top-2 {1, 2} under both -> 1. Mean 2/3.
+        let sa = array![[0.9, 0.8, 0.1], [0.1, 0.8, 0.9]];
+        let sb = array![[0.1, 0.8, 0.9], [0.1, 0.8, 0.9]];
+        assert!((mean_jaccard(&sa, &sb, 2) - 2.0 / 3.0).abs() < 1e-12);
+    }
+
+    #[test]
+    fn identical_bundles_do_not_drift() {
+        let v = from_similarity(
+            &array![[0.8, 0.3, 0.2], [0.4, 0.7, 0.1], [0.2, 0.1, 0.6]],
+            vec![0, 1, 2],
+        );
+        let r = drift(&v, &v, &DriftOptions::default()).unwrap();
+        assert!((r.agreement.true_pairs.spearman_rho.unwrap() - 1.0).abs() < 1e-12);
+        assert!((r.agreement.true_pairs.kendall_tau_b.unwrap() - 1.0).abs() < 1e-12);
+        assert_eq!(r.true_cosine_ks.statistic, 0.0);
+        assert!((r.cka.images.unwrap() - 1.0).abs() < 1e-12);
+        assert!(r.procrustes.images.as_ref().unwrap().residual < 1e-12);
+        assert_eq!(r.neighbour_overlap.mean_jaccard, 1.0);
+        assert!(r.continuity.monotone.max_error < 1e-12);
+        assert!(r.moved.iter().all(|p| p.mapped_delta.abs() < 1e-12));
+        assert!(r.changes.values().all(|c| c.delta.is_none_or(|d| d == 0.0)));
+        assert!(r.changes.contains_key("retrieval.image_to_text.r_at_1"));
+        assert!(!r
+            .changes
+            .keys()
+            .any(|k| k.contains("histogram") || k.ends_with(".count")));
+    }
+
+    #[test]
+    fn different_probes_are_refused() {
+        let a = from_similarity(&array![[0.8, 0.1], [0.2, 0.7]], vec![0, 1]);
+        let mut b = a.clone();
+        b.caption_texts[1] = "something else".into();
+        let err = drift(&a, &b, &DriftOptions::default())
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains("true captions"), "{err}");
+    }
+
+    #[test]
+    fn moved_pairs_rank_by_mapped_delta_and_name_contrasts() {
+        // Two images with one caption each and one contrast of caption 0.
+        let mut a = from_similarity(&array![[0.8, 0.1], [0.2, 0.7]], vec![0, 1]);
+        a.contrasts = a.captions.slice(ndarray::s![1..2, ..]).to_owned();
+        a.contrast_texts = vec!["a blue thing".into()];
+        a.contrast_labels = vec!["colour".into()];
+        a.contrast_from = vec![0];
+        let r = drift(&a, &a, &DriftOptions::default()).unwrap();
+        assert_eq!(r.counts.pairs, 3);
+        let contrast = r
+            .moved
+            .iter()
+            .find(|p| p.kind == PairKind::Contrast)
+            .unwrap();
+        assert_eq!(contrast.changed.as_deref(), Some("colour"));
+        assert_eq!(contrast.true_caption.as_deref(), Some("caption 0"));
+        assert_eq!(contrast.image, "images/0.png");
+        // cos(image 0, contrast) = s[0, 1] = 0.1
+        assert!((contrast.cos_from - 0.1).abs() < 1e-12);
+    }
+}
