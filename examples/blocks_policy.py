@@ -311,6 +311,18 @@ class FactorisedPolicy:
             grad[:, off : off + size] = (w[..., None] * (onehot - probs[:, None, off : off + size])).sum(1) / k
         return grad
 
+    def entropy_gradient(self) -> np.ndarray:
+        """Gradient of the summed slot entropies of every image:
+        ``-p * (log p + H)`` within each slot."""
+        probs = self.probabilities()
+        grad = np.zeros_like(self.logits)
+        for off, size in zip(SLOT_OFFSETS, SLOT_SIZES):
+            p = probs[:, off : off + size]
+            logp = np.log(np.maximum(p, 1e-12))
+            h = -(p * logp).sum(-1, keepdims=True)
+            grad[:, off : off + size] = -p * (logp + h)
+        return grad
+
     def step(self, grad: np.ndarray, beta1: float = 0.9, beta2: float = 0.999, eps: float = 1e-8) -> None:
         """One Adam ascent step along `grad`."""
         self._t += 1

@@ -11,8 +11,9 @@ captions and not merely to high rewards.
     make serve &                                   # befit on 127.0.0.1:7878
     python examples/blocks_rl.py --url http://127.0.0.1:7878
 
-Needs `pip install ./clients/python`; matplotlib draws the plot when present
-(otherwise a plain PNG of the curves is written without text).
+Uses the installed `befit_client` (`pip install ./clients/python`), or the
+checkout's copy when none is installed; matplotlib draws the plot when
+present (otherwise a plain PNG of the curves is written, without text).
 """
 
 from __future__ import annotations
@@ -26,13 +27,16 @@ from typing import Dict, List
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
+REPO = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(REPO / "examples"))
+try:
+    import befit_client  # noqa: F401
+except ImportError:  # not installed: use the checkout's copy
+    sys.path.insert(0, str(REPO / "clients/python/src"))
 
 from blocks_policy import FactorisedPolicy, chance_correctness, judge, parse, render, true_action  # noqa: E402
 
 from befit_client import Client, encode_png  # noqa: E402
-
-REPO = Path(__file__).resolve().parent.parent
 
 
 def parse_args(argv: List[str]) -> argparse.Namespace:
@@ -50,6 +54,7 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
     )
     p.add_argument("--scale", default="cosine", choices=("cosine", "clip-s"), help="reward scale (default %(default)s)")
     p.add_argument("--lr", type=float, default=0.05, help="Adam step size on the logits (default %(default)s)")
+    p.add_argument("--entropy", type=float, default=0.0, help="weight of an entropy bonus on every slot (default %(default)s)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the policy and image choice")
     p.add_argument("--model", default=None, help="befit model id or name (default: the server's)")
     p.add_argument("--no-normalise", action="store_true", help="use befit's advantages as they are, not divided by their std")
@@ -168,7 +173,10 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
         adv = np.asarray(out.advantage, dtype=np.float64)
         if not args.no_normalise:
             adv = adv / (adv.std() + 1e-8)
-        policy.step(policy.gradient(actions, adv))
+        grad = policy.gradient(actions, adv)
+        if args.entropy:
+            grad += args.entropy * policy.entropy_gradient()
+        policy.step(grad)
     elapsed = time.monotonic() - started
     final_ok = np.array([judge(c, s).correct for c, s in zip(greedy, scenes)])
     above = out.greedy_reward > true_reward + 1e-6
@@ -184,9 +192,10 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
         "chance": chance,
         "greedy_correct_start": history[0]["greedy_correct"],
         "greedy_correct_end": history[-1]["greedy_correct"],
+        # First step (and its second) at which greedy correctness reached each level.
         "steps_to": {
-            str(level): next((h["step"] for h in history if h["greedy_correct"] >= level), None)
-            for level in (0.25, 0.5, 0.75, 0.9)
+            str(level): next(([h["step"], round(h["seconds"], 1)] for h in history if h["greedy_correct"] >= level), None)
+            for level in (0.05, 0.1, 0.15, 0.25, 0.5)
         },
         "retries": client.transport.retries_done,
         "true_caption_reward": float(true_reward.mean()),
@@ -196,8 +205,8 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
     print(
         f"done: {args.steps} steps in {elapsed:.1f}s ({request_seconds:.1f}s waiting for befit, "
         f"{client.transport.retries_done} retries); greedy correctness {summary['greedy_correct_start']:.3f} -> "
-        f"{summary['greedy_correct_end']:.3f} (chance {chance:.4f}); first step reaching "
-        + ", ".join(f"{k}: {v}" for k, v in summary["steps_to"].items())
+        f"{summary['greedy_correct_end']:.3f} (chance {chance:.4f}); reached "
+        + ", ".join(f"{k} at step {v[0]} ({v[1]}s)" if v else f"{k} never" for k, v in summary["steps_to"].items())
         + f"; reward model {model.id if model else '?'} {model.digest[:12] if model else ''}"
     )
     print(

@@ -128,6 +128,25 @@ def test_gradient_matches_finite_differences():
             assert grad[i, j] == pytest.approx((objective(up) - objective(down)) / (2 * eps), abs=1e-6)
 
 
+def test_entropy_gradient_matches_finite_differences():
+    rng = np.random.default_rng(5)
+    pol = bp.FactorisedPolicy(1, rng, init_scale=1.0)
+
+    def entropy(logits):
+        p = bp.FactorisedPolicy(1, rng)
+        p.logits = logits
+        probs = p.probabilities()
+        return float(-(probs * np.log(probs)).sum())
+
+    grad = pol.entropy_gradient()
+    eps = 1e-6
+    for j in range(bp.N_LOGITS):
+        up, down = pol.logits.copy(), pol.logits.copy()
+        up[0, j] += eps
+        down[0, j] -= eps
+        assert grad[0, j] == pytest.approx((entropy(up) - entropy(down)) / (2 * eps), abs=1e-6)
+
+
 def test_reinforce_finds_the_right_caption_with_a_fact_reward(probe_rows):
     # A stand-in reward (share of true facts) shows the update rule can learn;
     # the real run learns from befit instead (test_blocks_rl.py).

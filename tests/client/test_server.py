@@ -20,6 +20,7 @@ from befit_client import (
     ModelMismatchError,
     OverLimitError,
     PathRefusedError,
+    RequestTooLargeError,
     ServerPath,
     UnknownImageError,
     UnknownMapError,
@@ -231,3 +232,29 @@ def test_local_argument_mistakes_fail_before_sending(client, rows):
     with pytest.raises(ValueError, match="baseline"):
         client.rewards(paths(rows[:1]), [["a red ring"]], baseline="mean")
     assert client.transport.requests_sent == sent
+
+
+def test_registration_and_vectors_split_under_max_images(befit, rows):
+    client = Client(befit.url, limits=Limits(max_images=2))
+    files = paths(rows[:5])
+    ids = client.register_images(files)
+    assert client.transport.requests_sent == 3  # 2 + 2 + 1
+    assert ids == [hashlib.sha256(p.read_bytes()).hexdigest() for p in files]
+    v = client.vectors(ids, ["a red ring"])
+    assert client.transport.requests_sent == 3 + 4  # 3 image requests, 1 text request
+    whole = Client(befit.url).vectors(ids, ["a red ring"])
+    np.testing.assert_allclose(v.images, whole.images, atol=1e-6)
+    np.testing.assert_allclose(v.texts, whole.texts, atol=1e-6)
+    assert v.image_ids == ids
+
+
+def test_an_image_too_big_for_json_goes_as_a_raw_body(befit, rows):
+    data = (PROBE_DIR / rows[3]["image"]).read_bytes()
+    # Base64 of the image no longer fits 90% of the body limit, the raw bytes do.
+    client = Client(befit.url, limits=Limits(max_body_bytes=len(data) + 16))
+    (cid,) = client.register_images([data])
+    assert cid == hashlib.sha256(data).hexdigest() and client.transport.requests_sent == 1
+    small = Client(befit.url, limits=Limits(max_body_bytes=len(data) - 1))
+    with pytest.raises(RequestTooLargeError) as e:
+        small.register_images([data])
+    assert e.value.limit == "max_body_bytes" and small.transport.requests_sent == 0
