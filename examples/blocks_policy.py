@@ -36,7 +36,7 @@ from __future__ import annotations
 import itertools
 import re
 from dataclasses import dataclass
-from typing import Dict, List, Optional, Sequence, Tuple
+from typing import Dict, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -146,11 +146,7 @@ class Verdict:
     @property
     def true(self) -> bool:
         """Every stated fact holds."""
-        return (
-            self.count_ok is not False
-            and self.pieces_ok == self.pieces_stated
-            and self.relation_ok is not False
-        )
+        return self.count_ok is not False and self.pieces_ok == self.pieces_stated and self.relation_ok is not False
 
     @property
     def correct(self) -> bool:
@@ -244,7 +240,11 @@ def true_action(scene: dict) -> np.ndarray:
     action[FORM_SLOT] = FORMS.index("list")
     for k, piece in enumerate(scene["pieces"]):
         a, b, c = piece_slots(k)
-        action[a], action[b], action[c] = SIZES.index(piece["size"]), COLOURS.index(piece["colour"]), SHAPES.index(piece["shape"])
+        action[a], action[b], action[c] = (
+            SIZES.index(piece["size"]),
+            COLOURS.index(piece["colour"]),
+            SHAPES.index(piece["shape"]),
+        )
     return action
 
 

@@ -42,7 +42,9 @@ from befit_client import Client, encode_png  # noqa: E402
 def parse_args(argv: List[str]) -> argparse.Namespace:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     p.add_argument("--url", default="http://127.0.0.1:7878", help="befit server (default %(default)s)")
-    p.add_argument("--probe", type=Path, default=REPO / "fixtures/probe/probe.jsonl", help="probe rows with scene facts")
+    p.add_argument(
+        "--probe", type=Path, default=REPO / "fixtures/probe/probe.jsonl", help="probe rows with scene facts"
+    )
     p.add_argument("--images", type=int, default=300, help="probe images to caption (default %(default)s)")
     p.add_argument("--steps", type=int, default=300, help="policy updates (default %(default)s)")
     p.add_argument("--samples", type=int, default=8, help="captions sampled per image and step (default %(default)s)")
@@ -54,10 +56,14 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
     )
     p.add_argument("--scale", default="cosine", choices=("cosine", "clip-s"), help="reward scale (default %(default)s)")
     p.add_argument("--lr", type=float, default=0.05, help="Adam step size on the logits (default %(default)s)")
-    p.add_argument("--entropy", type=float, default=0.0, help="weight of an entropy bonus on every slot (default %(default)s)")
+    p.add_argument(
+        "--entropy", type=float, default=0.0, help="weight of an entropy bonus on every slot (default %(default)s)"
+    )
     p.add_argument("--seed", type=int, default=0, help="random seed of the policy and image choice")
     p.add_argument("--model", default=None, help="befit model id or name (default: the server's)")
-    p.add_argument("--no-normalise", action="store_true", help="use befit's advantages as they are, not divided by their std")
+    p.add_argument(
+        "--no-normalise", action="store_true", help="use befit's advantages as they are, not divided by their std"
+    )
     p.add_argument("--plot", type=Path, default=Path("blocks_rl.png"), help="output plot (default %(default)s)")
     p.add_argument("--log", type=Path, default=None, help="also write per-step metrics as JSON here")
     p.add_argument("--every", type=int, default=20, help="print progress every this many steps")
@@ -194,7 +200,9 @@ def run(args: argparse.Namespace) -> Dict[str, object]:
         "greedy_correct_end": history[-1]["greedy_correct"],
         # First step (and its second) at which greedy correctness reached each level.
         "steps_to": {
-            str(level): next(([h["step"], round(h["seconds"], 1)] for h in history if h["greedy_correct"] >= level), None)
+            str(level): next(
+                ([h["step"], round(h["seconds"], 1)] for h in history if h["greedy_correct"] >= level), None
+            )
             for level in (0.05, 0.1, 0.15, 0.25, 0.5)
         },
         "retries": client.transport.retries_done,
@@ -229,7 +237,12 @@ def plot(history: List[Dict[str, float]], chance: float, args: argparse.Namespac
         matplotlib.use("Agg")
         import matplotlib.pyplot as plt
     except ImportError:
-        plain_plot(steps, [series["reward"], series["greedy_reward"], series["true_reward"]], [series["greedy_correct"], series["sample_correct"]], args.plot)
+        plain_plot(
+            steps,
+            [series["reward"], series["greedy_reward"], series["true_reward"]],
+            [series["greedy_correct"], series["sample_correct"]],
+            args.plot,
+        )
         print(f"wrote {args.plot} (matplotlib not installed: curves only, no text)")
         return
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(7, 7), sharex=True)
@@ -251,9 +264,7 @@ def plot(history: List[Dict[str, float]], chance: float, args: argparse.Namespac
     bottom.set_ylabel("share of captions (judged by scene facts)")
     bottom.legend(loc="upper left", fontsize=8)
     bottom.grid(alpha=0.3)
-    fig.suptitle(
-        f"blocks world, {args.images} images x {args.samples} samples, baseline {args.baseline}", fontsize=11
-    )
+    fig.suptitle(f"blocks world, {args.images} images x {args.samples} samples, baseline {args.baseline}", fontsize=11)
     fig.tight_layout()
     fig.savefig(args.plot, dpi=100)
     plt.close(fig)

@@ -51,7 +51,9 @@ def scene(*pieces, width=64, height=64):
 
 
 def test_rendered_captions_round_trip_through_the_judge():
-    s = scene(("small", "red", "circle", 10, 30), ("large", "blue", "ring", 50, 30), ("small", "green", "cross", 30, 55))
+    s = scene(
+        ("small", "red", "circle", 10, 30), ("large", "blue", "ring", 50, 30), ("small", "green", "cross", 30, 55)
+    )
     # count 3, form relation, pieces red circle / blue ring / green cross, relation "left of".
     action = [2, 1, 0, 0, 0, 1, 4, 4, 0, 3, 3, 0]
     caption = bp.render(action)
@@ -155,8 +157,12 @@ def test_reinforce_finds_the_right_caption_with_a_fact_reward(probe_rows):
     pol = bp.FactorisedPolicy(len(rows), rng, lr=0.2)
     for _ in range(150):
         actions = pol.sample(8, rng)
-        r = np.array([[bp.judge(bp.render(a), row["scene"]).correct for a in acts] for acts, row in zip(actions, rows)], float)
-        r += np.array([[bp.judge(bp.render(a), row["scene"]).pieces_ok for a in acts] for acts, row in zip(actions, rows)])
+        r = np.array(
+            [[bp.judge(bp.render(a), row["scene"]).correct for a in acts] for acts, row in zip(actions, rows)], float
+        )
+        r += np.array(
+            [[bp.judge(bp.render(a), row["scene"]).pieces_ok for a in acts] for acts, row in zip(actions, rows)]
+        )
         adv = r - (r.sum(1, keepdims=True) - r) / 7
         pol.step(pol.gradient(actions, adv / (adv.std() + 1e-8)))
     greedy = [bp.judge(bp.render(a), row["scene"]) for a, row in zip(pol.greedy(), rows)]

@@ -83,7 +83,13 @@ def test_parse_retry_after_forms():
 
 def test_error_body_becomes_a_typed_error():
     body = json.dumps(
-        {"error": {"code": "invalid_field", "message": "groups[3].captions must not be empty", "field": "groups[3].captions"}}
+        {
+            "error": {
+                "code": "invalid_field",
+                "message": "groups[3].captions must not be empty",
+                "field": "groups[3].captions",
+            }
+        }
     ).encode()
     err = from_response(400, body)
     assert isinstance(err, InvalidFieldError)

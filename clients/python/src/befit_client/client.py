@@ -81,8 +81,10 @@ class Client:
       raises :class:`ModelMismatchError`. None: no pinning (the digests of
       the chunks of one call must still agree).
     - ``timeout``: seconds for each socket operation.
-    - ``retry``: when to retry (503 and dropped connections by default).
-    - ``limits``: the server's limits, used to split requests.
+    - ``retry``: when to retry (default ``RetryPolicy()``: 503 answers,
+      dropped connections and timeouts).
+    - ``limits``: the server's limits, used to split requests (default
+      ``Limits()``: the server's defaults).
     - ``max_workers``: chunks of one call sent at once (the server batches
       concurrent requests together, so 2-4 can help on a big call).
 
@@ -96,14 +98,14 @@ class Client:
         model: Optional[str] = None,
         pin_digest: Optional[str] = None,
         timeout: float = 150.0,
-        retry: RetryPolicy = RetryPolicy(),
-        limits: Limits = Limits(),
+        retry: Optional[RetryPolicy] = None,
+        limits: Optional[Limits] = None,
         max_workers: int = 1,
         transport: Optional[Transport] = None,
     ) -> None:
-        self.transport = transport or Transport(url, timeout=timeout, retry=retry)
+        self.transport = transport or Transport(url, timeout=timeout, retry=retry or RetryPolicy())
         self.model = model
-        self.limits = limits
+        self.limits = limits or Limits()
         self.max_workers = max(1, int(max_workers))
         self._pin_first = pin_digest == "first"
         if pin_digest is not None and not self._pin_first:
@@ -194,9 +196,7 @@ class Client:
     def models(self) -> Tuple[str, List[ModelDetails]]:
         """``(default id, loaded models)`` from ``GET /v1/models``."""
         doc = self._get("/v1/models")
-        out = [
-            ModelDetails(ModelInfo.from_json(m), int(m.get("dimension", 0)), dict(m)) for m in doc.get("models", [])
-        ]
+        out = [ModelDetails(ModelInfo.from_json(m), int(m.get("dimension", 0)), dict(m)) for m in doc.get("models", [])]
         return str(doc.get("default", "")), out
 
     def model_info(self) -> ModelInfo:

@@ -68,7 +68,9 @@ def encode_png(pixels: np.ndarray, compression: int = 6) -> bytes:
     15948:2004): 8-bit samples, filter type 0 on every row, no interlace."""
     arr = np.asarray(pixels)
     if arr.dtype != np.uint8:
-        raise TypeError(f"encode_png takes uint8 pixels, got {arr.dtype}; convert with .astype(np.uint8) after scaling to 0..255")
+        raise TypeError(
+            f"encode_png takes uint8 pixels, got {arr.dtype}; convert with .astype(np.uint8) after scaling to 0..255"
+        )
     if arr.ndim == 3 and arr.shape[2] == 1:
         arr = arr[:, :, 0]
     if arr.ndim == 2:

@@ -116,7 +116,7 @@ class Transport:
         self,
         url: str,
         timeout: float = 150.0,
-        retry: RetryPolicy = RetryPolicy(),
+        retry: Optional[RetryPolicy] = None,
         user_agent: str = "befit-client",
         sleep: Callable[[float], None] = time.sleep,
         rng: Optional[random.Random] = None,
@@ -130,7 +130,7 @@ class Transport:
         self.port = parts.port or (443 if parts.scheme == "https" else 80)
         self.prefix = parts.path.rstrip("/")
         self.timeout = timeout
-        self.retry = retry
+        self.retry = retry or RetryPolicy()
         self.user_agent = user_agent
         self.sleep = sleep
         self.clock = clock
