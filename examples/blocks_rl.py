@@ -83,27 +83,26 @@ def load_rows(path: Path, n: int, rng: np.random.Generator) -> List[dict]:
     return [rows[i] for i in keep]
 
 
-_VERDICTS: Dict[tuple, object] = {}
+_VERDICTS: Dict[tuple, tuple] = {}
 
 
-def _judge(caption: str, scene: dict, key: int):
-    # A converging policy repeats its captions: judge each (image, caption) once.
+def _judge(caption: str, scene: dict, key: int) -> tuple:
+    """(verdict, per mentioned piece: do its size and colour lie on the
+    table?), memoised: a converging policy repeats its captions."""
     k = (key, caption)
     if k not in _VERDICTS:
-        _VERDICTS[k] = judge(caption, scene)
+        present = {(p["size"], p["colour"]) for p in scene["pieces"]}
+        _VERDICTS[k] = (judge(caption, scene), [(m[0], m[1]) in present for m in parse(caption).pieces])
     return _VERDICTS[k]
 
 
 def correctness(captions: List[str], scenes: List[dict], keys: List[int]) -> Dict[str, float]:
     """Share of correct captions and of each kind of true claim; `keys`
     name each caption's image (for the memo)."""
-    verdicts = [_judge(c, s, k) for c, s, k in zip(captions, scenes, keys)]
+    judged = [_judge(c, s, k) for c, s, k in zip(captions, scenes, keys)]
+    verdicts = [v for v, _ in judged]
     # Size and colour alone, shape aside: how much of each piece is right.
-    size_colour = [
-        (k[0], k[1]) in {(p["size"], p["colour"]) for p in s["pieces"]}
-        for c, s in zip(captions, scenes)
-        for k in parse(c).pieces
-    ]
+    size_colour = [ok for _, oks in judged for ok in oks]
     count = [v.count_ok for v in verdicts if v.count_ok is not None]
     rel = [v.relation_ok for v in verdicts if v.relation_ok is not None]
     return {
