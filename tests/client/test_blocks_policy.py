@@ -5,10 +5,9 @@ from __future__ import annotations
 
 import itertools
 
+import blocks_policy as bp
 import numpy as np
 import pytest
-
-import blocks_policy as bp
 
 
 def test_judge_accepts_every_true_probe_caption(probe_rows):

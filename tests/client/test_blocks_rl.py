@@ -8,7 +8,7 @@ import os
 import subprocess
 import sys
 
-from conftest import PROBE_DIR, REPO
+from .client_env import PROBE_DIR, REPO
 
 
 def test_short_run_learns_correct_captions_from_befit(befit, tmp_path):

@@ -9,7 +9,6 @@ import zlib
 
 import numpy as np
 import pytest
-
 from befit_client import ImageId, ServerPath, content_id, encode_png
 from befit_client.images import source_bytes
 

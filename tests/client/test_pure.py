@@ -9,7 +9,6 @@ import random
 
 import numpy as np
 import pytest
-
 from befit_client import (
     ApiError,
     InvalidFieldError,
@@ -23,7 +22,13 @@ from befit_client import (
     parse_retry_after,
     scale_json,
 )
-from befit_client.chunking import group_captions, json_size, plan_image_chunks, plan_reward_chunks, split
+from befit_client.chunking import (
+    group_captions,
+    json_size,
+    plan_image_chunks,
+    plan_reward_chunks,
+    split,
+)
 from befit_client.errors import from_response
 from befit_client.results import assemble_rewards
 

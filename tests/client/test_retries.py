@@ -13,7 +13,6 @@ import time
 from typing import Iterator, List, Tuple
 
 import pytest
-
 from befit_client import (
     Client,
     ImageId,

@@ -10,8 +10,6 @@ import io
 
 import numpy as np
 import pytest
-
-from conftest import PROBE_DIR
 from befit_client import (
     Client,
     ImageId,
@@ -30,6 +28,8 @@ from befit_client import (
     encode_png,
     ref_clip_s,
 )
+
+from .client_env import PROBE_DIR
 
 
 @pytest.fixture
