@@ -25,6 +25,8 @@ from befit_client import (
 )
 from befit_client.transport import Transport
 
+from .client_env import BUNDLE, BefitProcess
+
 
 class Stub:
     """Stub server; `script` is consumed one entry per incoming request:
@@ -227,3 +229,36 @@ def test_retry_after_is_waited_for_in_real_time(stub, image_id):
     client.rewards([image_id], CAPTIONS)
     assert time.monotonic() - started >= 1.0
     assert len(stub.seen) == 2
+
+
+def test_the_real_server_sheds_and_every_call_still_gets_through(tmp_path, probe_rows):
+    # befit with --max-inflight 1 answers 503 + Retry-After to all but one
+    # request at a time; six trainers at once must all get their rewards.
+    server = BefitProcess(BUNDLE, tmp_path / "data", tmp_path / "befit.log", ["--max-inflight", "1"])
+    try:
+        client = Client(server.url, retry=RetryPolicy(max_attempts=40, initial_delay=0.05, max_delay=0.5))
+        rows = probe_rows[:200]
+        ids = client.register_images([ServerPath(r["image"]) for r in rows])
+        shapes, errors = [], []
+
+        def trainer(k: int) -> None:
+            try:
+                for step in range(3):
+                    caps = [
+                        [f"{n} pieces: a small red circle {k} {step} {j}" for j in range(8)] for n in range(len(rows))
+                    ]
+                    shapes.append(client.rewards(ids, caps).reward.shape)
+            except Exception as exc:  # reported below with the assertion
+                errors.append(exc)
+
+        threads = [threading.Thread(target=trainer, args=(k,)) for k in range(6)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert errors == []
+        assert shapes == [(200, 8)] * 18
+        assert client.transport.retries_done > 0  # it did shed
+        assert client.transport.requests_sent == 1 + 18 + client.transport.retries_done
+    finally:
+        server.stop()
