@@ -1,0 +1,1 @@
+"""The Python client's tests (a package, so its conftest never shadows another folder's)."""

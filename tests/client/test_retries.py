@@ -1,0 +1,264 @@
+"""Retries, backoff, Retry-After and dropped connections, through a stub
+HTTP server placed in front of the real befit: the stub answers 503, drops
+the connection or stalls for the first requests as told, then passes every
+request through to befit unchanged."""
+
+from __future__ import annotations
+
+import http.client
+import http.server
+import json
+import threading
+import time
+from typing import Iterator, List, Tuple
+
+import pytest
+from befit_client import (
+    Client,
+    ImageId,
+    InvalidFieldError,
+    NotReadyError,
+    OverloadedError,
+    RetryPolicy,
+    ServerPath,
+    TransportError,
+)
+from befit_client.transport import Transport
+
+from .client_env import BUNDLE, BefitProcess
+
+
+class Stub:
+    """Stub server; `script` is consumed one entry per incoming request:
+    ("503", retry_after or None), ("not_ready", None), ("drop", None),
+    ("stall", seconds); once empty, requests pass through to `upstream`."""
+
+    def __init__(self, upstream: str) -> None:
+        host, port = upstream.split("//", 1)[1].split(":")
+        self.upstream = (host, int(port))
+        self.script: List[Tuple[str, object]] = []
+        self.seen: List[str] = []
+        self.lock = threading.Lock()
+        stub = self
+
+        class Handler(http.server.BaseHTTPRequestHandler):
+            protocol_version = "HTTP/1.1"
+
+            def log_message(self, *args) -> None:  # keep pytest output clean
+                pass
+
+            def handle_any(self) -> None:
+                body = self.rfile.read(int(self.headers.get("Content-Length") or 0))
+                with stub.lock:
+                    stub.seen.append(f"{self.command} {self.path}")
+                    action = stub.script.pop(0) if stub.script else ("pass", None)
+                kind, arg = action
+                if kind == "drop":
+                    self.close_connection = True
+                    return
+                if kind == "stall":
+                    time.sleep(float(arg))
+                    self.close_connection = True
+                    return
+                if kind in ("503", "not_ready"):
+                    code = "overloaded" if kind == "503" else "not_ready"
+                    payload = json.dumps({"error": {"code": code, "message": f"stub says {code}"}}).encode()
+                    self.send_response(503)
+                    self.send_header("Content-Type", "application/json")
+                    self.send_header("Content-Length", str(len(payload)))
+                    if arg is not None:
+                        self.send_header("Retry-After", str(arg))
+                    self.end_headers()
+                    self.wfile.write(payload)
+                    return
+                conn = http.client.HTTPConnection(*stub.upstream, timeout=60)
+                headers = {k: v for k, v in self.headers.items() if k.lower() in ("content-type", "accept")}
+                conn.request(self.command, self.path, body=body or None, headers=headers)
+                resp = conn.getresponse()
+                data = resp.read()
+                conn.close()
+                self.send_response(resp.status)
+                for k, v in resp.getheaders():
+                    if k.lower() in ("content-type", "retry-after"):
+                        self.send_header(k, v)
+                self.send_header("Content-Length", str(len(data)))
+                self.end_headers()
+                self.wfile.write(data)
+
+            do_GET = do_POST = handle_any
+
+        self.server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.server.daemon_threads = True
+        self.url = f"http://127.0.0.1:{self.server.server_address[1]}"
+        self.thread = threading.Thread(target=self.server.serve_forever, daemon=True)
+        self.thread.start()
+
+    def close(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+
+
+@pytest.fixture
+def stub(befit) -> Iterator[Stub]:
+    s = Stub(befit.url)
+    yield s
+    s.close()
+
+
+@pytest.fixture(scope="module")
+def image_id(befit) -> ImageId:
+    with Client(befit.url) as c:
+        return c.register_images([ServerPath("images/00000.png")])[0]
+
+
+def client_via(stub: Stub, retry: RetryPolicy, timeout: float = 30.0):
+    waits: List[float] = []
+    transport = Transport(stub.url, timeout=timeout, retry=retry, sleep=waits.append)
+    return Client(transport=transport), waits
+
+
+CAPTIONS = [["two pieces", "a large purple cross", "a small red circle"]]
+
+
+def test_503_is_retried_and_retry_after_honoured(stub, befit, image_id):
+    direct = Client(befit.url).rewards([image_id], CAPTIONS)
+    stub.script = [("503", 1), ("503", 1), ("503", 2)]
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01, jitter=0.5))
+    out = client.rewards([image_id], CAPTIONS)
+    assert len(stub.seen) == 4
+    assert len(waits) == 3 and client.transport.retries_done == 3
+    # Never earlier than Retry-After, and at most jitter/4 of it later.
+    assert 1.0 <= waits[0] <= 1.125 and 1.0 <= waits[1] <= 1.125 and 2.0 <= waits[2] <= 2.25
+    assert out.cosine.tolist() == direct.cosine.tolist()
+
+
+def test_without_retry_after_the_backoff_grows(stub, image_id):
+    stub.script = [("503", None)] * 4
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.1, multiplier=2.0, max_delay=0.5, jitter=0.0))
+    client.rewards([image_id], CAPTIONS)
+    assert waits == pytest.approx([0.1, 0.2, 0.4, 0.5])
+
+
+def test_gives_up_after_max_attempts_with_the_servers_error(stub, image_id):
+    stub.script = [("503", 0)] * 10
+    client, waits = client_via(stub, RetryPolicy(max_attempts=4, initial_delay=0.01))
+    with pytest.raises(OverloadedError) as e:
+        client.rewards([image_id], CAPTIONS)
+    assert e.value.attempts == 4 and e.value.code == "overloaded" and e.value.retry_after == 0
+    assert e.value.message == "stub says overloaded"
+    assert len(stub.seen) == 4 and len(waits) == 3
+
+
+def test_a_retry_after_beyond_the_cap_is_not_waited_for(stub, image_id):
+    stub.script = [("503", 120)]
+    client, waits = client_via(stub, RetryPolicy(max_retry_after=60))
+    with pytest.raises(OverloadedError) as e:
+        client.rewards([image_id], CAPTIONS)
+    assert e.value.retry_after == 120 and e.value.attempts == 1
+    assert waits == [] and len(stub.seen) == 1
+
+
+def test_the_deadline_bounds_the_waiting(stub, image_id):
+    stub.script = [("503", 1)] * 5
+    now = [0.0]
+    waits: List[float] = []
+
+    def sleep(s: float) -> None:
+        waits.append(s)
+        now[0] += s
+
+    transport = Transport(stub.url, retry=RetryPolicy(deadline=2.5, jitter=0.0), sleep=sleep, clock=lambda: now[0])
+    # Waits of 1 s end at t = 1 and 2; the third would end at 3 > 2.5, so it is not taken.
+    with pytest.raises(OverloadedError) as e:
+        Client(transport=transport).rewards([image_id], CAPTIONS)
+    assert waits == [1.0, 1.0] and e.value.attempts == 3 and len(stub.seen) == 3
+
+
+def test_not_ready_is_retried_too(stub, image_id):
+    stub.script = [("not_ready", 1)]
+    client, waits = client_via(stub, RetryPolicy())
+    client.rewards([image_id], CAPTIONS)
+    assert len(stub.seen) == 2 and len(waits) == 1
+
+
+def test_not_ready_is_not_retried_when_503_is_not_listed(stub, image_id):
+    stub.script = [("not_ready", 1)]
+    client, _ = client_via(stub, RetryPolicy(retry_statuses=frozenset()))
+    with pytest.raises(NotReadyError):
+        client.rewards([image_id], CAPTIONS)
+
+
+def test_dropped_connections_are_retried_on_a_fresh_connection(stub, befit, image_id):
+    direct = Client(befit.url).rewards([image_id], CAPTIONS)
+    stub.script = [("drop", None), ("drop", None)]
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.05, jitter=0.0))
+    out = client.rewards([image_id], CAPTIONS)
+    assert len(stub.seen) == 3 and waits == pytest.approx([0.05, 0.1])
+    assert out.reward.tolist() == direct.reward.tolist()
+
+
+def test_a_connection_that_always_drops_raises_transport_error(stub, image_id):
+    stub.script = [("drop", None)] * 5
+    client, _ = client_via(stub, RetryPolicy(max_attempts=3, initial_delay=0.01))
+    with pytest.raises(TransportError) as e:
+        client.rewards([image_id], CAPTIONS)
+    assert e.value.attempts == 3 and len(stub.seen) == 3
+
+
+def test_a_stalled_answer_times_out_and_is_retried(stub, image_id):
+    stub.script = [("stall", 1.5)]
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01), timeout=0.5)
+    started = time.monotonic()
+    out = client.rewards([image_id], CAPTIONS)
+    assert time.monotonic() - started < 1.5  # did not wait for the stalled answer
+    assert len(stub.seen) == 2 and len(waits) == 1 and out.reward.shape == (1, 3)
+
+
+def test_client_errors_pass_through_and_are_not_retried(stub, image_id):
+    client, waits = client_via(stub, RetryPolicy())
+    with pytest.raises(InvalidFieldError) as e:
+        client.rewards([image_id], [[]])
+    assert e.value.status == 400 and e.value.field == "groups[0].captions"
+    assert len(stub.seen) == 1 and waits == []
+
+
+def test_retry_after_is_waited_for_in_real_time(stub, image_id):
+    stub.script = [("503", 1)]
+    client = Client(stub.url, retry=RetryPolicy(jitter=0.0))
+    started = time.monotonic()
+    client.rewards([image_id], CAPTIONS)
+    assert time.monotonic() - started >= 1.0
+    assert len(stub.seen) == 2
+
+
+def test_the_real_server_sheds_and_every_call_still_gets_through(tmp_path, probe_rows):
+    # befit with --max-inflight 1 answers 503 + Retry-After to all but one
+    # request at a time; six trainers at once must all get their rewards.
+    server = BefitProcess(BUNDLE, tmp_path / "data", tmp_path / "befit.log", ["--max-inflight", "1"])
+    try:
+        client = Client(server.url, retry=RetryPolicy(max_attempts=40, initial_delay=0.05, max_delay=0.5))
+        rows = probe_rows[:200]
+        ids = client.register_images([ServerPath(r["image"]) for r in rows])
+        shapes, errors = [], []
+
+        def trainer(k: int) -> None:
+            try:
+                for step in range(3):
+                    caps = [
+                        [f"{n} pieces: a small red circle {k} {step} {j}" for j in range(8)] for n in range(len(rows))
+                    ]
+                    shapes.append(client.rewards(ids, caps).reward.shape)
+            except Exception as exc:  # reported below with the assertion
+                errors.append(exc)
+
+        threads = [threading.Thread(target=trainer, args=(k,)) for k in range(6)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert errors == []
+        assert shapes == [(200, 8)] * 18
+        assert client.transport.retries_done > 0  # it did shed
+        assert client.transport.requests_sent == 1 + 18 + client.transport.retries_done
+    finally:
+        server.stop()
