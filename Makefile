@@ -13,7 +13,7 @@ DATA_DIR ?= $(CACHE)/serve-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean
+.PHONY: all serve test bench ort venv build lint clean rl
 
 all: build
 
@@ -29,10 +29,10 @@ $(ORT_LIB):
 ort: $(ORT_LIB)
 
 # Python environment for reference checks and the client's tests (never needed by the service).
-$(VENV)/.ready: tests/reference/requirements.txt
+$(VENV)/.ready: tests/reference/requirements.txt tests/client/requirements.txt
 	$(PYTHON) -m venv $(VENV)
 	$(VENV_PY) -m pip install --quiet --upgrade pip
-	$(VENV_PY) -m pip install --quiet -r tests/reference/requirements.txt
+	$(VENV_PY) -m pip install --quiet -r tests/reference/requirements.txt -r tests/client/requirements.txt
 	touch $@
 
 venv: $(VENV)/.ready
@@ -51,7 +51,12 @@ lint:
 
 test: $(ORT_LIB) $(VENV)/.ready lint
 	cargo test --locked
-	$(VENV_PY) -m pytest -q tests/reference
+	cargo build --release --locked
+	$(VENV_PY) -m pytest -q tests/reference tests/client
+
+# The policy-gradient example against a running `make serve`.
+rl: $(VENV)/.ready
+	$(VENV_PY) examples/blocks_rl.py --url http://$(ADDR)
 
 bench: build $(VENV)/.ready
 	$(VENV_PY) bench/run.py
