@@ -10,10 +10,11 @@ fn default_weight() -> f32 {
 }
 
 /// A reward scale, as requests name it.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
 pub enum Scale {
     /// The cosine itself.
+    #[default]
     Cosine,
     /// `w * max(c, 0)`: CLIPScore, Hessel et al. 2021, eq. 1.
     ClipS {
@@ -27,12 +28,6 @@ pub enum Scale {
     },
     /// `a * c + b`, for a calibration the caller fitted.
     Affine { a: f32, b: f32 },
-}
-
-impl Default for Scale {
-    fn default() -> Self {
-        Scale::Cosine
-    }
 }
 
 impl Scale {

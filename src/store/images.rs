@@ -184,7 +184,7 @@ impl ImageStore {
 }
 
 fn decode_vector(id: &str, blob: &[u8]) -> Result<Vec<f32>, StoreError> {
-    if blob.len() % 4 != 0 {
+    if !blob.len().is_multiple_of(4) {
         return Err(StoreError::BadVector {
             id: id.to_string(),
             found: blob.len(),

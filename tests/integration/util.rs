@@ -58,7 +58,8 @@ pub fn ort_env() -> &'static ort::environment::Environment {
 
 /// One loaded model per bundle and settings, shared by the tests of this binary.
 pub fn model(name: &str) -> Arc<Model> {
-    static MODELS: OnceLock<std::sync::Mutex<Vec<(String, Arc<Model>)>>> = OnceLock::new();
+    type Loaded = std::sync::Mutex<Vec<(String, Arc<Model>)>>;
+    static MODELS: OnceLock<Loaded> = OnceLock::new();
     let cache = MODELS.get_or_init(Default::default);
     let mut cache = cache.lock().unwrap();
     if let Some((_, m)) = cache.iter().find(|(n, _)| n == name) {
