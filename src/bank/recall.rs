@@ -56,3 +56,27 @@ mod tests {
         assert_eq!(mean_recall(&exact, &approx, 1), 0.5);
     }
 }
+
+/// Recall@k of `index`'s graph search at breadth `ef_search` against its own
+/// exact scan, over `queries` (row-major, the index's dimension).
+pub fn index_recall(
+    index: &super::VectorIndex,
+    queries: &[f32],
+    k: usize,
+    ef_search: usize,
+) -> Result<f64, super::IndexError> {
+    let dim = index.dimension().max(1);
+    let mut exact = Vec::new();
+    let mut approx = Vec::new();
+    let search = super::Search {
+        k,
+        ef_search: Some(ef_search),
+        mode: super::SearchMode::Index,
+        only: None,
+    };
+    for q in queries.chunks_exact(dim) {
+        exact.push(index.exact(q, k, None)?.iter().map(|n| n.cosine).collect());
+        approx.push(index.search(q, &search)?.hits.iter().map(|n| n.cosine).collect());
+    }
+    Ok(mean_recall(&exact, &approx, k))
+}
