@@ -1,0 +1,66 @@
+"""Retrieval benchmark, hnswlib's side: the same vectors, M, ef_construction
+and search breadths as befit's side (bench/retrieval/main.rs), one JSON line
+per figure on standard output.
+
+    python hnswlib_side.py --dir target/retrieval/blocks-100000 --kind blocks \
+        --m 16 --ef-construction 200 --ef-search 16,32,64 --threads 2 --k 10
+"""
+
+import argparse
+import json
+import time
+from pathlib import Path
+
+import hnswlib
+import numpy as np
+
+# Same rule as befit::bank::recall (ann-benchmarks' knn_threshold, with a
+# tighter epsilon): a hit counts when its cosine reaches the exact k-th one.
+RECALL_EPSILON = 1e-6
+
+
+def recall(exact_cos: np.ndarray, approx_cos: np.ndarray, k: int) -> float:
+    threshold = exact_cos[:, k - 1:k] - RECALL_EPSILON
+    return float(np.mean(np.sum(approx_cos[:, :k] >= threshold, axis=1) / k))
+
+
+def main() -> None:
+    p = argparse.ArgumentParser()
+    p.add_argument("--dir", required=True, type=Path)
+    p.add_argument("--kind", required=True)
+    p.add_argument("--m", type=int, default=16)
+    p.add_argument("--ef-construction", type=int, default=200)
+    p.add_argument("--ef-search", default="16,32,64,96,128,256")
+    p.add_argument("--threads", type=int, default=2)
+    p.add_argument("--k", type=int, default=10)
+    a = p.parse_args()
+
+    base = np.load(a.dir / "base.npy")
+    queries = np.load(a.dir / "queries.npy")
+    exact_cos = np.load(a.dir / "exact_cos.npy")
+    n, dim = base.shape
+
+    index = hnswlib.Index(space="ip", dim=dim)
+    index.init_index(max_elements=n, M=a.m, ef_construction=a.ef_construction, random_seed=100)
+    index.set_num_threads(a.threads)
+    t = time.perf_counter()
+    index.add_items(base, np.arange(n), num_threads=a.threads)
+    build = time.perf_counter() - t
+    print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "build", "seconds": build,
+                      "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}), flush=True)
+
+    for ef in [int(x) for x in a.ef_search.split(",")]:
+        index.set_ef(ef)
+        # One thread, all queries in one call: the loop runs in C++, as befit's
+        # runs in Rust, so neither side pays for Python per query.
+        t = time.perf_counter()
+        _, distances = index.knn_query(queries, k=a.k, num_threads=1)
+        secs = time.perf_counter() - t
+        approx_cos = 1.0 - distances
+        print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "search", "ef_search": ef,
+                          "qps": len(queries) / secs, "recall": recall(exact_cos, approx_cos, a.k)}),
+              flush=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,226 @@
+//! Retrieval benchmark, befit's side: builds the caption index (hnsw_rs
+//! through `befit::bank::VectorIndex`) and the exact scan over seeded
+//! vectors, and reports build time, queries per second and recall@k at
+//! several search breadths as JSON lines. It writes the vectors and the exact
+//! answers as .npy files so `hnswlib_side.py` runs hnswlib on the very same
+//! data; `run.py` runs both and prints the ratios.
+//!
+//! `cargo bench --bench retrieval -- --sizes 100000 --out target/retrieval`
+//! (`--crossover` instead measures where the exact scan stops being faster).
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+use befit::bank::index::{IndexParams, Search, SearchMode, VectorIndex};
+use befit::bank::recall::mean_recall;
+use befit::bank::synthetic::{blocks_like, uniform_sphere};
+use befit::bank::RowId;
+
+const DIGEST: &str = "0000000000000000000000000000000000000000000000000000000000000000";
+
+struct Args {
+    sizes: Vec<usize>,
+    kinds: Vec<String>,
+    dim: usize,
+    queries: usize,
+    k: usize,
+    m: usize,
+    ef_construction: usize,
+    ef_search: Vec<usize>,
+    threads: usize,
+    out: PathBuf,
+    crossover: bool,
+    dump: bool,
+}
+
+fn list<T: std::str::FromStr>(s: &str) -> Vec<T> {
+    s.split(',').filter_map(|x| x.trim().parse().ok()).collect()
+}
+
+fn parse_args() -> Args {
+    let mut a = Args {
+        sizes: vec![100_000, 1_000_000],
+        kinds: vec!["uniform".into(), "blocks".into()],
+        dim: 64,
+        queries: 1_000,
+        k: 10,
+        m: 16,
+        ef_construction: 200,
+        ef_search: vec![16, 32, 64, 96, 128, 256],
+        threads: 2,
+        out: PathBuf::from("target/retrieval"),
+        crossover: false,
+        dump: true,
+    };
+    let mut it = std::env::args().skip(1);
+    while let Some(flag) = it.next() {
+        let mut value = || it.next().unwrap_or_default();
+        match flag.as_str() {
+            "--sizes" => a.sizes = list(&value()),
+            "--kinds" => a.kinds = value().split(',').map(str::to_string).collect(),
+            "--dim" => a.dim = value().parse().unwrap_or(a.dim),
+            "--queries" => a.queries = value().parse().unwrap_or(a.queries),
+            "--k" => a.k = value().parse().unwrap_or(a.k),
+            "--m" => a.m = value().parse().unwrap_or(a.m),
+            "--ef-construction" => a.ef_construction = value().parse().unwrap_or(a.ef_construction),
+            "--ef-search" => a.ef_search = list(&value()),
+            "--threads" => a.threads = value().parse().unwrap_or(a.threads),
+            "--out" => a.out = PathBuf::from(value()),
+            "--crossover" => a.crossover = true,
+            "--no-dump" => a.dump = false,
+            // cargo bench passes --bench to harness-less benchmarks.
+            "--bench" => {}
+            other => eprintln!("ignoring unknown argument {other}"),
+        }
+    }
+    a
+}
+
+/// Writes a C-order float32 or int64 array as .npy (format version 1.0).
+fn write_npy(path: &Path, descr: &str, shape: (usize, usize), bytes: &[u8]) -> std::io::Result<()> {
+    let mut header = format!(
+        "{{'descr': '{descr}', 'fortran_order': False, 'shape': ({}, {}), }}",
+        shape.0, shape.1
+    );
+    let unpadded = 10 + header.len() + 1;
+    header.push_str(&" ".repeat((64 - unpadded % 64) % 64));
+    header.push('\n');
+    let mut f = std::io::BufWriter::new(std::fs::File::create(path)?);
+    f.write_all(b"\x93NUMPY\x01\x00")?;
+    f.write_all(&(header.len() as u16).to_le_bytes())?;
+    f.write_all(header.as_bytes())?;
+    f.write_all(bytes)?;
+    f.flush()
+}
+
+fn f32_bytes(v: &[f32]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+fn data(kind: &str, n: usize, queries: usize, dim: usize) -> (Vec<f32>, Vec<f32>) {
+    match kind {
+        "uniform" => (uniform_sphere(n, dim, 1), uniform_sphere(queries, dim, 2)),
+        _ => blocks_like(n, queries, dim, 3),
+    }
+}
+
+fn params(a: &Args, exact_below: usize) -> IndexParams {
+    IndexParams {
+        max_connections: a.m,
+        ef_construction: a.ef_construction,
+        ef_search: 64,
+        exact_below,
+        build_threads: a.threads,
+    }
+}
+
+fn rows(base: &[f32], dim: usize) -> Vec<(RowId, Vec<f32>)> {
+    base.chunks(dim).enumerate().map(|(i, v)| (i as RowId, v.to_vec())).collect()
+}
+
+fn emit(line: serde_json::Value) {
+    println!("{line}");
+}
+
+fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
+    let dim = a.dim;
+    let (base, queries) = data(kind, n, a.queries, dim);
+    let stem = a.out.join(format!("{kind}-{n}"));
+    std::fs::create_dir_all(&stem)?;
+    write_npy(&stem.join("base.npy"), "<f4", (n, dim), &f32_bytes(&base))?;
+    write_npy(&stem.join("queries.npy"), "<f4", (a.queries, dim), &f32_bytes(&queries))?;
+
+    let index_dir = stem.join("befit-index");
+    let _ = std::fs::remove_dir_all(&index_dir);
+    let source = rows(&base, dim);
+    let t = Instant::now();
+    let (index, _) = VectorIndex::open(&index_dir, DIGEST, dim, params(a, 0), &source)
+        .map_err(std::io::Error::other)?;
+    let build = t.elapsed().as_secs_f64();
+    drop(source);
+
+    // Exact scan: ground truth and its own speed (one thread).
+    let t = Instant::now();
+    let mut exact_cos = Vec::new();
+    let mut exact_ids = Vec::new();
+    for q in queries.chunks(dim) {
+        let hits = index.exact(q, a.k, None).map_err(std::io::Error::other)?;
+        exact_cos.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
+        exact_ids.push(hits.iter().map(|h| h.id as i64).collect::<Vec<i64>>());
+    }
+    let exact_secs = t.elapsed().as_secs_f64();
+    let flat: Vec<f32> = exact_cos.iter().flatten().copied().collect();
+    write_npy(&stem.join("exact_cos.npy"), "<f4", (a.queries, a.k), &f32_bytes(&flat))?;
+    let ids: Vec<u8> = exact_ids.iter().flatten().flat_map(|x| x.to_le_bytes()).collect();
+    write_npy(&stem.join("exact_ids.npy"), "<i8", (a.queries, a.k), &ids)?;
+    emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "exact",
+        "qps": a.queries as f64 / exact_secs, "recall": 1.0}));
+    emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "build",
+        "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}));
+
+    for &ef in &a.ef_search {
+        let search = Search { k: a.k, ef_search: Some(ef), mode: SearchMode::Index, only: None };
+        let t = Instant::now();
+        let mut approx = Vec::with_capacity(a.queries);
+        for q in queries.chunks(dim) {
+            let hits = index.search(q, &search).map_err(std::io::Error::other)?.hits;
+            approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
+        }
+        let secs = t.elapsed().as_secs_f64();
+        emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search", "ef_search": ef,
+            "qps": a.queries as f64 / secs, "recall": mean_recall(&exact_cos, &approx, a.k)}));
+    }
+
+    if a.dump {
+        let t = Instant::now();
+        index.dump().map_err(std::io::Error::other)?;
+        let dump_secs = t.elapsed().as_secs_f64();
+        drop(index);
+        let source = rows(&base, dim);
+        let t = Instant::now();
+        let (_, report) = VectorIndex::open(&index_dir, DIGEST, dim, params(a, 0), &source)
+            .map_err(std::io::Error::other)?;
+        emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "dump",
+            "dump_seconds": dump_secs, "load_seconds": t.elapsed().as_secs_f64(), "origin": report.origin}));
+    }
+    let _ = std::fs::remove_dir_all(&index_dir);
+    Ok(())
+}
+
+/// Exact scan against the graph at the default breadth, bank sizes up to
+/// 100k: where the exact scan stops being the faster answer.
+fn crossover(a: &Args) -> std::io::Result<()> {
+    let dim = a.dim;
+    for n in [1_000, 2_000, 5_000, 10_000, 20_000, 30_000, 50_000, 100_000] {
+        let (base, queries) = blocks_like(n, a.queries, dim, 9);
+        let index = VectorIndex::in_memory(DIGEST, dim, params(a, 0)).map_err(std::io::Error::other)?;
+        index.insert(&rows(&base, dim)).map_err(std::io::Error::other)?;
+        let mut qps = Vec::new();
+        for mode in [SearchMode::Exact, SearchMode::Index] {
+            let search = Search { k: a.k, ef_search: None, mode, only: None };
+            let t = Instant::now();
+            for q in queries.chunks(dim) {
+                index.search(q, &search).map_err(std::io::Error::other)?;
+            }
+            qps.push(a.queries as f64 / t.elapsed().as_secs_f64());
+        }
+        emit(serde_json::json!({"what": "crossover", "n": n, "exact_qps": qps[0], "index_qps": qps[1],
+            "ef_search": befit::bank::index::DEFAULT_EF_SEARCH}));
+    }
+    Ok(())
+}
+
+fn main() -> std::io::Result<()> {
+    let a = parse_args();
+    std::fs::create_dir_all(&a.out)?;
+    if a.crossover {
+        return crossover(&a);
+    }
+    for n in a.sizes.clone() {
+        for kind in a.kinds.clone() {
+            run_size(&a, &kind, n)?;
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,80 @@
+"""Runs the retrieval benchmark on both sides and prints one table.
+
+befit's side (cargo bench --bench retrieval) generates the vectors, builds
+its index and the exact scan and writes everything to --out; hnswlib's side
+(hnswlib_side.py) reads the same files. Ratios are befit / hnswlib from this
+one run (queries per second: higher is better for befit above 1; build
+seconds: lower is better for befit below 1).
+
+    python bench/retrieval/run.py --sizes 100000           # the smaller size only
+    python bench/retrieval/run.py                          # 100k and 1M
+"""
+
+import argparse
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent.parent
+
+
+def lines(cmd):
+    print("+ " + " ".join(cmd), file=sys.stderr, flush=True)
+    out = subprocess.run(cmd, check=True, stdout=subprocess.PIPE, text=True, cwd=ROOT).stdout
+    return [json.loads(line) for line in out.splitlines() if line.startswith("{")]
+
+
+def main() -> None:
+    p = argparse.ArgumentParser()
+    p.add_argument("--sizes", default="100000,1000000")
+    p.add_argument("--kinds", default="uniform,blocks")
+    p.add_argument("--ef-search", default="16,32,64,96,128,256")
+    p.add_argument("--m", type=int, default=16)
+    p.add_argument("--ef-construction", type=int, default=200)
+    p.add_argument("--threads", type=int, default=2)
+    p.add_argument("--queries", type=int, default=1000)
+    p.add_argument("--out", default=str(ROOT / "target" / "retrieval"))
+    p.add_argument("--json", help="also write every figure to this file")
+    a = p.parse_args()
+
+    common = ["--m", str(a.m), "--ef-construction", str(a.ef_construction),
+              "--ef-search", a.ef_search, "--threads", str(a.threads)]
+    befit = lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--",
+                   "--sizes", a.sizes, "--kinds", a.kinds, "--queries", str(a.queries),
+                   "--out", a.out] + common)
+    hnsw = []
+    for size in a.sizes.split(","):
+        for kind in a.kinds.split(","):
+            hnsw += lines([sys.executable, str(HERE / "hnswlib_side.py"),
+                           "--dir", str(Path(a.out) / f"{kind}-{size}"), "--kind", kind] + common)
+    rows = befit + hnsw
+    if a.json:
+        Path(a.json).write_text(json.dumps(rows, indent=1))
+
+    def get(side, kind, n, what, ef=None):
+        for r in rows:
+            if (r["side"], r["kind"], r["n"], r["what"]) == (side, kind, n, what) and r.get("ef_search") == ef:
+                return r
+        return None
+
+    print(f"M={a.m} ef_construction={a.ef_construction} build threads={a.threads}, "
+          f"{a.queries} queries on one thread, k=10, dim 64")
+    for n in [int(s) for s in a.sizes.split(",")]:
+        for kind in a.kinds.split(","):
+            bb, hb = get("befit", kind, n, "build"), get("hnswlib", kind, n, "build")
+            ex = get("befit", kind, n, "exact")
+            dump = get("befit", kind, n, "dump")
+            print(f"\n{kind}, n={n}: build befit {bb['seconds']:.1f} s, hnswlib {hb['seconds']:.1f} s "
+                  f"(ratio {bb['seconds'] / hb['seconds']:.2f}); exact scan {ex['qps']:.0f} q/s"
+                  + (f"; dump {dump['dump_seconds']:.1f} s, load {dump['load_seconds']:.1f} s" if dump else ""))
+            print(f"{'ef_search':>9} | {'befit q/s':>10} {'recall':>7} | {'hnswlib q/s':>11} {'recall':>7} | {'q/s ratio':>9}")
+            for ef in [int(x) for x in a.ef_search.split(",")]:
+                b, h = get("befit", kind, n, "search", ef), get("hnswlib", kind, n, "search", ef)
+                print(f"{ef:>9} | {b['qps']:>10.0f} {b['recall']:>7.4f} | {h['qps']:>11.0f} {h['recall']:>7.4f} | "
+                      f"{b['qps'] / h['qps']:>9.2f}")
+
+
+if __name__ == "__main__":
+    main()
