@@ -32,6 +32,75 @@ pub enum Command {
     Calibrate(CalibrateArgs),
     /// Drift between two bundle versions on a labelled probe set.
     Drift(DriftArgs),
+    /// The caption bank: import captions, query nearest captions.
+    #[command(subcommand)]
+    Bank(BankCommand),
+}
+
+#[derive(Debug, Subcommand)]
+pub enum BankCommand {
+    /// Embed captions from a JSON Lines file and add them to the bank (resumable).
+    Import(BankImportArgs),
+    /// The captions nearest an image or a text.
+    Query(BankQueryArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct BankImportArgs {
+    /// Model bundle whose text encoder embeds the captions.
+    #[arg(long, value_name = "DIR")]
+    pub bundle: PathBuf,
+    /// Captions, one per line: {"text": "...", "tag": "..."} or a JSON string.
+    #[arg(long, value_name = "FILE.jsonl")]
+    pub from: PathBuf,
+    /// Tag for lines without their own.
+    #[arg(long)]
+    pub tag: Option<String>,
+    /// Data folder holding the bank (the one `befit serve --data-dir` uses).
+    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    pub data_dir: PathBuf,
+    /// Captions embedded and committed together.
+    #[arg(long, default_value_t = crate::bank::import::DEFAULT_IMPORT_BATCH)]
+    pub batch_size: usize,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct BankQueryArgs {
+    /// Model bundle.
+    #[arg(long, value_name = "DIR")]
+    pub bundle: PathBuf,
+    /// Query with this image file.
+    #[arg(long, value_name = "PATH")]
+    pub image: Option<PathBuf>,
+    /// Query with this caption.
+    #[arg(long)]
+    pub text: Option<String>,
+    /// Captions wanted.
+    #[arg(short, default_value_t = 10)]
+    pub k: usize,
+    /// Only captions with this tag.
+    #[arg(long)]
+    pub tag: Option<String>,
+    /// HNSW search breadth (default: the bank's).
+    #[arg(long)]
+    pub ef_search: Option<usize>,
+    /// Scan every caption instead of the index.
+    #[arg(long)]
+    pub exact: bool,
+    /// Print the answer as JSON.
+    #[arg(long)]
+    pub json: bool,
+    /// Data folder holding the bank.
+    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    pub data_dir: PathBuf,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
 }
 
 /// Where ONNX Runtime is.

@@ -3,6 +3,7 @@
 //! environment variables (`ORT_DYLIB_PATH`, `RUST_LOG`).
 
 pub mod args;
+mod bank_commands;
 mod probe_commands;
 mod serve;
 
@@ -14,7 +15,7 @@ use anyhow::Context;
 use clap::Parser;
 
 use crate::runtime::LibrarySearch;
-use args::{Cli, Command};
+use args::{BankCommand, Cli, Command};
 
 /// Parses `argv` and runs the command; the error chain is for `main` to print.
 pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode> {
@@ -32,6 +33,8 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Command::CheckBundle(a) => serve::check_bundle(a),
         Command::Calibrate(a) => probe_commands::calibrate(a),
         Command::Drift(a) => probe_commands::drift(a),
+        Command::Bank(BankCommand::Import(a)) => bank_commands::import(a),
+        Command::Bank(BankCommand::Query(a)) => bank_commands::query(a),
     }
 }
 

@@ -9,6 +9,7 @@ use anyhow::{bail, Context};
 
 use super::args::{CheckBundleArgs, EncoderArgs, ServeArgs};
 use super::ort_environment;
+use crate::bank::{BankConfig, CaptionBank};
 use crate::batching::BatchSettings;
 use crate::bundle::Bundle;
 use crate::encoders::{Engine, Model, ModelSettings};
@@ -19,6 +20,10 @@ use crate::server::{AppState, Limits};
 use crate::stats::ContinuityMap;
 use crate::store::images::ImageStore;
 use std::collections::BTreeMap;
+
+/// Seconds between dumps of the caption bank's index: appends since the last
+/// dump are replayed from the store at start, so this only bounds start-up work.
+const BANK_DUMP_SECONDS: u64 = 60;
 
 /// Encoder settings from the flags, checked.
 pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
@@ -114,6 +119,8 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     std::fs::create_dir_all(&a.data_dir)
         .with_context(|| format!("creating --data-dir {}", a.data_dir.display()))?;
     let store = Arc::new(ImageStore::open(&a.data_dir.join("images.sqlite"))?);
+    let bank = CaptionBank::open(&a.data_dir, BankConfig::default())
+        .context("opening the caption bank")?;
     let metrics = Arc::new(Registry::default());
     let maps_dir = a.data_dir.join("maps");
     let maps = load_maps(&maps_dir, &a.maps)?;
@@ -138,13 +145,48 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             tokio::task::spawn_blocking(move || {
                 match load_models(&bundles, env, &settings, &metrics) {
                     Ok(models) => {
+                        let digests: Vec<(String, usize)> =
+                            models.iter().map(|m| (m.bundle.digest.clone(), m.dimension())).collect();
                         let engine =
                             Engine::new(models, store, image_root, limits.max_pixels, metrics);
                         state.set_engine(Arc::new(engine));
-                        tracing::info!("ready");
+                        // The bank's indexes load (or rebuild) after the rewards routes are ready.
+                        let loaded = digests.iter().try_for_each(|(digest, dim)| {
+                            bank.model(digest, *dim).map(|(_, report)| {
+                                tracing::info!(digest = %&digest[..12], ?report, "caption bank index loaded");
+                            })
+                        });
+                        match loaded {
+                            Ok(()) => {
+                                state.set_bank(bank);
+                                tracing::info!("ready");
+                            }
+                            Err(e) => {
+                                let _ = fail_tx.try_send(anyhow::Error::new(e).context("loading the caption bank"));
+                            }
+                        }
                     }
                     Err(e) => {
                         let _ = fail_tx.try_send(e);
+                    }
+                }
+            })
+        };
+        let dump_state = state.clone();
+        let dumper = {
+            let state = state.clone();
+            tokio::spawn(async move {
+                let mut tick = tokio::time::interval(Duration::from_secs(BANK_DUMP_SECONDS));
+                tick.tick().await;
+                loop {
+                    tick.tick().await;
+                    if let Some(bank) = state.loaded_bank() {
+                        let bank = bank.clone();
+                        match tokio::task::spawn_blocking(move || bank.dump()).await {
+                            Ok(Err(e)) => tracing::error!(error = %e, "caption bank dump failed"),
+                            Err(e) => tracing::error!(error = %e, "caption bank dump task failed"),
+                            Ok(Ok(_)) => {}
+                        }
                     }
                 }
             })
@@ -160,6 +202,13 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         let _ = stop_tx.send(());
         let _ = loading.await;
         server.await.context("server task")?.context("serving")?;
+        dumper.abort();
+        if let Some(bank) = dump_state.loaded_bank() {
+            let bank = bank.clone();
+            if let Err(e) = tokio::task::spawn_blocking(move || bank.dump()).await.unwrap_or(Ok(Vec::new())) {
+                tracing::error!(error = %e, "could not dump the caption bank index at shutdown; it will be rebuilt at start");
+            }
+        }
         tracing::info!("stopped");
         outcome
     })?;

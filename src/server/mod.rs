@@ -43,6 +43,11 @@ pub fn app(state: AppState) -> Router {
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
         .route("/v1/vectors", post(routes::vectors::embed))
+        .route(
+            "/v1/bank",
+            post(routes::bank::append).get(routes::bank::stats),
+        )
+        .route("/v1/neighbors", post(routes::bank::neighbors))
         .route("/v1/calibration", post(routes::statistics::calibration))
         .route("/v1/drift", post(routes::statistics::drift))
         .fallback(not_found)

@@ -6,6 +6,7 @@ use std::sync::{Arc, OnceLock, RwLock};
 
 use super::error::ApiError;
 use super::limits::Limits;
+use crate::bank::CaptionBank;
 use crate::encoders::Engine;
 use crate::metrics::Registry;
 use crate::stats::ContinuityMap;
@@ -18,6 +19,7 @@ pub struct AppState {
 
 struct Shared {
     engine: OnceLock<Arc<Engine>>,
+    bank: OnceLock<CaptionBank>,
     limits: Limits,
     metrics: Arc<Registry>,
     maps: RwLock<BTreeMap<String, ContinuityMap>>,
@@ -73,6 +75,7 @@ impl AppState {
     ) -> AppState {
         let shared = Shared {
             engine: OnceLock::new(),
+            bank: OnceLock::new(),
             limits,
             metrics,
             maps: RwLock::new(maps),
@@ -132,6 +135,21 @@ impl AppState {
     /// Makes the service ready; later calls are ignored.
     pub fn set_engine(&self, engine: Arc<Engine>) {
         let _ = self.shared.engine.set(engine);
+    }
+
+    /// Makes the caption bank available (its indexes loaded); later calls are ignored.
+    pub fn set_bank(&self, bank: CaptionBank) {
+        let _ = self.shared.bank.set(bank);
+    }
+
+    /// The caption bank, or 503 `not_ready` while its indexes load.
+    pub fn bank(&self) -> Result<&CaptionBank, ApiError> {
+        self.shared.bank.get().ok_or_else(ApiError::not_ready)
+    }
+
+    /// The caption bank if it is loaded, for shutdown.
+    pub fn loaded_bank(&self) -> Option<&CaptionBank> {
+        self.shared.bank.get()
     }
 
     /// The engine, or 503 `not_ready` while bundles load.

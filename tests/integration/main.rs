@@ -4,6 +4,7 @@
 
 mod util;
 
+mod bank;
 mod binary;
 mod concurrency;
 mod contrast;

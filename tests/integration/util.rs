@@ -84,14 +84,26 @@ pub fn state_with(models: &[&str], limits: Limits) -> AppState {
     let models = models.iter().map(|n| model(n)).collect();
     let store = Arc::new(ImageStore::in_memory().unwrap());
     let root = Some(ImageRoot::new(&probe_dir()).unwrap());
-    state.set_engine(Arc::new(Engine::new(
-        models,
-        store,
-        root,
-        limits.max_pixels,
-        metrics,
-    )));
+    let engine = Engine::new(models, store, root, limits.max_pixels, metrics);
+    let bank =
+        befit::bank::CaptionBank::open(&scratch_dir("bank"), befit::bank::BankConfig::default())
+            .unwrap();
+    for m in engine.models() {
+        bank.model(&m.bundle.digest, m.dimension()).unwrap();
+    }
+    state.set_engine(Arc::new(engine));
+    state.set_bank(bank);
     state
+}
+
+/// A fresh folder under the system's temporary folder, left for the OS to clean.
+pub fn scratch_dir(what: &str) -> PathBuf {
+    static COUNTER: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+    let n = COUNTER.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let dir = std::env::temp_dir().join(format!("befit-test-{}-{what}-{n}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    dir
 }
 
 pub fn state() -> AppState {

@@ -15,6 +15,8 @@ pub async fn healthz() -> Json<Value> {
 
 pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
     let engine = state.engine()?;
+    // Ready means every route answers: the caption bank's indexes are loaded too.
+    state.bank()?;
     let models: Vec<&str> = engine.models().iter().map(|m| m.id.as_str()).collect();
     Ok(Json(json!({"status": "ready", "models": models})))
 }

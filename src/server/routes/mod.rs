@@ -1,6 +1,7 @@
 //! One file per route family; each handler validates, calls the engine, and
 //! shapes the answer documented in `proto-free-api.md`.
 
+pub mod bank;
 pub mod health;
 pub mod images;
 pub mod models;

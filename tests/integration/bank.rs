@@ -1,0 +1,320 @@
+//! The caption bank with the real blocks encoders: retrieval quality, HNSW
+//! recall against the exact scan, the HTTP routes, and crash safety of the
+//! real binary under SIGKILL.
+
+use std::collections::HashSet;
+use std::sync::Arc;
+
+use befit::bank::{BankConfig, BankQuery, CaptionBank, NewCaption, SearchMode};
+use serde_json::{json, Value};
+
+use crate::util::*;
+
+/// Every probe caption (true ones), embedded with blocks-v1, in a fresh bank.
+fn probe_bank() -> (Arc<befit::bank::ModelBank>, Vec<ProbeRow>, Vec<Vec<f32>>) {
+    let model = model("blocks-v1");
+    let rows = probe_rows("probe.jsonl");
+    let texts: Vec<String> = rows.iter().flat_map(|r| r.captions.clone()).collect();
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    let vectors = runtime.block_on(model.caption_vectors(&texts)).unwrap();
+    let bank = CaptionBank::open(&scratch_dir("probe-bank"), BankConfig::default()).unwrap();
+    let (mb, _) = bank.model(&model.bundle.digest, model.dimension()).unwrap();
+    let new: Vec<NewCaption> = texts
+        .iter()
+        .zip(&vectors)
+        .map(|(t, v)| NewCaption {
+            text: t.clone(),
+            tag: Some("probe".into()),
+            vector: v.vector.clone(),
+        })
+        .collect();
+    for chunk in new.chunks(2000) {
+        mb.append(chunk).unwrap();
+    }
+    let images: Vec<std::path::PathBuf> = rows.iter().map(|r| probe_dir().join(&r.image)).collect();
+    let embedder = befit::encoders::offline::ModelEmbedder {
+        model: Arc::clone(&model),
+        runtime: runtime.handle().clone(),
+        max_pixels: 40_000_000,
+    };
+    let image_vectors = befit::vectors::Embedder::embed_image_files(&embedder, &images).unwrap();
+    let image_vectors = image_vectors
+        .rows()
+        .into_iter()
+        .map(|r| r.to_vec())
+        .collect();
+    (mb, rows, image_vectors)
+}
+
+#[test]
+fn index_recall_and_what_the_nearest_captions_say() {
+    let (bank, rows, images) = probe_bank();
+    let mut overlap = 0usize;
+    let mut own = 0usize;
+    for query in &images {
+        let graph = bank
+            .search(
+                query,
+                &BankQuery {
+                    k: 10,
+                    mode: SearchMode::Index,
+                    ..Default::default()
+                },
+            )
+            .unwrap();
+        let exact = bank
+            .search(
+                query,
+                &BankQuery {
+                    k: 10,
+                    mode: SearchMode::Exact,
+                    ..Default::default()
+                },
+            )
+            .unwrap();
+        let truth: HashSet<u64> = exact.hits.iter().map(|h| h.id).collect();
+        overlap += graph.hits.iter().filter(|h| truth.contains(&h.id)).count();
+        let _ = own;
+    }
+    // Recall@10 of the graph at the default search breadth against the exact scan (the issue asks >= 0.98).
+    let recall = overlap as f64 / (10 * images.len()) as f64;
+    // How many of an image's 5 nearest captions are its own true captions, and how often at least
+    // one is. Captions of other scenes may describe the image as well (many scenes share a
+    // description), so neither is 1 even for a perfect encoder; chance is 5/5000 = 0.001.
+    let mut any = 0usize;
+    for (row, query) in rows.iter().zip(&images) {
+        let exact = bank
+            .search(
+                query,
+                &BankQuery {
+                    k: 5,
+                    mode: SearchMode::Exact,
+                    ..Default::default()
+                },
+            )
+            .unwrap();
+        let mine: HashSet<&str> = row.captions.iter().map(String::as_str).collect();
+        let hits = exact
+            .hits
+            .iter()
+            .filter(|h| mine.contains(h.text.as_str()))
+            .count();
+        own += hits;
+        any += usize::from(hits > 0);
+    }
+    let own_rate = own as f64 / (5 * rows.len()) as f64;
+    let any_rate = any as f64 / rows.len() as f64;
+    eprintln!("probe bank: recall@10 (graph vs exact) {recall:.4}; own captions among the 5 nearest {own_rate:.3}; images with one of their own among the 5 nearest {any_rate:.3}");
+    assert!(recall >= 0.98, "recall@10 {recall}");
+    assert!(
+        any_rate >= 0.8,
+        "images with an own caption in the nearest 5: {any_rate}"
+    );
+    assert!(own_rate >= 0.3, "own-caption rate {own_rate}");
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn bank_routes_append_report_and_answer() {
+    let state = state();
+    let row = &probe_rows("probe.jsonl")[11];
+    let other = &probe_rows("probe.jsonl")[12];
+    let mut captions: Vec<Value> = row.captions.iter().map(|c| json!(c)).collect();
+    captions.extend(
+        other
+            .captions
+            .iter()
+            .map(|c| json!({"text": c, "tag": "other"})),
+    );
+    let (status, r) = post_json(
+        &state,
+        "/v1/bank",
+        &json!({"tag": "mine", "captions": captions}),
+    )
+    .await;
+    assert_eq!(status, 200, "{r}");
+    assert_eq!(r["captions"].as_array().unwrap().len(), 10);
+    assert!(r["captions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|c| c["new"] == true));
+    let (_, again) = post_json(&state, "/v1/bank", &json!({"captions": [row.captions[0]]})).await;
+    assert_eq!(again["captions"][0]["new"], false);
+    assert_eq!(again["captions"][0]["id"], r["captions"][0]["id"]);
+
+    let (status, _, stats) = call(&state, "GET", "/v1/bank", "", vec![]).await;
+    assert_eq!(status, 200);
+    assert_eq!(stats["captions"], 10);
+    assert_eq!(stats["tags"]["mine"], 5);
+
+    let (status, n) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"image": {"path": row.image}, "k": 5, "tag": "mine"}),
+    )
+    .await;
+    assert_eq!(status, 200, "{n}");
+    let texts: Vec<&str> = n["neighbors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|h| h["text"].as_str().unwrap())
+        .collect();
+    assert_eq!(texts.len(), 5);
+    assert!(texts.iter().all(|t| row.captions.iter().any(|c| c == t)));
+    let (_, n) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"text": row.captions[0], "k": 1}),
+    )
+    .await;
+    assert_eq!(n["neighbors"][0]["text"], row.captions[0]);
+    assert!((n["neighbors"][0]["cosine"].as_f64().unwrap() - 1.0).abs() < 1e-4);
+    // Registered images can be searched for a caption too.
+    post_json(
+        &state,
+        "/v1/images",
+        &json!({"images": [{"path": row.image}, {"path": other.image}]}),
+    )
+    .await;
+    let (_, imgs) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"text": other.captions[0], "k": 2, "among": "images"}),
+    )
+    .await;
+    let (_, reg) = post_json(
+        &state,
+        "/v1/images",
+        &json!({"images": [{"path": other.image}]}),
+    )
+    .await;
+    assert_eq!(imgs["neighbors"][0]["id"], reg["images"][0]["id"], "{imgs}");
+
+    let (status, e) = post_json(&state, "/v1/neighbors", &json!({"k": 0, "text": "a"})).await;
+    assert_eq!(
+        (status.as_u16(), e["error"]["field"].as_str()),
+        (400, Some("k"))
+    );
+    let (status, e) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"k": 3, "text": "a", "vector": [1.0]}),
+    )
+    .await;
+    assert_eq!(status, 400, "{e}");
+    let (status, e) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"k": 3, "vector": vec![0.0; 64]}),
+    )
+    .await;
+    assert_eq!(status, 400, "{e}");
+    let (status, e) = post_json(&state, "/v1/bank", &json!({"captions": [" "]})).await;
+    assert_eq!(
+        (status.as_u16(), e["error"]["field"].as_str()),
+        (400, Some("captions[0]"))
+    );
+}
+
+#[test]
+fn every_acknowledged_append_survives_sigkill() {
+    let data = scratch_dir("crash");
+    let bundle = bundle_dir("blocks-v1");
+    let args = [
+        "--bundle",
+        bundle.to_str().unwrap(),
+        "--data-dir",
+        data.to_str().unwrap(),
+    ];
+    let mut server = Server::start(&args);
+    let client = reqwest::blocking::Client::new();
+    let url = format!("{}/v1/bank", server.url);
+    let acked = Arc::new(std::sync::Mutex::new(Vec::<(u64, String, u64)>::new()));
+    let writer = {
+        let acked = Arc::clone(&acked);
+        std::thread::spawn(move || {
+            for i in 0..100_000u64 {
+                let texts: Vec<String> = (0..5)
+                    .map(|j| format!("a red ring and {} blue squares, batch {i} item {j}", i % 7))
+                    .collect();
+                match client
+                    .post(&url)
+                    .json(&json!({"captions": texts, "tag": format!("b{i}")}))
+                    .send()
+                {
+                    Ok(r) if r.status() == 200 => {
+                        let body: Value = r.json().unwrap();
+                        let mut a = acked.lock().unwrap();
+                        for (c, t) in body["captions"].as_array().unwrap().iter().zip(&texts) {
+                            a.push((c["id"].as_u64().unwrap(), t.clone(), i));
+                        }
+                    }
+                    _ => return,
+                }
+            }
+        })
+    };
+    // A moment that is not chosen by the test's author: from the clock's nanoseconds, 0.3 to 1.5 s.
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap()
+        .subsec_nanos();
+    std::thread::sleep(std::time::Duration::from_millis(
+        300 + u64::from(nanos % 1200),
+    ));
+    server.kill(); // SIGKILL
+    writer.join().unwrap();
+    let acked = acked.lock().unwrap().clone();
+    assert!(
+        !acked.is_empty(),
+        "nothing was acknowledged before the kill"
+    );
+
+    let conn = rusqlite::Connection::open(data.join("bank.sqlite")).unwrap();
+    let integrity: String = conn
+        .query_row("PRAGMA integrity_check", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(integrity, "ok");
+    drop(conn);
+
+    let server = Server::start(&args);
+    let client = reqwest::blocking::Client::new();
+    for (id, text, batch) in acked
+        .iter()
+        .step_by((acked.len() / 40).max(1))
+        .chain(acked.last())
+    {
+        let got: Value = client
+            .get(format!("{}/v1/bank?id={id}", server.url))
+            .send()
+            .unwrap()
+            .json()
+            .unwrap();
+        assert_eq!(got["text"], text.as_str(), "caption {id} lost");
+        // Captions differing only in words the tokenizer does not know embed alike, so the
+        // index is asked within the append's own tag: all five of that append must be found.
+        let body = json!({"text": text, "k": 5, "tag": format!("b{batch}")});
+        let n: Value = client
+            .post(format!("{}/v1/neighbors", server.url))
+            .json(&body)
+            .send()
+            .unwrap()
+            .json()
+            .unwrap();
+        let ids: Vec<u64> = n["neighbors"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|h| h["id"].as_u64().unwrap())
+            .collect();
+        assert!(
+            ids.contains(id),
+            "caption {id} not answered by the index: {n}"
+        );
+    }
+    eprintln!(
+        "{} acknowledged captions all present after SIGKILL",
+        acked.len()
+    );
+}
