@@ -58,8 +58,15 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 rl: $(VENV)/.ready
 	$(VENV_PY) examples/blocks_rl.py --url http://$(ADDR)
 
-bench: build $(VENV)/.ready
-	$(VENV_PY) bench/run.py
+$(CACHE)/.bench-ready: $(VENV)/.ready bench/requirements.txt
+	$(VENV_PY) -m pip install --quiet -r bench/requirements.txt
+	touch $@
+
+# Benchmarks print befit beside its reference from one run; BENCH_ARGS go to the retrieval part
+# (default: the 100k size only; BENCH_ARGS= runs 100k and 1M).
+BENCH_ARGS ?= --sizes 100000
+bench: build $(CACHE)/.bench-ready
+	$(VENV_PY) bench/run.py $(BENCH_ARGS)
 
 clean:
 	cargo clean
