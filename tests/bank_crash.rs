@@ -17,13 +17,19 @@ const CHILD_ENV: &str = "BEFIT_BANK_CRASH_CHILD_DIR";
 
 fn caption(e: &SceneEmbedder, i: usize) -> NewCaption {
     let text = format!("scene{} caption {i}", i % 97);
-    NewCaption { vector: e.vector(&text), text, tag: Some(format!("t{}", i % 3)) }
+    NewCaption {
+        vector: e.vector(&text),
+        text,
+        tag: Some(format!("t{}", i % 3)),
+    }
 }
 
 /// The child: appends forever, one line per acknowledged append.
 #[test]
 fn bank_crash_child() {
-    let Some(dir) = std::env::var_os(CHILD_ENV) else { return };
+    let Some(dir) = std::env::var_os(CHILD_ENV) else {
+        return;
+    };
     let bank = CaptionBank::open(std::path::Path::new(&dir), BankConfig::default()).unwrap();
     let (model, _) = bank.model(DIGEST, DIM).unwrap();
     let e = SceneEmbedder::new(DIM, 97);
@@ -42,7 +48,13 @@ fn bank_crash_child() {
 fn every_acknowledged_append_survives_sigkill() {
     let dir = tempfile::tempdir().unwrap();
     let mut child = Command::new(std::env::current_exe().unwrap())
-        .args(["--exact", "bank_crash_child", "--nocapture", "--test-threads", "1"])
+        .args([
+            "--exact",
+            "bank_crash_child",
+            "--nocapture",
+            "--test-threads",
+            "1",
+        ])
         .env(CHILD_ENV, dir.path())
         .stdout(Stdio::piped())
         .stderr(Stdio::null())
@@ -52,9 +64,14 @@ fn every_acknowledged_append_survives_sigkill() {
     let stdout = child.stdout.take().unwrap();
     for line in BufReader::new(stdout).lines() {
         let line = line.unwrap();
-        let Some(rest) = line.strip_prefix("ACK ") else { continue };
+        let Some(rest) = line.strip_prefix("ACK ") else {
+            continue;
+        };
         let (batch, ids) = rest.split_once(' ').unwrap();
-        acked.push((batch.parse().unwrap(), ids.split(',').map(|s| s.parse().unwrap()).collect()));
+        acked.push((
+            batch.parse().unwrap(),
+            ids.split(',').map(|s| s.parse().unwrap()).collect(),
+        ));
         // Past a few dumps, so the kill can land on a dump or an append.
         if acked.len() == 40 {
             child.kill().unwrap();
@@ -65,7 +82,10 @@ fn every_acknowledged_append_survives_sigkill() {
     assert_eq!(acked.len(), 40);
 
     let bank = CaptionBank::open(dir.path(), BankConfig::default()).unwrap();
-    assert_eq!(bank.store().integrity_check().unwrap(), vec!["ok".to_string()]);
+    assert_eq!(
+        bank.store().integrity_check().unwrap(),
+        vec!["ok".to_string()]
+    );
     let (model, report) = bank.model(DIGEST, DIM).unwrap();
     let report = report.unwrap();
     assert!(report.rows >= 40 * 20, "{report:?}");
@@ -73,9 +93,16 @@ fn every_acknowledged_append_survives_sigkill() {
     for (batch, ids) in &acked {
         for (j, id) in ids.iter().enumerate() {
             let c = caption(&e, batch * 20 + j);
-            let stored = model.get(*id).unwrap().unwrap_or_else(|| panic!("caption {id} lost"));
+            let stored = model
+                .get(*id)
+                .unwrap()
+                .unwrap_or_else(|| panic!("caption {id} lost"));
             assert_eq!(stored.text, c.text);
-            let q = BankQuery { k: 1, mode: SearchMode::Index, ..Default::default() };
+            let q = BankQuery {
+                k: 1,
+                mode: SearchMode::Index,
+                ..Default::default()
+            };
             assert_eq!(model.search(&c.vector, &q).unwrap().hits[0].id, *id);
         }
     }

@@ -116,7 +116,10 @@ fn params(a: &Args, exact_below: usize) -> IndexParams {
 }
 
 fn rows(base: &[f32], dim: usize) -> Vec<(RowId, Vec<f32>)> {
-    base.chunks(dim).enumerate().map(|(i, v)| (i as RowId, v.to_vec())).collect()
+    base.chunks(dim)
+        .enumerate()
+        .map(|(i, v)| (i as RowId, v.to_vec()))
+        .collect()
 }
 
 fn emit(line: serde_json::Value) {
@@ -129,7 +132,12 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     let stem = a.out.join(format!("{kind}-{n}"));
     std::fs::create_dir_all(&stem)?;
     write_npy(&stem.join("base.npy"), "<f4", (n, dim), &f32_bytes(&base))?;
-    write_npy(&stem.join("queries.npy"), "<f4", (a.queries, dim), &f32_bytes(&queries))?;
+    write_npy(
+        &stem.join("queries.npy"),
+        "<f4",
+        (a.queries, dim),
+        &f32_bytes(&queries),
+    )?;
 
     let index_dir = stem.join("befit-index");
     let _ = std::fs::remove_dir_all(&index_dir);
@@ -151,25 +159,48 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     }
     let exact_secs = t.elapsed().as_secs_f64();
     let flat: Vec<f32> = exact_cos.iter().flatten().copied().collect();
-    write_npy(&stem.join("exact_cos.npy"), "<f4", (a.queries, a.k), &f32_bytes(&flat))?;
-    let ids: Vec<u8> = exact_ids.iter().flatten().flat_map(|x| x.to_le_bytes()).collect();
+    write_npy(
+        &stem.join("exact_cos.npy"),
+        "<f4",
+        (a.queries, a.k),
+        &f32_bytes(&flat),
+    )?;
+    let ids: Vec<u8> = exact_ids
+        .iter()
+        .flatten()
+        .flat_map(|x| x.to_le_bytes())
+        .collect();
     write_npy(&stem.join("exact_ids.npy"), "<i8", (a.queries, a.k), &ids)?;
-    emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "exact",
-        "qps": a.queries as f64 / exact_secs, "recall": 1.0}));
-    emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "build",
-        "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}));
+    emit(
+        serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "exact",
+        "qps": a.queries as f64 / exact_secs, "recall": 1.0}),
+    );
+    emit(
+        serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "build",
+        "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}),
+    );
 
     for &ef in &a.ef_search {
-        let search = Search { k: a.k, ef_search: Some(ef), mode: SearchMode::Index, only: None };
+        let search = Search {
+            k: a.k,
+            ef_search: Some(ef),
+            mode: SearchMode::Index,
+            only: None,
+        };
         let t = Instant::now();
         let mut approx = Vec::with_capacity(a.queries);
         for q in queries.chunks(dim) {
-            let hits = index.search(q, &search).map_err(std::io::Error::other)?.hits;
+            let hits = index
+                .search(q, &search)
+                .map_err(std::io::Error::other)?
+                .hits;
             approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
         }
         let secs = t.elapsed().as_secs_f64();
-        emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search", "ef_search": ef,
-            "qps": a.queries as f64 / secs, "recall": mean_recall(&exact_cos, &approx, a.k)}));
+        emit(
+            serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search", "ef_search": ef,
+            "qps": a.queries as f64 / secs, "recall": mean_recall(&exact_cos, &approx, a.k)}),
+        );
     }
 
     if a.dump {
@@ -181,8 +212,10 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
         let t = Instant::now();
         let (_, report) = VectorIndex::open(&index_dir, DIGEST, dim, params(a, 0), &source)
             .map_err(std::io::Error::other)?;
-        emit(serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "dump",
-            "dump_seconds": dump_secs, "load_seconds": t.elapsed().as_secs_f64(), "origin": report.origin}));
+        emit(
+            serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "dump",
+            "dump_seconds": dump_secs, "load_seconds": t.elapsed().as_secs_f64(), "origin": report.origin}),
+        );
     }
     let _ = std::fs::remove_dir_all(&index_dir);
     Ok(())
@@ -194,19 +227,29 @@ fn crossover(a: &Args) -> std::io::Result<()> {
     let dim = a.dim;
     for n in [1_000, 2_000, 5_000, 10_000, 20_000, 30_000, 50_000, 100_000] {
         let (base, queries) = blocks_like(n, a.queries, dim, 9);
-        let index = VectorIndex::in_memory(DIGEST, dim, params(a, 0)).map_err(std::io::Error::other)?;
-        index.insert(&rows(&base, dim)).map_err(std::io::Error::other)?;
+        let index =
+            VectorIndex::in_memory(DIGEST, dim, params(a, 0)).map_err(std::io::Error::other)?;
+        index
+            .insert(&rows(&base, dim))
+            .map_err(std::io::Error::other)?;
         let mut qps = Vec::new();
         for mode in [SearchMode::Exact, SearchMode::Index] {
-            let search = Search { k: a.k, ef_search: None, mode, only: None };
+            let search = Search {
+                k: a.k,
+                ef_search: None,
+                mode,
+                only: None,
+            };
             let t = Instant::now();
             for q in queries.chunks(dim) {
                 index.search(q, &search).map_err(std::io::Error::other)?;
             }
             qps.push(a.queries as f64 / t.elapsed().as_secs_f64());
         }
-        emit(serde_json::json!({"what": "crossover", "n": n, "exact_qps": qps[0], "index_qps": qps[1],
-            "ef_search": befit::bank::index::DEFAULT_EF_SEARCH}));
+        emit(
+            serde_json::json!({"what": "crossover", "n": n, "exact_qps": qps[0], "index_qps": qps[1],
+            "ef_search": befit::bank::index::DEFAULT_EF_SEARCH}),
+        );
     }
     Ok(())
 }

@@ -135,11 +135,18 @@ mod tests {
     #[test]
     fn simd_and_portable_agree_on_every_length() {
         for len in 0..70 {
-            let a: Vec<f32> = (0..len).map(|i| ((i * 7 % 13) as f32 - 6.0) / 5.0).collect();
-            let b: Vec<f32> = (0..len).map(|i| ((i * 5 % 11) as f32 - 5.0) / 3.0).collect();
+            let a: Vec<f32> = (0..len)
+                .map(|i| ((i * 7 % 13) as f32 - 6.0) / 5.0)
+                .collect();
+            let b: Vec<f32> = (0..len)
+                .map(|i| ((i * 5 % 11) as f32 - 5.0) / 3.0)
+                .collect();
             let exact: f64 = a.iter().zip(&b).map(|(x, y)| *x as f64 * *y as f64).sum();
             assert!((dot(&a, &b) as f64 - exact).abs() < 1e-4, "len {len}");
-            assert!((dot_portable(&a, &b) as f64 - exact).abs() < 1e-4, "len {len}");
+            assert!(
+                (dot_portable(&a, &b) as f64 - exact).abs() < 1e-4,
+                "len {len}"
+            );
         }
     }
 
@@ -149,7 +156,9 @@ mod tests {
         for _ in 0..2000 {
             let mut v: Vec<f32> = (0..64)
                 .map(|_| {
-                    seed = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                    seed = seed
+                        .wrapping_mul(6364136223846793005)
+                        .wrapping_add(1442695040888963407);
                     ((seed >> 33) as f32 / (1u64 << 31) as f32) - 0.5
                 })
                 .collect();

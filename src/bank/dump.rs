@@ -174,14 +174,20 @@ pub fn check(digest_dir: &Path, expected: &Expected<'_>) -> Result<CheckedDump, 
     };
     let name = current.trim();
     if !is_plain_name(name) || !name.starts_with("dump-") {
-        return Err(format!("{} does not name a dump folder", current_path.display()));
+        return Err(format!(
+            "{} does not name a dump folder",
+            current_path.display()
+        ));
     }
     let folder = digest_dir.join(name);
     let manifest_path = folder.join(MANIFEST_FILE);
     let meta = fs::metadata(&manifest_path)
         .map_err(|e| format!("cannot read {}: {e}", manifest_path.display()))?;
     if meta.len() > MAX_MANIFEST_BYTES {
-        return Err(format!("{} is too large to be a manifest", manifest_path.display()));
+        return Err(format!(
+            "{} is too large to be a manifest",
+            manifest_path.display()
+        ));
     }
     let text = fs::read_to_string(&manifest_path)
         .map_err(|e| format!("cannot read {}: {e}", manifest_path.display()))?;
@@ -190,7 +196,10 @@ pub fn check(digest_dir: &Path, expected: &Expected<'_>) -> Result<CheckedDump, 
     check_manifest(&manifest, expected)?;
     for file in &manifest.files {
         if !is_plain_name(&file.name) {
-            return Err(format!("manifest names a file outside its folder: {:?}", file.name));
+            return Err(format!(
+                "manifest names a file outside its folder: {:?}",
+                file.name
+            ));
         }
         let path = folder.join(&file.name);
         let actual_len = fs::metadata(&path)
@@ -206,7 +215,10 @@ pub fn check(digest_dir: &Path, expected: &Expected<'_>) -> Result<CheckedDump, 
         let (sha, _) =
             file_sha256(&path).map_err(|e| format!("cannot read {}: {e}", path.display()))?;
         if sha != file.sha256 {
-            return Err(format!("{} does not match its checksum (corrupt)", path.display()));
+            return Err(format!(
+                "{} does not match its checksum (corrupt)",
+                path.display()
+            ));
         }
     }
     let graph = format!("{}.hnsw.graph", manifest.basename);
@@ -221,16 +233,28 @@ pub fn check(digest_dir: &Path, expected: &Expected<'_>) -> Result<CheckedDump, 
 
 fn check_manifest(m: &Manifest, e: &Expected<'_>) -> Result<(), String> {
     if m.format != MANIFEST_FORMAT {
-        return Err(format!("dump format {} (this befit reads {MANIFEST_FORMAT})", m.format));
+        return Err(format!(
+            "dump format {} (this befit reads {MANIFEST_FORMAT})",
+            m.format
+        ));
     }
     if m.hnsw_rs != HNSW_RS_VERSION {
-        return Err(format!("dump written by hnsw_rs {} (this befit uses {HNSW_RS_VERSION})", m.hnsw_rs));
+        return Err(format!(
+            "dump written by hnsw_rs {} (this befit uses {HNSW_RS_VERSION})",
+            m.hnsw_rs
+        ));
     }
     if m.digest != e.digest {
-        return Err(format!("dump is for bundle digest {}, not {}", m.digest, e.digest));
+        return Err(format!(
+            "dump is for bundle digest {}, not {}",
+            m.digest, e.digest
+        ));
     }
     if m.dimension != e.dimension {
-        return Err(format!("dump holds {}-long vectors, the bundle makes {}", m.dimension, e.dimension));
+        return Err(format!(
+            "dump holds {}-long vectors, the bundle makes {}",
+            m.dimension, e.dimension
+        ));
     }
     if m.max_connections != e.max_connections || m.ef_construction != e.ef_construction {
         return Err(format!(
@@ -239,10 +263,16 @@ fn check_manifest(m: &Manifest, e: &Expected<'_>) -> Result<(), String> {
         ));
     }
     if m.distance != e.distance {
-        return Err(format!("dump built with distance {}, expected {}", m.distance, e.distance));
+        return Err(format!(
+            "dump built with distance {}, expected {}",
+            m.distance, e.distance
+        ));
     }
     if !is_plain_name(&m.basename) {
-        return Err(format!("manifest basename {:?} is not a plain file name", m.basename));
+        return Err(format!(
+            "manifest basename {:?} is not a plain file name",
+            m.basename
+        ));
     }
     Ok(())
 }
@@ -270,7 +300,11 @@ pub fn publish(digest_dir: &Path, tmp: &Path, mut manifest: Manifest) -> io::Res
         let path = tmp.join(&name);
         fsync_file(&path)?;
         let (sha256, bytes) = file_sha256(&path)?;
-        files.push(DumpedFile { name, bytes, sha256 });
+        files.push(DumpedFile {
+            name,
+            bytes,
+            sha256,
+        });
     }
     manifest.files = files;
     let text = serde_json::to_string_pretty(&manifest).map_err(io::Error::other)?;
@@ -397,18 +431,31 @@ mod tests {
     #[test]
     fn truncated_garbled_or_foreign_dumps_are_refused() {
         let root = tempfile::tempdir().unwrap();
-        assert_eq!(check(root.path(), &expected("aa")).unwrap_err(), "no dump yet");
+        assert_eq!(
+            check(root.path(), &expected("aa")).unwrap_err(),
+            "no dump yet"
+        );
         let folder = fake_dump(root.path(), "aa");
-        assert!(check(root.path(), &expected("bb")).unwrap_err().contains("digest"));
+        assert!(check(root.path(), &expected("bb"))
+            .unwrap_err()
+            .contains("digest"));
 
         fs::write(folder.join("index.hnsw.graph"), b"graph byteX").unwrap();
-        assert!(check(root.path(), &expected("aa")).unwrap_err().contains("checksum"));
+        assert!(check(root.path(), &expected("aa"))
+            .unwrap_err()
+            .contains("checksum"));
         fs::write(folder.join("index.hnsw.graph"), b"graph").unwrap();
-        assert!(check(root.path(), &expected("aa")).unwrap_err().contains("truncated"));
+        assert!(check(root.path(), &expected("aa"))
+            .unwrap_err()
+            .contains("truncated"));
         fs::write(folder.join(MANIFEST_FILE), b"{not json").unwrap();
-        assert!(check(root.path(), &expected("aa")).unwrap_err().contains("not a valid manifest"));
+        assert!(check(root.path(), &expected("aa"))
+            .unwrap_err()
+            .contains("not a valid manifest"));
         fs::write(root.path().join(CURRENT_FILE), b"../../etc").unwrap();
-        assert!(check(root.path(), &expected("aa")).unwrap_err().contains("does not name"));
+        assert!(check(root.path(), &expected("aa"))
+            .unwrap_err()
+            .contains("does not name"));
     }
 
     #[test]

@@ -241,8 +241,14 @@ mod tests {
         let q = &data[..dim];
         let all: Vec<RowId> = (0..500).collect();
         assert_eq!(
-            rows.search(q, 10, None).iter().map(|h| h.id).collect::<Vec<_>>(),
-            rows.search_among(q, 10, &all).iter().map(|h| h.id).collect::<Vec<_>>()
+            rows.search(q, 10, None)
+                .iter()
+                .map(|h| h.id)
+                .collect::<Vec<_>>(),
+            rows.search_among(q, 10, &all)
+                .iter()
+                .map(|h| h.id)
+                .collect::<Vec<_>>()
         );
         assert_eq!(rows.search(q, 1, None)[0].id, 0);
     }
@@ -253,6 +259,9 @@ mod tests {
         for id in [5, 3, 9, 1] {
             top.push(Neighbour { id, cosine: 0.5 });
         }
-        assert_eq!(top.into_sorted().iter().map(|n| n.id).collect::<Vec<_>>(), vec![1, 3]);
+        assert_eq!(
+            top.into_sorted().iter().map(|n| n.id).collect::<Vec<_>>(),
+            vec![1, 3]
+        );
     }
 }

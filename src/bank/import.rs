@@ -141,7 +141,11 @@ struct Entry {
 }
 
 /// Parses one line into text and tag, or says what is wrong.
-fn parse_line(bytes: &[u8], default_tag: Option<&str>, bank: &ModelBank) -> Result<Option<(String, Option<String>)>, String> {
+fn parse_line(
+    bytes: &[u8],
+    default_tag: Option<&str>,
+    bank: &ModelBank,
+) -> Result<Option<(String, Option<String>)>, String> {
     let text = std::str::from_utf8(bytes).map_err(|e| format!("not UTF-8 ({e})"))?;
     let text = text.trim_end_matches(['\n', '\r']);
     if text.trim().is_empty() {
@@ -169,7 +173,10 @@ fn parse_line(bytes: &[u8], default_tag: Option<&str>, bank: &ModelBank) -> Resu
 /// whether it was too long (its rest is skipped).
 fn read_line(reader: &mut impl BufRead, buf: &mut Vec<u8>) -> std::io::Result<(u64, bool)> {
     buf.clear();
-    let n = reader.by_ref().take(MAX_LINE_BYTES as u64 + 1).read_until(b'\n', buf)?;
+    let n = reader
+        .by_ref()
+        .take(MAX_LINE_BYTES as u64 + 1)
+        .read_until(b'\n', buf)?;
     let mut consumed = n as u64;
     let too_long = n > MAX_LINE_BYTES && buf.last() != Some(&b'\n');
     if too_long {
@@ -307,11 +314,13 @@ fn run_batch(
     state.present += known.len() as u64;
     if !to_embed.is_empty() {
         let texts: Vec<String> = to_embed.iter().map(|i| batch[*i].text.clone()).collect();
-        let vectors = embedder.embed_texts(&texts).map_err(|source| ImportError::Embed {
-            first_line,
-            last_line,
-            source,
-        })?;
+        let vectors = embedder
+            .embed_texts(&texts)
+            .map_err(|source| ImportError::Embed {
+                first_line,
+                last_line,
+                source,
+            })?;
         let dim = bank.dimension();
         if vectors.nrows() != texts.len() || vectors.ncols() != dim {
             return Err(ImportError::Shape {
@@ -327,7 +336,10 @@ fn run_batch(
             let unit = super::index::unit_vector(&row, dim, bank.digest()).map_err(|e| {
                 BankError::Invalid {
                     position: n,
-                    problem: format!("line {}: the encoder's vector is unusable: {e}", batch[to_embed[n]].line),
+                    problem: format!(
+                        "line {}: the encoder's vector is unusable: {e}",
+                        batch[to_embed[n]].line
+                    ),
                 }
             })?;
             units.push(unit);
@@ -342,11 +354,16 @@ fn run_batch(
                 vector: Some(v),
             })
             .collect();
-        rows.extend(known.iter().filter(|(_, t)| t.is_some()).map(|(text, tag)| super::store::StoreRow {
-            text,
-            tag: *tag,
-            vector: None,
-        }));
+        rows.extend(
+            known
+                .iter()
+                .filter(|(_, t)| t.is_some())
+                .map(|(text, tag)| super::store::StoreRow {
+                    text,
+                    tag: *tag,
+                    vector: None,
+                }),
+        );
         let stored = bank.commit(&rows)?;
         state.added += stored.iter().take(to_embed.len()).filter(|s| s.new).count() as u64;
     } else {
@@ -379,11 +396,13 @@ pub fn embed_missing(
         let Some(last) = rows.last() else { break };
         after = last.0;
         let texts: Vec<String> = rows.iter().map(|(_, t)| t.clone()).collect();
-        let vectors = embedder.embed_texts(&texts).map_err(|source| ImportError::Embed {
-            first_line: 0,
-            last_line: 0,
-            source,
-        })?;
+        let vectors = embedder
+            .embed_texts(&texts)
+            .map_err(|source| ImportError::Embed {
+                first_line: 0,
+                last_line: 0,
+                source,
+            })?;
         if vectors.nrows() != texts.len() || vectors.ncols() != bank.dimension() {
             return Err(ImportError::Shape {
                 rows: vectors.nrows(),

@@ -176,9 +176,27 @@ impl IndexParams {
                 Ok(())
             }
         };
-        check("max_connections (M)", self.max_connections, 2, MAX_CONNECTIONS_LIMIT, "use 2 to 128 (16 is usual)")?;
-        check("ef_construction", self.ef_construction, 1, 10_000, "use 1 to 10000 (200 is usual)")?;
-        check("ef_search", self.ef_search, 1, MAX_EF_SEARCH, "use 1 to 10000")?;
+        check(
+            "max_connections (M)",
+            self.max_connections,
+            2,
+            MAX_CONNECTIONS_LIMIT,
+            "use 2 to 128 (16 is usual)",
+        )?;
+        check(
+            "ef_construction",
+            self.ef_construction,
+            1,
+            10_000,
+            "use 1 to 10000 (200 is usual)",
+        )?;
+        check(
+            "ef_search",
+            self.ef_search,
+            1,
+            MAX_EF_SEARCH,
+            "use 1 to 10000",
+        )?;
         check("build_threads", self.build_threads, 1, 256, "use 1 to 256")?;
         Ok(())
     }
@@ -347,7 +365,11 @@ pub fn unit_vector(v: &[f32], dim: usize, digest: &str) -> Result<Vec<f32>, Inde
     if let Some(position) = v.iter().position(|x| !x.is_finite()) {
         return Err(IndexError::NotFinite { position });
     }
-    let norm = v.iter().map(|x| (*x as f64) * (*x as f64)).sum::<f64>().sqrt();
+    let norm = v
+        .iter()
+        .map(|x| (*x as f64) * (*x as f64))
+        .sum::<f64>()
+        .sqrt();
     if norm == 0.0 || !norm.is_finite() {
         return Err(IndexError::Zero);
     }
@@ -356,7 +378,11 @@ pub fn unit_vector(v: &[f32], dim: usize, digest: &str) -> Result<Vec<f32>, Inde
 
 /// Checks that a digest is 64 lowercase hex digits (it names a folder).
 pub fn validate_digest(digest: &str) -> Result<(), IndexError> {
-    if digest.len() == 64 && digest.bytes().all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b)) {
+    if digest.len() == 64
+        && digest
+            .bytes()
+            .all(|b| b.is_ascii_digit() || (b'a'..=b'f').contains(&b))
+    {
         Ok(())
     } else {
         Err(IndexError::Digest(digest.to_string()))
@@ -425,7 +451,11 @@ fn distance_name() -> String {
 
 impl VectorIndex {
     /// An empty index kept only in memory ([`Self::dump`] writes nothing).
-    pub fn in_memory(digest: &str, dimension: usize, params: IndexParams) -> Result<Self, IndexError> {
+    pub fn in_memory(
+        digest: &str,
+        dimension: usize,
+        params: IndexParams,
+    ) -> Result<Self, IndexError> {
         validate_digest(digest)?;
         params.validate()?;
         if dimension == 0 {
@@ -435,7 +465,14 @@ impl VectorIndex {
                 rule: "vectors need at least one number",
             });
         }
-        Ok(Self::assemble(digest, dimension, params, None, new_graph(&params, 1), ExactRows::new(dimension)))
+        Ok(Self::assemble(
+            digest,
+            dimension,
+            params,
+            None,
+            new_graph(&params, 1),
+            ExactRows::new(dimension),
+        ))
     }
 
     fn assemble(
@@ -489,17 +526,20 @@ impl VectorIndex {
         let mut skipped = 0usize;
         let mut skipped_ids = Vec::new();
         source
-            .each_row(digest, &mut |id, v| match unit_vector(v, dimension, digest) {
-                Ok(u) if usize::try_from(id).is_ok() => {
-                    rows.push(id, &u);
-                }
-                _ => {
-                    skipped += 1;
-                    if skipped_ids.len() < 10 {
-                        skipped_ids.push(id);
+            .each_row(
+                digest,
+                &mut |id, v| match unit_vector(v, dimension, digest) {
+                    Ok(u) if usize::try_from(id).is_ok() => {
+                        rows.push(id, &u);
                     }
-                }
-            })
+                    _ => {
+                        skipped += 1;
+                        if skipped_ids.len() < 10 {
+                            skipped_ids.push(id);
+                        }
+                    }
+                },
+            )
             .map_err(IndexError::Source)?;
 
         let expected = Expected {
@@ -509,7 +549,9 @@ impl VectorIndex {
             ef_construction: params.ef_construction,
             distance: &distance_name(),
         };
-        let origin = match dump::check(&dir, &expected).and_then(|checked| load_checked(&checked, &rows, dimension)) {
+        let origin = match dump::check(&dir, &expected)
+            .and_then(|checked| load_checked(&checked, &rows, dimension))
+        {
             Ok((graph, manifest, in_dump)) => {
                 index.graph = graph;
                 index.indexed.store(manifest.rows, Ordering::SeqCst);
@@ -517,7 +559,12 @@ impl VectorIndex {
                     index.max_indexed.store(max, Ordering::SeqCst);
                     index.any_indexed.store(true, Ordering::SeqCst);
                 }
-                let missing: Vec<RowId> = rows.ids().iter().copied().filter(|id| !in_dump.contains(id)).collect();
+                let missing: Vec<RowId> = rows
+                    .ids()
+                    .iter()
+                    .copied()
+                    .filter(|id| !in_dump.contains(id))
+                    .collect();
                 *index.rows.get_mut().unwrap_or_else(|e| e.into_inner()) = rows;
                 index.insert_into_graph(&missing)?;
                 *index.dumped.get_mut().unwrap_or_else(|e| e.into_inner()) = DumpState {
@@ -537,7 +584,11 @@ impl VectorIndex {
                 index.insert_into_graph(&all)?;
                 if !all.is_empty() {
                     // Nothing on disk matches: the next dump must write.
-                    index.dumped.get_mut().unwrap_or_else(|e| e.into_inner()).generation = u64::MAX;
+                    index
+                        .dumped
+                        .get_mut()
+                        .unwrap_or_else(|e| e.into_inner())
+                        .generation = u64::MAX;
                 }
                 GraphOrigin::Built { reason }
             }
@@ -623,7 +674,9 @@ impl VectorIndex {
         let work = || loop {
             let i = next.fetch_add(1, Ordering::Relaxed);
             let Some(id) = ids.get(i) else { break };
-            let Some(v) = matrix.vector(*id) else { continue };
+            let Some(v) = matrix.vector(*id) else {
+                continue;
+            };
             // Checked in insert/open: ids fit a usize.
             let data_id = *id as usize;
             if catch_unwind(AssertUnwindSafe(|| self.graph.insert_slice((v, data_id)))).is_err() {
@@ -650,7 +703,11 @@ impl VectorIndex {
         Ok(())
     }
 
-    fn check_search(&self, query: &[f32], search: &Search<'_>) -> Result<(Vec<f32>, usize), IndexError> {
+    fn check_search(
+        &self,
+        query: &[f32],
+        search: &Search<'_>,
+    ) -> Result<(Vec<f32>, usize), IndexError> {
         if search.k == 0 || search.k > MAX_K {
             return Err(IndexError::Setting {
                 name: "k",
@@ -666,7 +723,10 @@ impl VectorIndex {
                 rule: "use 1 to 10000",
             });
         }
-        Ok((unit_vector(query, self.dim, &self.digest)?, ef.max(search.k)))
+        Ok((
+            unit_vector(query, self.dim, &self.digest)?,
+            ef.max(search.k),
+        ))
     }
 
     /// The nearest rows to `query` (scaled to unit length first).
@@ -691,7 +751,11 @@ impl VectorIndex {
         }
         let Some(only) = search.only else {
             let hits = self.graph_search(&q, search.k, ef)?;
-            return Ok(SearchAnswer { hits, answered: Answered::Index, ef_search: ef });
+            return Ok(SearchAnswer {
+                hits,
+                answered: Answered::Index,
+                ef_search: ef,
+            });
         };
         if only.len() <= self.params.exact_below || only.is_empty() {
             return Ok(self.exact_with(&q, search.k, Some(only)));
@@ -706,12 +770,26 @@ impl VectorIndex {
             return Ok(self.exact_with(&q, search.k, Some(only)));
         }
         hits.truncate(search.k);
-        Ok(SearchAnswer { hits, answered: Answered::Index, ef_search: ef })
+        Ok(SearchAnswer {
+            hits,
+            answered: Answered::Index,
+            ef_search: ef,
+        })
     }
 
     /// The exact `k` nearest rows, optionally among `only`.
-    pub fn exact(&self, query: &[f32], k: usize, only: Option<&HashSet<RowId>>) -> Result<Vec<Neighbour>, IndexError> {
-        let search = Search { k, ef_search: None, mode: SearchMode::Exact, only };
+    pub fn exact(
+        &self,
+        query: &[f32],
+        k: usize,
+        only: Option<&HashSet<RowId>>,
+    ) -> Result<Vec<Neighbour>, IndexError> {
+        let search = Search {
+            k,
+            ef_search: None,
+            mode: SearchMode::Exact,
+            only,
+        };
         let (q, _) = self.check_search(query, &search)?;
         Ok(self.exact_with(&q, k, only).hits)
     }
@@ -721,10 +799,16 @@ impl VectorIndex {
         let hits = match only {
             None => rows.search(q, k, None),
             // Scanning a small set row by row beats a full matrix pass.
-            Some(set) if set.len().saturating_mul(4) < rows.len() => rows.search_among(q, k, set.iter()),
+            Some(set) if set.len().saturating_mul(4) < rows.len() => {
+                rows.search_among(q, k, set.iter())
+            }
             Some(set) => rows.search(q, k, Some(&|id| set.contains(&id))),
         };
-        SearchAnswer { hits, answered: Answered::Exact, ef_search: 0 }
+        SearchAnswer {
+            hits,
+            answered: Answered::Exact,
+            ef_search: 0,
+        }
     }
 
     fn graph_search(&self, q: &[f32], k: usize, ef: usize) -> Result<Vec<Neighbour>, IndexError> {
@@ -749,28 +833,50 @@ impl VectorIndex {
     pub fn dump(&self) -> Result<DumpReport, IndexError> {
         let start = Instant::now();
         let Some(dir) = &self.dir else {
-            return Ok(DumpReport { rows: 0, written: false, millis: 0 });
+            return Ok(DumpReport {
+                rows: 0,
+                written: false,
+                millis: 0,
+            });
         };
         let mut state = self.dumped.lock().unwrap_or_else(|e| e.into_inner());
         let exclusive = write(&self.gate);
         let generation = self.generation.load(Ordering::SeqCst);
         let rows = self.graph.get_nb_point();
         if rows == 0 || generation == state.generation {
-            return Ok(DumpReport { rows: state.rows, written: false, millis: 0 });
+            return Ok(DumpReport {
+                rows: state.rows,
+                written: false,
+                millis: 0,
+            });
         }
-        let tmp = dump::temp_folder(dir).map_err(|source| IndexError::DumpIo { path: dir.clone(), source })?;
-        let written = catch_unwind(AssertUnwindSafe(|| self.graph.file_dump(&tmp, dump::HNSW_BASENAME)));
-        let max_row_id = self.any_indexed.load(Ordering::SeqCst).then(|| self.max_indexed.load(Ordering::SeqCst));
+        let tmp = dump::temp_folder(dir).map_err(|source| IndexError::DumpIo {
+            path: dir.clone(),
+            source,
+        })?;
+        let written = catch_unwind(AssertUnwindSafe(|| {
+            self.graph.file_dump(&tmp, dump::HNSW_BASENAME)
+        }));
+        let max_row_id = self
+            .any_indexed
+            .load(Ordering::SeqCst)
+            .then(|| self.max_indexed.load(Ordering::SeqCst));
         drop(exclusive);
         let basename = match written {
             Ok(Ok(name)) => name,
             Ok(Err(e)) => {
                 let _ = std::fs::remove_dir_all(&tmp);
-                return Err(IndexError::DumpFailed { path: tmp, message: e.to_string() });
+                return Err(IndexError::DumpFailed {
+                    path: tmp,
+                    message: e.to_string(),
+                });
             }
             Err(_) => {
                 let _ = std::fs::remove_dir_all(&tmp);
-                return Err(IndexError::DumpFailed { path: tmp, message: "it panicked".into() });
+                return Err(IndexError::DumpFailed {
+                    path: tmp,
+                    message: "it panicked".into(),
+                });
             }
         };
         let manifest = Manifest {
@@ -790,10 +896,21 @@ impl VectorIndex {
         let at = manifest.written_at_unix_ms;
         if let Err(source) = dump::publish(dir, &tmp, manifest) {
             let _ = std::fs::remove_dir_all(&tmp);
-            return Err(IndexError::DumpIo { path: dir.clone(), source });
+            return Err(IndexError::DumpIo {
+                path: dir.clone(),
+                source,
+            });
         }
-        *state = DumpState { generation, rows, at_unix_ms: Some(at) };
-        Ok(DumpReport { rows, written: true, millis: start.elapsed().as_millis() as u64 })
+        *state = DumpState {
+            generation,
+            rows,
+            at_unix_ms: Some(at),
+        };
+        Ok(DumpReport {
+            rows,
+            written: true,
+            millis: start.elapsed().as_millis() as u64,
+        })
     }
 
     /// Numbers for the stats route.
@@ -823,8 +940,11 @@ fn load_checked(
     // The loaded graph borrows its loader for as long as it lives (hnsw_rs
     // ties the two for memory-mapped data, unused here). The loader is a few
     // paths and counters, leaked once per load, so the graph can be 'static.
-    let loader: &'static HnswIo = Box::leak(Box::new(HnswIo::new(&checked.folder, &manifest.basename)));
-    let loaded = catch_unwind(AssertUnwindSafe(|| loader.load_hnsw_with_dist::<f32, ClampedDot>(ClampedDot)));
+    let loader: &'static HnswIo =
+        Box::leak(Box::new(HnswIo::new(&checked.folder, &manifest.basename)));
+    let loaded = catch_unwind(AssertUnwindSafe(|| {
+        loader.load_hnsw_with_dist::<f32, ClampedDot>(ClampedDot)
+    }));
     let mut graph: Graph = match loaded {
         Ok(Ok(g)) => g,
         Ok(Err(e)) => return Err(format!("hnsw_rs could not read the dump: {e}")),
@@ -834,7 +954,11 @@ fn load_checked(
     // not use: keep inserts after a reload the same as before it.
     graph.set_extend_candidates(false);
     if graph.get_nb_point() != manifest.rows {
-        return Err(format!("dump holds {} rows, its manifest says {}", graph.get_nb_point(), manifest.rows));
+        return Err(format!(
+            "dump holds {} rows, its manifest says {}",
+            graph.get_nb_point(),
+            manifest.rows
+        ));
     }
     let mut ids = HashSet::with_capacity(manifest.rows);
     let indexation = graph.get_point_indexation();
@@ -843,10 +967,17 @@ fn load_checked(
             let id = point.get_origin_id() as RowId;
             let v = point.get_v();
             if v.len() != dim {
-                return Err(format!("dump row {id} has {} numbers, expected {dim}", v.len()));
+                return Err(format!(
+                    "dump row {id} has {} numbers, expected {dim}",
+                    v.len()
+                ));
             }
             match rows.vector(id) {
-                None => return Err(format!("dump holds row {id}, which the store does not have")),
+                None => {
+                    return Err(format!(
+                        "dump holds row {id}, which the store does not have"
+                    ))
+                }
                 Some(stored) if stored != v => {
                     return Err(format!("dump row {id} has another vector than the store"))
                 }
@@ -858,7 +989,11 @@ fn load_checked(
         }
     }
     if ids.len() != manifest.rows {
-        return Err(format!("dump lists {} rows, its manifest says {}", ids.len(), manifest.rows));
+        return Err(format!(
+            "dump lists {} rows, its manifest says {}",
+            ids.len(),
+            manifest.rows
+        ));
     }
     Ok((graph, manifest, ids))
 }

@@ -243,7 +243,10 @@ pub fn check_tag(tag: &str) -> Result<(), String> {
     if tag.is_empty() {
         Err("the tag is empty; leave it out instead".into())
     } else if tag.len() > MAX_TAG_BYTES {
-        Err(format!("the tag is {} bytes, the limit is {MAX_TAG_BYTES}", tag.len()))
+        Err(format!(
+            "the tag is {} bytes, the limit is {MAX_TAG_BYTES}",
+            tag.len()
+        ))
     } else if tag.chars().any(char::is_control) {
         Err("the tag contains a control character; use printable text".into())
     } else {
@@ -352,7 +355,10 @@ impl CaptionBank {
     /// Numbers for `GET /v1/bank`.
     pub fn stats(&self) -> Result<BankStats, BankError> {
         let counts = self.core.store.counts()?;
-        let mut models: Vec<IndexStats> = read(&self.models).values().map(|m| m.index.stats()).collect();
+        let mut models: Vec<IndexStats> = read(&self.models)
+            .values()
+            .map(|m| m.index.stats())
+            .collect();
         models.sort_by(|a, b| a.digest.cmp(&b.digest));
         Ok(BankStats {
             captions: counts.captions,
@@ -389,7 +395,9 @@ pub struct ModelBank {
 
 impl std::fmt::Debug for ModelBank {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("ModelBank").field("index", &self.index).finish()
+        f.debug_struct("ModelBank")
+            .field("index", &self.index)
+            .finish()
     }
 }
 
@@ -425,12 +433,13 @@ impl ModelBank {
             if let Some(tag) = &c.tag {
                 check_tag(tag).map_err(|problem| BankError::Invalid { position, problem })?;
             }
-            let unit = index::unit_vector(&c.vector, self.dimension(), self.digest()).map_err(|e| {
-                BankError::Invalid {
-                    position,
-                    problem: e.to_string(),
-                }
-            })?;
+            let unit =
+                index::unit_vector(&c.vector, self.dimension(), self.digest()).map_err(|e| {
+                    BankError::Invalid {
+                        position,
+                        problem: e.to_string(),
+                    }
+                })?;
             units.push(unit);
         }
         let rows: Vec<store::StoreRow<'_>> = captions
@@ -550,7 +559,12 @@ impl ModelBank {
     }
 
     /// The exact nearest captions (a full scan), optionally with a tag.
-    pub fn exact(&self, query: &[f32], k: usize, tag: Option<&str>) -> Result<BankAnswer, BankError> {
+    pub fn exact(
+        &self,
+        query: &[f32],
+        k: usize,
+        tag: Option<&str>,
+    ) -> Result<BankAnswer, BankError> {
         self.search(
             query,
             &BankQuery {

@@ -54,7 +54,14 @@ pub fn index_recall(
     };
     for q in queries.chunks_exact(dim) {
         exact.push(index.exact(q, k, None)?.iter().map(|n| n.cosine).collect());
-        approx.push(index.search(q, &search)?.hits.iter().map(|n| n.cosine).collect());
+        approx.push(
+            index
+                .search(q, &search)?
+                .hits
+                .iter()
+                .map(|n| n.cosine)
+                .collect(),
+        );
     }
     Ok(mean_recall(&exact, &approx, k))
 }

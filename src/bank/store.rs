@@ -133,7 +133,9 @@ pub struct CaptionStore {
 
 impl std::fmt::Debug for CaptionStore {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("CaptionStore").field("path", &self.path).finish()
+        f.debug_struct("CaptionStore")
+            .field("path", &self.path)
+            .finish()
     }
 }
 
@@ -256,7 +258,9 @@ impl CaptionStore {
                     insert_tag.execute(params![id, tag, now])?;
                 }
                 let new_vector = match row.vector {
-                    Some(v) => insert_vector.execute(params![digest, id, encode_vector(v), now])? == 1,
+                    Some(v) => {
+                        insert_vector.execute(params![digest, id, encode_vector(v), now])? == 1
+                    }
                     None => false,
                 };
                 out.push(Stored {
@@ -287,8 +291,11 @@ impl CaptionStore {
     /// The captions with these ids (`None` for an unknown id), in order.
     pub fn captions(&self, ids: &[RowId]) -> Result<Vec<Option<Caption>>, StoreError> {
         self.with_reader(|c| {
-            let mut one = c.prepare_cached("SELECT text, added_unix_ms FROM captions WHERE id = ?1")?;
-            let mut tags = c.prepare_cached("SELECT tag FROM caption_tags WHERE caption_id = ?1 ORDER BY tag")?;
+            let mut one =
+                c.prepare_cached("SELECT text, added_unix_ms FROM captions WHERE id = ?1")?;
+            let mut tags = c.prepare_cached(
+                "SELECT tag FROM caption_tags WHERE caption_id = ?1 ORDER BY tag",
+            )?;
             let mut out = Vec::with_capacity(ids.len());
             for id in ids {
                 let Ok(sql_id) = i64::try_from(*id) else {
@@ -296,7 +303,9 @@ impl CaptionStore {
                     continue;
                 };
                 let row = one
-                    .query_row([sql_id], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?)))
+                    .query_row([sql_id], |r| {
+                        Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)?))
+                    })
                     .optional()?;
                 out.push(match row {
                     None => None,
@@ -317,8 +326,10 @@ impl CaptionStore {
     /// The caption with this exact text.
     pub fn caption_by_text(&self, text: &str) -> Result<Option<Caption>, StoreError> {
         let id: Option<i64> = self.with_reader(|c| {
-            c.query_row("SELECT id FROM captions WHERE text = ?1", [text], |r| r.get(0))
-                .optional()
+            c.query_row("SELECT id FROM captions WHERE text = ?1", [text], |r| {
+                r.get(0)
+            })
+            .optional()
         })?;
         match id {
             None => Ok(None),
@@ -331,7 +342,9 @@ impl CaptionStore {
         self.with_reader(|c| {
             let mut stmt = c.prepare("SELECT caption_id, tag FROM caption_tags")?;
             let rows = stmt
-                .query_map([], |r| Ok((r.get::<_, i64>(0)? as RowId, r.get::<_, String>(1)?)))?
+                .query_map([], |r| {
+                    Ok((r.get::<_, i64>(0)? as RowId, r.get::<_, String>(1)?))
+                })?
                 .collect();
             rows
         })
@@ -365,13 +378,20 @@ impl CaptionStore {
     pub fn counts(&self) -> Result<StoreCounts, StoreError> {
         let (captions, vectors, tags) = self.with_reader(|c| {
             let captions: i64 = c.query_row("SELECT count(*) FROM captions", [], |r| r.get(0))?;
-            let mut v = c.prepare("SELECT digest, count(*) FROM caption_vectors GROUP BY digest ORDER BY digest")?;
+            let mut v = c.prepare(
+                "SELECT digest, count(*) FROM caption_vectors GROUP BY digest ORDER BY digest",
+            )?;
             let vectors = v
-                .query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)? as u64)))?
+                .query_map([], |r| {
+                    Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)? as u64))
+                })?
                 .collect::<rusqlite::Result<Vec<_>>>()?;
-            let mut t = c.prepare("SELECT tag, count(*) FROM caption_tags GROUP BY tag ORDER BY tag")?;
+            let mut t =
+                c.prepare("SELECT tag, count(*) FROM caption_tags GROUP BY tag ORDER BY tag")?;
             let tags = t
-                .query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)? as u64)))?
+                .query_map([], |r| {
+                    Ok((r.get::<_, String>(0)?, r.get::<_, i64>(1)? as u64))
+                })?
                 .collect::<rusqlite::Result<Vec<_>>>()?;
             Ok((captions as u64, vectors, tags))
         })?;
@@ -429,20 +449,54 @@ mod tests {
         let store = CaptionStore::open(&dir.path().join("bank.sqlite")).unwrap();
         let v = [0.6f32, 0.8];
         let rows = [
-            StoreRow { text: "a red cube", tag: Some("coco"), vector: Some(&v) },
-            StoreRow { text: "a red cube", tag: Some("mine"), vector: Some(&v) },
+            StoreRow {
+                text: "a red cube",
+                tag: Some("coco"),
+                vector: Some(&v),
+            },
+            StoreRow {
+                text: "a red cube",
+                tag: Some("mine"),
+                vector: Some(&v),
+            },
         ];
         let out = store.append("d1", &rows).unwrap();
-        assert_eq!(out[0], Stored { id: out[0].id, new_caption: true, new_vector: true });
-        assert_eq!(out[1], Stored { id: out[0].id, new_caption: false, new_vector: false });
+        assert_eq!(
+            out[0],
+            Stored {
+                id: out[0].id,
+                new_caption: true,
+                new_vector: true
+            }
+        );
+        assert_eq!(
+            out[1],
+            Stored {
+                id: out[0].id,
+                new_caption: false,
+                new_vector: false
+            }
+        );
         let again = store.append("d2", &rows[..1]).unwrap();
-        assert_eq!(again[0], Stored { id: out[0].id, new_caption: false, new_vector: true });
+        assert_eq!(
+            again[0],
+            Stored {
+                id: out[0].id,
+                new_caption: false,
+                new_vector: true
+            }
+        );
 
         let c = store.caption_by_text("a red cube").unwrap().unwrap();
         assert_eq!(c.tags, vec!["coco".to_string(), "mine".to_string()]);
-        assert_eq!(store.has_vector("d1", &["a red cube", "other"]).unwrap(), vec![true, false]);
+        assert_eq!(
+            store.has_vector("d1", &["a red cube", "other"]).unwrap(),
+            vec![true, false]
+        );
         let mut seen = Vec::new();
-        store.each_row("d1", &mut |id, v| seen.push((id, v.to_vec()))).unwrap();
+        store
+            .each_row("d1", &mut |id, v| seen.push((id, v.to_vec())))
+            .unwrap();
         assert_eq!(seen, vec![(c.id, vec![0.6, 0.8])]);
         assert_eq!(store.integrity_check().unwrap(), vec!["ok".to_string()]);
         let counts = store.counts().unwrap();
@@ -456,7 +510,16 @@ mod tests {
         let path = dir.path().join("bank.sqlite");
         {
             let store = CaptionStore::open(&path).unwrap();
-            store.append("d", &[StoreRow { text: "x", tag: None, vector: None }]).unwrap();
+            store
+                .append(
+                    "d",
+                    &[StoreRow {
+                        text: "x",
+                        tag: None,
+                        vector: None,
+                    }],
+                )
+                .unwrap();
         }
         let store = CaptionStore::open(&path).unwrap();
         assert_eq!(store.without_vector("d", 0, 10).unwrap().len(), 1);
@@ -464,6 +527,9 @@ mod tests {
         let conn = Connection::open(&path).unwrap();
         conn.pragma_update(None, "user_version", 99).unwrap();
         drop(conn);
-        assert!(matches!(CaptionStore::open(&path), Err(StoreError::NewerSchema { found: 99, .. })));
+        assert!(matches!(
+            CaptionStore::open(&path),
+            Err(StoreError::NewerSchema { found: 99, .. })
+        ));
     }
 }

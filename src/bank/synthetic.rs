@@ -217,8 +217,9 @@ impl SceneEmbedder {
     pub fn vector(&self, text: &str) -> Vec<f32> {
         let hash = |s: &str| {
             // FNV-1a: stable across runs and platforms, unlike std's hasher.
-            s.bytes()
-                .fold(0xcbf2_9ce4_8422_2325u64, |h, b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
+            s.bytes().fold(0xcbf2_9ce4_8422_2325u64, |h, b| {
+                (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
+            })
         };
         let first = text.split_whitespace().next().unwrap_or("");
         let mut scenes = self.scenes.clone();
@@ -232,7 +233,10 @@ impl crate::vectors::Embedder for SceneEmbedder {
         self.dim
     }
 
-    fn embed_texts(&self, texts: &[String]) -> Result<ndarray::Array2<f32>, crate::vectors::EmbedError> {
+    fn embed_texts(
+        &self,
+        texts: &[String],
+    ) -> Result<ndarray::Array2<f32>, crate::vectors::EmbedError> {
         let mut out = ndarray::Array2::zeros((texts.len(), self.dim));
         for (mut row, t) in out.outer_iter_mut().zip(texts) {
             row.assign(&ndarray::ArrayView1::from(&self.vector(t)[..]));
@@ -244,6 +248,8 @@ impl crate::vectors::Embedder for SceneEmbedder {
         &self,
         _paths: &[std::path::PathBuf],
     ) -> Result<ndarray::Array2<f32>, crate::vectors::EmbedError> {
-        Err(crate::vectors::EmbedError("the scene embedder has no image tower".into()))
+        Err(crate::vectors::EmbedError(
+            "the scene embedder has no image tower".into(),
+        ))
     }
 }

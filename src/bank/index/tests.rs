@@ -19,7 +19,12 @@ fn ids(hits: &[Neighbour]) -> Vec<RowId> {
 
 /// Graph search only, so small test banks exercise HNSW and not the scan.
 fn graph(k: usize) -> Search<'static> {
-    Search { k, ef_search: None, mode: SearchMode::Index, only: None }
+    Search {
+        k,
+        ef_search: None,
+        mode: SearchMode::Index,
+        only: None,
+    }
 }
 
 #[test]
@@ -28,7 +33,10 @@ fn default_breadth_meets_the_recall_target_on_a_blocks_like_bank() {
     let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
     index.insert(&rows_of(&bank, 1)).unwrap();
     let recall = index_recall(&index, &queries, 10, DEFAULT_EF_SEARCH).unwrap();
-    assert!(recall >= 0.98, "recall@10 = {recall} at ef_search {DEFAULT_EF_SEARCH}");
+    assert!(
+        recall >= 0.98,
+        "recall@10 = {recall} at ef_search {DEFAULT_EF_SEARCH}"
+    );
 }
 
 #[test]
@@ -45,20 +53,45 @@ fn self_queries_and_duplicates_never_panic() {
         assert!(hits.iter().all(|h| h.cosine > 0.9999), "row {id}: {hits:?}");
         assert!(ids(&hits).contains(id));
     }
-    assert_eq!(index.insert(&rows[..5]).unwrap(), 0, "same ids are not inserted twice");
+    assert_eq!(
+        index.insert(&rows[..5]).unwrap(),
+        0,
+        "same ids are not inserted twice"
+    );
 }
 
 #[test]
 fn bad_vectors_and_settings_are_refused_with_errors() {
     let index = VectorIndex::in_memory(DIGEST_A, 4, IndexParams::default()).unwrap();
-    assert!(matches!(index.insert(&[(1, vec![1.0; 3])]), Err(IndexError::Dimension { got: 3, .. })));
-    assert!(matches!(index.insert(&[(1, vec![f32::NAN; 4])]), Err(IndexError::NotFinite { position: 0 })));
-    assert!(matches!(index.insert(&[(1, vec![0.0; 4])]), Err(IndexError::Zero)));
-    assert!(matches!(index.search(&[1.0; 4], &graph(0)), Err(IndexError::Setting { name: "k", .. })));
-    assert!(index.search(&[1.0; 4], &graph(5)).unwrap().hits.is_empty(), "an empty index answers nothing");
-    let bad = IndexParams { max_connections: 300, ..IndexParams::default() };
+    assert!(matches!(
+        index.insert(&[(1, vec![1.0; 3])]),
+        Err(IndexError::Dimension { got: 3, .. })
+    ));
+    assert!(matches!(
+        index.insert(&[(1, vec![f32::NAN; 4])]),
+        Err(IndexError::NotFinite { position: 0 })
+    ));
+    assert!(matches!(
+        index.insert(&[(1, vec![0.0; 4])]),
+        Err(IndexError::Zero)
+    ));
+    assert!(matches!(
+        index.search(&[1.0; 4], &graph(0)),
+        Err(IndexError::Setting { name: "k", .. })
+    ));
+    assert!(
+        index.search(&[1.0; 4], &graph(5)).unwrap().hits.is_empty(),
+        "an empty index answers nothing"
+    );
+    let bad = IndexParams {
+        max_connections: 300,
+        ..IndexParams::default()
+    };
     assert!(VectorIndex::in_memory(DIGEST_A, 4, bad).is_err());
-    assert!(matches!(VectorIndex::in_memory("../x", 4, IndexParams::default()), Err(IndexError::Digest(_))));
+    assert!(matches!(
+        VectorIndex::in_memory("../x", 4, IndexParams::default()),
+        Err(IndexError::Digest(_))
+    ));
 }
 
 #[test]
@@ -66,68 +99,117 @@ fn dump_and_reload_answer_the_same_and_replay_later_rows() {
     let root = tempfile::tempdir().unwrap();
     let data = uniform_sphere(3_000, DIM, 21);
     let mut source = rows_of(&data[..2_000 * DIM], 1);
-    let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
     assert!(matches!(report.origin, GraphOrigin::Built { .. }));
     let queries = uniform_sphere(20, DIM, 99);
-    let before: Vec<Vec<RowId>> = queries.chunks(DIM).map(|q| ids(&index.search(q, &graph(10)).unwrap().hits)).collect();
+    let before: Vec<Vec<RowId>> = queries
+        .chunks(DIM)
+        .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
+        .collect();
     let dumped = index.dump().unwrap();
     assert!(dumped.written);
     assert_eq!(dumped.rows, 2_000);
-    assert!(!index.dump().unwrap().written, "nothing changed, nothing written");
+    assert!(
+        !index.dump().unwrap().written,
+        "nothing changed, nothing written"
+    );
     drop(index);
 
-    let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(report.origin, GraphOrigin::Loaded { dumped: 2_000, replayed: 0 });
-    let after: Vec<Vec<RowId>> = queries.chunks(DIM).map(|q| ids(&index.search(q, &graph(10)).unwrap().hits)).collect();
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    assert_eq!(
+        report.origin,
+        GraphOrigin::Loaded {
+            dumped: 2_000,
+            replayed: 0
+        }
+    );
+    let after: Vec<Vec<RowId>> = queries
+        .chunks(DIM)
+        .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
+        .collect();
     assert_eq!(before, after, "a reloaded graph answers as the dumped one");
     drop(index);
 
     // Rows committed to the source after the dump are replayed at open.
     source.extend(rows_of(&data[2_000 * DIM..], 2_001));
-    let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(report.origin, GraphOrigin::Loaded { dumped: 2_000, replayed: 1_000 });
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    assert_eq!(
+        report.origin,
+        GraphOrigin::Loaded {
+            dumped: 2_000,
+            replayed: 1_000
+        }
+    );
     assert_eq!(index.stats().indexed, 3_000);
     for (id, v) in source.iter().skip(2_000).step_by(97) {
         assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
     }
-    assert!(index.dump().unwrap().written, "replayed rows make the dump stale");
+    assert!(
+        index.dump().unwrap().written,
+        "replayed rows make the dump stale"
+    );
 }
 
 #[test]
 fn another_digest_or_settings_rebuild_instead_of_loading() {
     let root = tempfile::tempdir().unwrap();
     let source = rows_of(&uniform_sphere(500, DIM, 5), 1);
-    let (index, _) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let (index, _) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
     index.dump().unwrap();
     drop(index);
 
     // A new bundle digest has its own folder: nothing to load there.
-    let (_, report) = VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(report.origin, GraphOrigin::Built { reason: "no dump yet".into() });
+    let (_, report) =
+        VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
+    assert_eq!(
+        report.origin,
+        GraphOrigin::Built {
+            reason: "no dump yet".into()
+        }
+    );
 
     // A dump copied under another digest's folder is refused by its manifest.
     let b_dir = root.path().join(DIGEST_B);
     std::fs::remove_dir_all(&b_dir).unwrap();
     copy_dir(&root.path().join(DIGEST_A), &b_dir);
-    let (_, report) = VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
-    assert!(matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("digest")), "{report:?}");
+    let (_, report) =
+        VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
+    assert!(
+        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("digest")),
+        "{report:?}"
+    );
 
     // Other build settings: rebuilt to honour them.
-    let other = IndexParams { max_connections: 8, ..IndexParams::default() };
+    let other = IndexParams {
+        max_connections: 8,
+        ..IndexParams::default()
+    };
     let (_, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, other, &source).unwrap();
-    assert!(matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("M=16")), "{report:?}");
+    assert!(
+        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("M=16")),
+        "{report:?}"
+    );
 }
 
 #[test]
 fn a_store_that_lost_rows_makes_the_dump_unusable() {
     let root = tempfile::tempdir().unwrap();
     let source = rows_of(&uniform_sphere(500, DIM, 6), 1);
-    let (index, _) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let (index, _) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
     index.dump().unwrap();
     drop(index);
     let fewer: Vec<_> = source[..400].to_vec();
-    let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &fewer).unwrap();
-    assert!(matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("does not have")), "{report:?}");
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &fewer).unwrap();
+    assert!(
+        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("does not have")),
+        "{report:?}"
+    );
     assert_eq!(index.len(), 400);
 }
 
@@ -148,9 +230,15 @@ fn copy_dir(from: &std::path::Path, to: &std::path::Path) {
 fn truncated_or_garbled_dump_files_are_rebuilt_not_read() {
     let data = uniform_sphere(800, DIM, 8);
     let source = rows_of(&data, 1);
-    for damage in ["truncate-graph", "garble-data", "garble-manifest", "empty-current"] {
+    for damage in [
+        "truncate-graph",
+        "garble-data",
+        "garble-manifest",
+        "empty-current",
+    ] {
         let root = tempfile::tempdir().unwrap();
-        let (index, _) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+        let (index, _) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
         let q = &data[..DIM];
         let expected = ids(&index.search(q, &graph(5)).unwrap().hits);
         index.dump().unwrap();
@@ -162,7 +250,12 @@ fn truncated_or_garbled_dump_files_are_rebuilt_not_read() {
             "truncate-graph" => {
                 let p = folder.join("index.hnsw.graph");
                 let len = std::fs::metadata(&p).unwrap().len();
-                std::fs::OpenOptions::new().write(true).open(&p).unwrap().set_len(len / 2).unwrap();
+                std::fs::OpenOptions::new()
+                    .write(true)
+                    .open(&p)
+                    .unwrap()
+                    .set_len(len / 2)
+                    .unwrap();
             }
             "garble-data" => {
                 let p = folder.join("index.hnsw.data");
@@ -172,13 +265,23 @@ fn truncated_or_garbled_dump_files_are_rebuilt_not_read() {
                 }
                 std::fs::write(&p, bytes).unwrap();
             }
-            "garble-manifest" => std::fs::write(folder.join("manifest.json"), b"\x00\x01garbage").unwrap(),
+            "garble-manifest" => {
+                std::fs::write(folder.join("manifest.json"), b"\x00\x01garbage").unwrap()
+            }
             _ => std::fs::write(digest_dir.join("CURRENT"), b"").unwrap(),
         }
-        let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-        assert!(matches!(report.origin, GraphOrigin::Built { .. }), "{damage}: {report:?}");
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+        assert!(
+            matches!(report.origin, GraphOrigin::Built { .. }),
+            "{damage}: {report:?}"
+        );
         assert_eq!(index.len(), 800, "{damage}");
-        assert_eq!(ids(&index.search(q, &graph(5)).unwrap().hits)[0], expected[0], "{damage}");
+        assert_eq!(
+            ids(&index.search(q, &graph(5)).unwrap().hits)[0],
+            expected[0],
+            "{damage}"
+        );
     }
 }
 
@@ -188,7 +291,8 @@ fn unusable_source_rows_are_skipped_and_counted() {
     let mut source = rows_of(&uniform_sphere(10, DIM, 1), 1);
     source.push((100, vec![f32::NAN; DIM]));
     source.push((101, vec![1.0; 3]));
-    let (index, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
     assert_eq!((report.rows, report.skipped), (10, 2));
     assert_eq!(report.skipped_ids, vec![100, 101]);
     assert_eq!(index.len(), 10);
@@ -197,14 +301,22 @@ fn unusable_source_rows_are_skipped_and_counted() {
 #[test]
 fn tag_filters_only_return_allowed_rows_whatever_their_size() {
     let (bank, queries) = blocks_like(6_000, 20, DIM, 4);
-    let params = IndexParams { exact_below: 500, ..IndexParams::default() };
+    let params = IndexParams {
+        exact_below: 500,
+        ..IndexParams::default()
+    };
     let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
     index.insert(&rows_of(&bank, 1)).unwrap();
     let narrow: HashSet<RowId> = (1..=6_000).filter(|i| i % 50 == 0).collect();
     let wide: HashSet<RowId> = (1..=6_000).filter(|i| i % 3 == 0).collect();
     for only in [&narrow, &wide] {
         for q in queries.chunks(DIM) {
-            let search = Search { k: 10, ef_search: None, mode: SearchMode::Auto, only: Some(only) };
+            let search = Search {
+                k: 10,
+                ef_search: None,
+                mode: SearchMode::Auto,
+                only: Some(only),
+            };
             let got = index.search(q, &search).unwrap();
             assert_eq!(got.hits.len(), 10);
             assert!(got.hits.iter().all(|h| only.contains(&h.id)));
@@ -217,22 +329,39 @@ fn tag_filters_only_return_allowed_rows_whatever_their_size() {
             assert!(recall >= 0.8, "filtered recall {recall}");
         }
     }
-    let search = Search { k: 10, ef_search: None, mode: SearchMode::Auto, only: Some(&narrow) };
-    assert_eq!(index.search(&queries[..DIM], &search).unwrap().answered, Answered::Exact);
+    let search = Search {
+        k: 10,
+        ef_search: None,
+        mode: SearchMode::Auto,
+        only: Some(&narrow),
+    };
+    assert_eq!(
+        index.search(&queries[..DIM], &search).unwrap().answered,
+        Answered::Exact
+    );
 }
 
 #[test]
 fn auto_mode_scans_small_banks_exactly() {
     let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
-    index.insert(&rows_of(&uniform_sphere(100, DIM, 2), 1)).unwrap();
+    index
+        .insert(&rows_of(&uniform_sphere(100, DIM, 2), 1))
+        .unwrap();
     let q = uniform_sphere(1, DIM, 77);
-    assert_eq!(index.search(&q, &Search::top(5)).unwrap().answered, Answered::Exact);
-    assert_eq!(index.search(&q, &graph(5)).unwrap().answered, Answered::Index);
+    assert_eq!(
+        index.search(&q, &Search::top(5)).unwrap().answered,
+        Answered::Exact
+    );
+    assert_eq!(
+        index.search(&q, &graph(5)).unwrap().answered,
+        Answered::Index
+    );
 }
 
 #[test]
 fn concurrent_inserts_and_searches_find_every_inserted_row() {
-    let index = std::sync::Arc::new(VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap());
+    let index =
+        std::sync::Arc::new(VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap());
     let data = uniform_sphere(4_000, DIM, 31);
     let rows = rows_of(&data, 1);
     index.insert(&rows[..1_000]).unwrap();
