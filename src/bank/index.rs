@@ -963,6 +963,11 @@ fn load_checked(
     let mut ids = HashSet::with_capacity(manifest.rows);
     let indexation = graph.get_point_indexation();
     for layer in 0..HNSW_LAYERS {
+        // The layer iterator indexes without a bounds check; a layer that is
+        // empty or absent has nothing to verify anyway.
+        if indexation.get_layer_nb_point(layer) == 0 {
+            continue;
+        }
         for point in indexation.get_layer_iterator(layer) {
             let id = point.get_origin_id() as RowId;
             let v = point.get_v();
