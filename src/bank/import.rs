@@ -147,6 +147,8 @@ fn parse_line(
     bank: &ModelBank,
 ) -> Result<Option<(String, Option<String>)>, String> {
     let text = std::str::from_utf8(bytes).map_err(|e| format!("not UTF-8 ({e})"))?;
+    // Editors on some systems start a UTF-8 file with a byte-order mark.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let text = text.trim_end_matches(['\n', '\r']);
     if text.trim().is_empty() {
         return Ok(None);

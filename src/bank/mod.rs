@@ -261,6 +261,7 @@ pub struct CaptionBank {
     core: Arc<Core>,
     index_root: PathBuf,
     models: Arc<RwLock<HashMap<String, Arc<ModelBank>>>>,
+    loading: Arc<std::sync::Mutex<()>>,
 }
 
 impl std::fmt::Debug for CaptionBank {
@@ -294,6 +295,7 @@ impl CaptionBank {
             }),
             index_root: data_dir.join(INDEX_DIR),
             models: Arc::new(RwLock::new(HashMap::new())),
+            loading: Arc::new(std::sync::Mutex::new(())),
         })
     }
 
@@ -310,11 +312,11 @@ impl CaptionBank {
             return check_dimension(m, dimension).map(|m| (m, None));
         }
         index::validate_digest(digest)?;
-        // Loading can take long; holding the map's write lock meanwhile keeps a
-        // second caller from loading the same digest twice.
-        let mut models = write(&self.models);
-        if let Some(m) = models.get(digest) {
-            return check_dimension(m.clone(), dimension).map(|m| (m, None));
+        // One load at a time, so a digest is never loaded twice; the map
+        // itself stays readable meanwhile (stats, other digests' searches).
+        let _loading = self.loading.lock().unwrap_or_else(|e| e.into_inner());
+        if let Some(m) = self.loaded(digest) {
+            return check_dimension(m, dimension).map(|m| (m, None));
         }
         let (index, report) = VectorIndex::open(
             &self.index_root,
@@ -327,7 +329,7 @@ impl CaptionBank {
             core: self.core.clone(),
             index,
         });
-        models.insert(digest.to_string(), model.clone());
+        write(&self.models).insert(digest.to_string(), model.clone());
         Ok((model, Some(report)))
     }
 

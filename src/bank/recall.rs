@@ -35,28 +35,6 @@ pub fn mean_recall(exact: &[Vec<f32>], approx: &[Vec<f32>], k: usize) -> f64 {
     total / exact.len() as f64
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn counts_hits_above_the_kth_exact_cosine() {
-        let exact = [0.9, 0.8, 0.7];
-        assert_eq!(recall_of_query(&exact, &[0.9, 0.8, 0.7], 3), 1.0);
-        assert!((recall_of_query(&exact, &[0.9, 0.8, 0.6], 3) - 2.0 / 3.0).abs() < 1e-12);
-        // Another row tied with the k-th (a duplicate vector) is a hit too.
-        assert_eq!(recall_of_query(&exact, &[0.9, 0.8, 0.7 - 1e-7], 3), 1.0);
-        assert_eq!(recall_of_query(&[], &[], 10), 1.0);
-    }
-
-    #[test]
-    fn mean_is_over_queries() {
-        let exact = vec![vec![1.0], vec![1.0]];
-        let approx = vec![vec![1.0], vec![0.0]];
-        assert_eq!(mean_recall(&exact, &approx, 1), 0.5);
-    }
-}
-
 /// Recall@k of `index`'s graph search at breadth `ef_search` against its own
 /// exact scan, over `queries` (row-major, the index's dimension).
 pub fn index_recall(
@@ -86,4 +64,26 @@ pub fn index_recall(
         );
     }
     Ok(mean_recall(&exact, &approx, k))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn counts_hits_above_the_kth_exact_cosine() {
+        let exact = [0.9, 0.8, 0.7];
+        assert_eq!(recall_of_query(&exact, &[0.9, 0.8, 0.7], 3), 1.0);
+        assert!((recall_of_query(&exact, &[0.9, 0.8, 0.6], 3) - 2.0 / 3.0).abs() < 1e-12);
+        // Another row tied with the k-th (a duplicate vector) is a hit too.
+        assert_eq!(recall_of_query(&exact, &[0.9, 0.8, 0.7 - 1e-7], 3), 1.0);
+        assert_eq!(recall_of_query(&[], &[], 10), 1.0);
+    }
+
+    #[test]
+    fn mean_is_over_queries() {
+        let exact = vec![vec![1.0], vec![1.0]];
+        let approx = vec![vec![1.0], vec![0.0]];
+        assert_eq!(mean_recall(&exact, &approx, 1), 0.5);
+    }
 }

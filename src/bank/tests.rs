@@ -186,7 +186,7 @@ fn an_interrupted_import_resumes_to_the_same_bank_as_an_uninterrupted_one() {
 fn bad_lines_are_reported_with_their_numbers_and_skipped() {
     let dir = tempfile::tempdir().unwrap();
     let lines = vec![
-        r#"{"text": "scene1 a red cube"}"#.to_string(),
+        "\u{feff}{\"text\": \"scene1 a red cube\"}\r".to_string(),
         "not json".to_string(),
         String::new(),
         r#"{"text": ""}"#.to_string(),
