@@ -51,6 +51,24 @@ class ImageEncoder(nn.Module):
         return F.normalize(self.head(self.features(pixels)), dim=-1)
 
 
+class PlaceHead(nn.Module):
+    """Training-only probe: from an image embedding, where each colour and shape is.
+
+    Outputs, per colour then per shape, a presence logit, the centre (x, y)
+    in scene fractions and a "large" logit. Not exported: it exists so that the image embeddings
+    carry positions from the start (see train.py), and it is dropped after
+    training.
+    """
+
+    def __init__(self, dim: int, kinds: int):
+        super().__init__()
+        self.kinds = kinds
+        self.linear = nn.Linear(dim, 4 * kinds)
+
+    def forward(self, embedding: torch.Tensor) -> torch.Tensor:
+        return self.linear(embedding).view(-1, self.kinds, 4)
+
+
 class TextEncoder(nn.Module):
     """int64 ids and mask [batch, tokens], right padded -> [batch, dim] unit vectors."""
 

@@ -37,7 +37,9 @@ TOLERANCE = 1e-4
 PACKAGES = ("torch", "onnx", "onnxruntime", "tokenizers", "transformers", "numpy", "pillow", "onnxscript")
 
 
-def _export(module: torch.nn.Module, args: tuple, path: Path, inputs: list[str], output: str, token_axis: bool) -> None:
+def _export(
+    module: torch.nn.Module, args: tuple, path: Path, inputs: list[str], output: str, token_axis: bool, dimension: int
+) -> None:
     axes = {name: ({0: "batch", 1: "tokens"} if token_axis else {0: "batch"}) for name in inputs}
     axes[output] = {0: "batch"}
     torch.onnx.export(
@@ -57,6 +59,8 @@ def _export(module: torch.nn.Module, args: tuple, path: Path, inputs: list[str],
     # only change when the model does.
     for node in model.graph.node:
         node.doc_string = ""
+    # The exporter leaves the embedding width symbolic; state it.
+    model.graph.output[0].type.tensor_type.shape.dim[1].dim_value = dimension
     model.producer_version = ""
     onnx.save(model, str(path))
 
@@ -150,8 +154,8 @@ def export_blocks(name: str, source: Path, out: Path) -> tuple[dict, object, obj
     dummy_img = torch.zeros(2, 3, 64, 64)
     dummy_ids = torch.ones(2, 7, dtype=torch.long)
     dummy_mask = torch.ones(2, 7, dtype=torch.long)
-    _export(image_enc, (dummy_img,), out / "image.onnx", ["pixels"], "embedding", False)
-    _export(text_enc, (dummy_ids, dummy_mask), out / "text.onnx", ["input_ids", "attention_mask"], "embedding", True)
+    _export(image_enc, (dummy_img,), out / "image.onnx", ["pixels"], "embedding", False, s["dim"])
+    _export(text_enc, (dummy_ids, dummy_mask), out / "text.onnx", ["input_ids", "attention_mask"], "embedding", True, s["dim"])
     image = {"input": "pixels", "output": "embedding", "size": 64, "resize": "stretch", "filter": "bilinear",
              "mean": s["mean"], "std": s["std"]}
     text = {"ids_input": "input_ids", "mask_input": "attention_mask", "output": "embedding",
@@ -172,8 +176,8 @@ def export_clip(name: str, source: Path, out: Path) -> tuple[dict, object, objec
     dummy_img = torch.zeros(2, 3, size, size)
     dummy_ids = torch.tensor([[0, 5, 6, 1, 1], [0, 7, 8, 9, 1]], dtype=torch.long)
     dummy_mask = torch.tensor([[1, 1, 1, 1, 0], [1, 1, 1, 1, 1]], dtype=torch.long)
-    _export(image_mod, (dummy_img,), out / "image.onnx", ["pixel_values"], "image_embeds", False)
-    _export(text_mod, (dummy_ids, dummy_mask), out / "text.onnx", ["input_ids", "attention_mask"], "text_embeds", True)
+    _export(image_mod, (dummy_img,), out / "image.onnx", ["pixel_values"], "image_embeds", False, s["dim"])
+    _export(text_mod, (dummy_ids, dummy_mask), out / "text.onnx", ["input_ids", "attention_mask"], "text_embeds", True, s["dim"])
     image = {"input": "pixel_values", "output": "image_embeds", "size": size, "resize": "shorter-then-crop",
              "filter": "bicubic", "mean": s["mean"], "std": s["std"]}
     text = {"ids_input": "input_ids", "mask_input": "attention_mask", "output": "text_embeds",

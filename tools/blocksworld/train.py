@@ -18,9 +18,29 @@ all negatives give gradient while the space forms), the rest take the largest
 (hardest in-batch negative). Pairs whose scenes have the same facts are not
 negatives: their captions are true of each other. With `contrast_negatives`,
 each image also meets one caption made from its own true caption by changing
-one fact (captions.contrast) as one more negative in the image -> text
-direction: in-batch negatives alone almost never differ from the truth by a
-single relation word, so without them left and right are barely learned.
+one fact (captions.contrast), as its own hinge term next to the in-batch
+ones (inside the max it would rarely be the hardest early on and give no
+gradient). In-batch negatives almost never differ from the truth by a single
+relation word or shape, so without these left and right are barely learned;
+the changed fact is drawn with weights CHANGE_WEIGHTS for the same reason.
+Every training image is flipped left-right and top-bottom at random (facts
+and captions following), which doubles the placements seen.
+
+Captions alone do not teach relations, though: the symmetric point (no
+position in any vector, "left of" and "right of" embedded alike) is a saddle
+that ranking losses leave very slowly, because each push towards "left" from
+one image is undone by the mirror-placed twin of another (measured: after
+2,000 steps relation contrasts were still at chance). `place_weight` adds an
+auxiliary loss that breaks it from the image side: a linear head
+(encoders.PlaceHead, training only, not exported) must read from the image
+embedding where each colour and each shape is (presence, centre when present,
+and whether that piece is large). The same head also reads
+caption vectors (`text_place_weight`): an inventory caption must show the
+colours and shapes it lists as present, every mentioned piece its size, and a
+relation caption "A left of B"
+must put A's colour and shape left of B's by at least 0.2 of the side. The
+head is shared, so both towers write places into the same directions of the
+shared space, and cosine then rewards agreeing places.
 
 The run ends at whichever budget runs out first: a step cap (`steps`), a
 compute budget of `minutes` on 2 cores (process CPU time, 2 x minutes), and a
@@ -50,17 +70,21 @@ import numpy as np
 # spinning thread burns the core its partner needs, and steps get 5x slower.
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 import torch  # noqa: E402
+import torch.nn.functional as F  # noqa: E402
 
 from captions import CHANGES, contrast, contrasts, render, sample_spec, true_captions
-from encoders import ImageEncoder, TextEncoder
+from encoders import ImageEncoder, PlaceHead, TextEncoder
 from render import render_scene
 from vocabulary import word_level
-from world import sample_scene
+from world import COLOURS, SHAPES, mirrored, sample_scene
 
 # Channel statistics of rendered scenes (2,000 scenes of seed 1, rounded):
 # the table's browns and greys dominate, hence the small std.
 MEAN = (0.49, 0.45, 0.39)
 STD = (0.11, 0.09, 0.10)
+# Relative odds of the fact a training contrast changes: colour, size and
+# count are learned from in-batch negatives anyway, relations and shapes not.
+CHANGE_WEIGHTS = {"colour": 1.0, "size": 1.0, "count": 1.0, "shape": 2.0, "relation": 4.0}
 MAX_TOKENS = 32
 PAD_ID = 0
 DIM = 64
@@ -83,6 +107,8 @@ class Preset:
     margin: float = 0.2
     schedule: str = "cosine"
     contrast_negatives: bool = True
+    place_weight: float = 1.0
+    text_place_weight: float = 1.0
 
 
 PRESETS = {
@@ -116,6 +142,92 @@ def render_pool(seed: int, n: int) -> tuple[np.ndarray, list, np.ndarray]:
     return images, scenes, sig_ids
 
 
+def place_targets(scenes: list) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+    """Per scene and colour/shape kind: presence [n, kinds], centre [n, kinds, 2], large [n, kinds].
+
+    Two pieces never share colour and shape, but may share one of them; the
+    kind then holds the last piece's centre and size (rare, and only noise).
+    """
+    kinds = list(COLOURS) + list(SHAPES)
+    present = torch.zeros(len(scenes), len(kinds))
+    centre = torch.zeros(len(scenes), len(kinds), 2)
+    large = torch.zeros(len(scenes), len(kinds))
+    for n, scene in enumerate(scenes):
+        for piece in scene.pieces:
+            for k in (kinds.index(piece.colour), len(COLOURS) + SHAPES.index(piece.shape)):
+                present[n, k] = 1.0
+                centre[n, k] = torch.tensor([piece.x, piece.y])
+                large[n, k] = float(piece.size == "large")
+    return present, centre, large
+
+
+def place_loss(pred: torch.Tensor, present: torch.Tensor, centre: torch.Tensor, large: torch.Tensor) -> torch.Tensor:
+    """Presence cross-entropy, plus centre error and size cross-entropy where present."""
+    bce = F.binary_cross_entropy_with_logits(pred[..., 0], present)
+    n = present.sum().clamp(min=1.0)
+    err = ((pred[..., 1:3] - centre) ** 2).sum(-1)
+    size = F.binary_cross_entropy_with_logits(pred[..., 3], large, reduction="none")
+    # x10: centre errors start near 0.1, the cross-entropies near 0.7.
+    return bce + 10.0 * (err * present).sum() / n + (size * present).sum() / n
+
+
+AXIS = {"left of": (0, 1.0), "right of": (0, -1.0), "above": (1, 1.0), "below": (1, -1.0)}
+
+
+def text_place_loss(pred: torch.Tensor, specs: list) -> torch.Tensor:
+    """Place head on caption vectors: listed kinds present, stated relation in order.
+
+    `pred` is the head's output [n, kinds, 3] for the true captions `specs`.
+    """
+    kinds = list(COLOURS) + list(SHAPES)
+
+    def of(m):
+        return [kinds.index(m.colour), len(COLOURS) + SHAPES.index(m.shape)]
+
+    losses = []
+    rows, cols, large = [], [], []
+    for k, s in enumerate(specs):
+        for m in s.mentions:
+            for c in of(m):
+                rows.append(k)
+                cols.append(c)
+                large.append(float(m.size == "large"))
+    losses.append(F.binary_cross_entropy_with_logits(pred[torch.tensor(rows), torch.tensor(cols), 3], torch.tensor(large)))
+    inventory = [k for k, s in enumerate(specs) if s.relation is None]
+    if inventory:
+        present = torch.zeros(len(inventory), len(kinds))
+        for row, k in enumerate(inventory):
+            for m in specs[k].mentions:
+                present[row, of(m)] = 1.0
+        losses.append(F.binary_cross_entropy_with_logits(pred[inventory, :, 0], present))
+    rows, a_kinds, b_kinds, axes, signs = [], [], [], [], []
+    for k, s in enumerate(specs):
+        if s.relation is None:
+            continue
+        subject, rel, obj = s.relation
+        axis, sign = AXIS[rel]
+        for a, b in zip(of(s.mentions[subject]), of(s.mentions[obj])):
+            rows.append(k)
+            a_kinds.append(a)
+            b_kinds.append(b)
+            axes.append(1 + axis)
+            signs.append(sign)
+    if rows:
+        r, ax = torch.tensor(rows), torch.tensor(axes)
+        gap = pred[r, torch.tensor(b_kinds), ax] - pred[r, torch.tensor(a_kinds), ax]
+        losses.append((0.2 - torch.tensor(signs) * gap).clamp(min=0).mean() * 5.0)
+    return sum(losses) if losses else pred.sum() * 0.0
+
+
+def flip(image: np.ndarray, horizontal: bool, vertical: bool) -> np.ndarray:
+    """An [h, w, 3] picture mirrored left-right and/or top-bottom."""
+    if horizontal:
+        image = image[:, ::-1]
+    if vertical:
+        image = image[::-1]
+    return image
+
+
 def to_input(images: np.ndarray) -> torch.Tensor:
     x = torch.from_numpy(images).float().div_(255.0)
     x = (x - torch.tensor(MEAN)) / torch.tensor(STD)
@@ -131,17 +243,20 @@ def vse_loss(
     own_contrast: torch.Tensor | None = None,
 ) -> torch.Tensor:
     """Bidirectional hinge ranking loss; `same[i, j]` marks pairs that are not
-    negatives; `own_contrast[i]` is a false caption of image i (extra negative)."""
+    negatives; `own_contrast[i]` is a false caption of image i (an extra
+    negative with its own hinge)."""
     s = img @ txt.T
     d = s.diag()
     cost_txt = (margin + s - d[:, None]).clamp(min=0).masked_fill(same, 0)
     cost_img = (margin + s - d[None, :]).clamp(min=0).masked_fill(same, 0)
-    if own_contrast is not None:
-        c = (img * own_contrast).sum(dim=1, keepdim=True)
-        cost_txt = torch.cat([cost_txt, (margin + c - d[:, None]).clamp(min=0)], dim=1)
     if hardest:
-        return (cost_txt.max(dim=1).values + cost_img.max(dim=0).values).mean()
-    return (cost_txt.sum(dim=1) + cost_img.sum(dim=0)).mean()
+        loss = cost_txt.max(dim=1).values + cost_img.max(dim=0).values
+    else:
+        loss = cost_txt.sum(dim=1) + cost_img.sum(dim=0)
+    if own_contrast is not None:
+        c = (img * own_contrast).sum(dim=1)
+        loss = loss + (margin + c - d).clamp(min=0)
+    return loss.mean()
 
 
 def tensors(tokenizer, texts: list[str]) -> tuple[torch.Tensor, torch.Tensor]:
@@ -157,14 +272,12 @@ def tensors(tokenizer, texts: list[str]) -> tuple[torch.Tensor, torch.Tensor]:
 
 
 def false_twin(spec, scene, rng: np.random.Generator):
-    """`spec` with one fact changed, the change drawn among those it allows."""
-    changes = list(CHANGES)
-    rng.shuffle(changes)
-    for change in changes:
-        twin = contrast(spec, scene, change, rng)
-        if twin is not None:
-            return twin
-    raise AssertionError("every caption states some piece")
+    """`spec` with one fact changed, drawn by CHANGE_WEIGHTS among those it allows."""
+    twins = {c: contrast(spec, scene, c, rng) for c in CHANGES}
+    twins = {c: t for c, t in twins.items() if t is not None}
+    names = sorted(twins)
+    w = np.array([CHANGE_WEIGHTS[c] for c in names])
+    return twins[names[int(rng.choice(len(names), p=w / w.sum()))]]
 
 
 def lr_at(p: Preset, progress: float) -> float:
@@ -182,6 +295,14 @@ def lr_at(p: Preset, progress: float) -> float:
     return p.lr * (0.01 + 0.99 * 0.5 * (1 + math.cos(math.pi * t)))
 
 
+def save(out: Path, name: str, image_enc, text_enc, p: Preset, steps_done: int, tokenizer) -> dict:
+    """Write model.pt (also midway, so a long run can be looked at); returns the settings."""
+    settings = {"name": name, "preset": asdict(p), "steps_done": steps_done, "mean": MEAN, "std": STD,
+                "max_tokens": MAX_TOKENS, "pad_id": PAD_ID, "dim": DIM, "vocab": tokenizer.get_vocab_size()}
+    torch.save({"image": image_enc.state_dict(), "text": text_enc.state_dict(), "settings": settings}, out / "model.pt")
+    return settings
+
+
 def train(name: str, p: Preset, out: Path) -> None:
     torch.set_num_threads(2)
     torch.manual_seed(p.seed)
@@ -195,7 +316,8 @@ def train(name: str, p: Preset, out: Path) -> None:
 
     image_enc = ImageEncoder(width=p.width, dim=DIM)
     text_enc = TextEncoder(tokenizer.get_vocab_size(), embed=p.embed, hidden=p.text_hidden, dim=DIM, pad_id=PAD_ID)
-    params = list(image_enc.parameters()) + list(text_enc.parameters())
+    place_head = PlaceHead(DIM, len(COLOURS) + len(SHAPES))
+    params = list(image_enc.parameters()) + list(text_enc.parameters()) + list(place_head.parameters())
     opt = torch.optim.AdamW(params, lr=p.lr, weight_decay=p.weight_decay)
     rng = np.random.default_rng([p.seed, 99])
     tokenizer.enable_truncation(MAX_TOKENS)
@@ -217,10 +339,13 @@ def train(name: str, p: Preset, out: Path) -> None:
             order, cursor = rng.permutation(p.pool), 0
         idx = order[cursor : cursor + p.batch]
         cursor += p.batch
-        specs = [sample_spec(scenes[i], rng) for i in idx]
+        flips = rng.random((len(idx), 2)) < 0.5
+        batch_scenes = [mirrored(scenes[i], h, v) for i, (h, v) in zip(idx, flips)]
+        batch_images = np.stack([flip(images[i], h, v) for i, (h, v) in zip(idx, flips)])
+        specs = [sample_spec(s, rng) for s in batch_scenes]
         texts = [render(s) for s in specs]
         if p.contrast_negatives:
-            texts += [render(false_twin(s, scenes[i], rng)) for s, i in zip(specs, idx)]
+            texts += [render(false_twin(s, sc, rng)) for s, sc in zip(specs, batch_scenes)]
         ids, mask = tensors(tokenizer, texts)
         sig = torch.from_numpy(sig_ids[idx])
         same = (sig[:, None] == sig[None, :])
@@ -231,25 +356,31 @@ def train(name: str, p: Preset, out: Path) -> None:
         text_enc.train()
         txt = text_enc(ids, mask)
         own_contrast = txt[len(idx) :] if p.contrast_negatives else None
-        loss = vse_loss(image_enc(to_input(images[idx])), txt[: len(idx)], same, p.margin, progress >= p.sum_until, own_contrast)
+        img = image_enc(to_input(batch_images))
+        loss = vse_loss(img, txt[: len(idx)], same, p.margin, progress >= p.sum_until, own_contrast)
+        if p.place_weight:
+            present, centre, large = place_targets(batch_scenes)
+            loss = loss + p.place_weight * place_loss(place_head(img), present, centre, large)
+        if p.text_place_weight:
+            loss = loss + p.text_place_weight * text_place_loss(place_head(txt[: len(idx)]), specs)
         opt.zero_grad(set_to_none=True)
         loss.backward()
         torch.nn.utils.clip_grad_norm_(params, 2.0)
         opt.step()
         steps_done = step + 1
+        if step % 300 == 299:
+            save(out, name, image_enc, text_enc, p, steps_done, tokenizer)
         if step % 50 == 0:
             elapsed, cpu = time.time() - t1, time.process_time() - c1
             curve.append({"step": step, "loss": round(loss.item(), 4), "lr": round(lr, 6), "seconds": round(elapsed, 1),
                           "cpu_seconds": round(cpu, 1)})
             print(f"step {step:5d} loss {loss.item():.4f} lr {lr:.5f} {elapsed:.0f}s cpu {cpu:.0f}s", flush=True)
     t_train, cpu_train = time.time() - t1, time.process_time() - c1
-    settings = {"name": name, "preset": asdict(p), "steps_done": steps_done, "mean": MEAN, "std": STD,
-                "max_tokens": MAX_TOKENS, "pad_id": PAD_ID, "dim": DIM, "vocab": tokenizer.get_vocab_size()}
-    torch.save({"image": image_enc.state_dict(), "text": text_enc.state_dict(), "settings": settings}, out / "model.pt")
+    settings = save(out, name, image_enc, text_enc, p, steps_done, tokenizer)
     info = {
         **settings,
         "loss": "VSE++ bidirectional hinge, margin %.2f: sum over negatives up to %d%% of the run, then hardest negative%s"
-        % (p.margin, round(100 * p.sum_until), "; plus one one-fact-changed caption per image as a negative" if p.contrast_negatives else ""),
+        % (p.margin, round(100 * p.sum_until), "; plus its own hinge for one one-fact-changed caption per image (contrast_negatives); random flips of every image; auxiliary place losses on image embeddings (weight %s) and caption embeddings (weight %s), training only" % (p.place_weight, p.text_place_weight) if p.contrast_negatives else ""),
         "optimizer": f"AdamW lr {p.lr} weight decay {p.weight_decay}, schedule {p.schedule}, grad clip 2.0",
         "seconds_data": round(t_data, 1),
         "seconds_train": round(t_train, 1),

@@ -133,6 +133,30 @@ class Scene:
         }
 
 
+def mirrored(scene: Scene, horizontal: bool, vertical: bool) -> Scene:
+    """The scene seen in a mirror (left-right and/or top-bottom), facts and all.
+
+    Used for training only: the picture of a mirrored scene is the flipped
+    picture of the original (a flipped triangle points down, which no rendered
+    scene does, so the picture is flipped rather than re-rendered).
+    """
+    if not (horizontal or vertical):
+        return scene
+    swap = {}
+    if horizontal:
+        swap |= {"left of": "right of", "right of": "left of"}
+    if vertical:
+        swap |= {"above": "below", "below": "above"}
+    pieces = tuple(
+        Piece(p.colour, p.shape, p.size, 1 - p.x if horizontal else p.x, 1 - p.y if vertical else p.y, p.radius, p.angle)
+        for p in scene.pieces
+    )
+    relation = scene.relation
+    if relation is not None:
+        relation = Relation(relation.subject, swap.get(relation.relation, relation.relation), relation.object)
+    return Scene(pieces, relation, scene.table_rgb, scene.texture_seed, scene.seed, scene.index)
+
+
 def to_pixels(x: float, y: float, radius: float, width: int, height: int) -> tuple[float, float, float]:
     """Scene-square fractions to pixels of a width x height image."""
     side = min(width, height)
