@@ -1,6 +1,7 @@
 """Held-out metrics of a bundle on the probe set (numpy + onnxruntime, no torch).
 
     python tools/blocksworld/evaluate.py fixtures/models/blocks-v1
+    python tools/blocksworld/evaluate.py --table fixtures/models/blocks-v*   # cards as Markdown
 
 Retrieval is over the probe's 1,000 images and their 5,000 captions. Different
 scenes can share a caption text word for word (two single large red circles),
@@ -160,13 +161,40 @@ def evaluate_bundle(folder: Path, probe: Path) -> dict:
     return probe_metrics(rows, images, dict(zip(texts, vecs)))
 
 
+def markdown_table(bundles: list[Path]) -> str:
+    """The held-out metrics of bundles' card.json files as one Markdown table."""
+    cards = [json.loads((b / "card.json").read_text()) for b in bundles]
+    head = "| metric | " + " | ".join(c["bundle"] for c in cards) + " |"
+    lines = [head, "|---" * (len(cards) + 1) + "|"]
+
+    def add(label, get):
+        lines.append(f"| {label} | " + " | ".join(get(c["held_out"]) for c in cards) + " |")
+
+    for direction, label in (("image_to_text", "image -> text"), ("text_to_image", "text -> image")):
+        for k in KS:
+            add(f"{label} R@{k}", lambda h, d=direction, k=k: f"{h[d][f'R@{k}']:.3f}")
+    add("mean cosine, true caption", lambda h: f"{h['contrast']['mean_cosine_true']:.3f}")
+    add("mean cosine, contrast caption", lambda h: f"{h['contrast']['mean_cosine_contrast']:.3f}")
+    add("true beats contrast, all", lambda h: f"{h['contrast']['true_beats_contrast']:.3f}")
+    for change in ("colour", "shape", "size", "relation", "count"):
+        add(f"true beats contrast, {change}", lambda h, c=change: f"{h['contrast']['true_beats_contrast_by_change'][c]:.3f}")
+    lines.append("| training steps | " + " | ".join(str(c["training"].get("steps_done", "")) for c in cards) + " |")
+    lines.append("| training wall clock, s | " + " | ".join(str(c["wall_clock_seconds"]["training"]) for c in cards) + " |")
+    return "\n".join(lines)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("bundle", type=Path)
+    ap.add_argument("bundles", type=Path, nargs="+")
     ap.add_argument("--probe", type=Path, default=Path("fixtures/probe/probe.jsonl"))
+    ap.add_argument("--table", action="store_true", help="print the cards' metrics as Markdown instead")
     args = ap.parse_args()
-    json.dump(evaluate_bundle(args.bundle, args.probe), sys.stdout, indent=2)
-    print()
+    if args.table:
+        print(markdown_table(args.bundles))
+        return
+    for bundle in args.bundles:
+        json.dump(evaluate_bundle(bundle, args.probe), sys.stdout, indent=2)
+        print()
 
 
 if __name__ == "__main__":

@@ -112,8 +112,8 @@ class Preset:
 
 
 PRESETS = {
-    "blocks-v1": Preset(seed=1, width=24, text_hidden=128, embed=64, steps=3000, minutes=9.0, wall_minutes=11.0,
-                        sum_until=0.25, batch=128, lr=2e-3, weight_decay=1e-4, pool=20000, schedule="cosine"),
+    "blocks-v1": Preset(seed=1, width=32, text_hidden=128, embed=64, steps=3000, minutes=9.0, wall_minutes=11.0,
+                        sum_until=0.2, batch=112, lr=3e-3, weight_decay=1e-4, pool=20000, schedule="cosine"),
     "blocks-v2": Preset(seed=2, width=32, text_hidden=160, embed=96, steps=3000, minutes=9.0, wall_minutes=11.0,
                         sum_until=0.15, batch=112, lr=3e-3, weight_decay=5e-5, pool=20000, schedule="onecycle"),
 }
