@@ -49,8 +49,17 @@ lint:
 	cargo fmt --check
 	cargo clippy --locked --all-targets -- -D warnings
 
+# The statistics cross-check reads exports from target/stats-export/: synthetic ones written by
+# `cargo test`, and these two, made by the real CLI on the bundled probe set.
+STATS_EXPORT := target/stats-export
+PROBE := fixtures/probe/probe.jsonl
+
 test: $(ORT_LIB) $(VENV)/.ready lint
 	cargo test --locked
+	target/debug/befit calibrate --bundle fixtures/models/blocks-v1 --probe $(PROBE) \
+		--export $(STATS_EXPORT)/calibration-blocks-v1.json > /dev/null
+	target/debug/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
+		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client
 
