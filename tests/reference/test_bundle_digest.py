@@ -32,4 +32,5 @@ def test_digest_matches_hashlib(bundle, befit_bin, ort_lib):
 
 
 def test_every_bundle_is_checked():
-    assert len(BUNDLES) >= 3, [b.name for b in BUNDLES]
+    # A glob that found nothing would make the parametrised test above vacuous.
+    assert {"blocks-v1", "blocks-v2"} <= {b.name for b in BUNDLES}, [b.name for b in BUNDLES]
