@@ -25,20 +25,28 @@ fn rows(vectors: Vec<Vec<f32>>, dimension: usize) -> Result<Array2<f32>, EmbedEr
         .map_err(|e| EmbedError(format!("vector shape: {e}")))
 }
 
+/// Caption vectors of `model` as rows, blocking on `runtime`.
+fn caption_rows(
+    model: &Model,
+    runtime: &tokio::runtime::Handle,
+    texts: &[String],
+) -> Result<Array2<f32>, EmbedError> {
+    let vectors = runtime
+        .block_on(model.caption_vectors(texts))
+        .map_err(|e| EmbedError(e.to_string()))?;
+    rows(
+        vectors.iter().map(|v| v.vector.clone()).collect(),
+        model.dimension(),
+    )
+}
+
 impl Embedder for ModelEmbedder {
     fn dimension(&self) -> usize {
         self.model.dimension()
     }
 
     fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError> {
-        let vectors = self
-            .runtime
-            .block_on(self.model.caption_vectors(texts))
-            .map_err(|e| EmbedError(e.to_string()))?;
-        rows(
-            vectors.iter().map(|v| v.vector.clone()).collect(),
-            self.dimension(),
-        )
+        caption_rows(&self.model, &self.runtime, texts)
     }
 
     fn embed_image_files(&self, paths: &[PathBuf]) -> Result<Array2<f32>, EmbedError> {
@@ -100,13 +108,6 @@ impl crate::probe::ProbeEncoder for EngineProbeEncoder {
     }
 
     fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError> {
-        let vectors = self
-            .runtime
-            .block_on(self.model.caption_vectors(texts))
-            .map_err(|e| EmbedError(e.to_string()))?;
-        rows(
-            vectors.iter().map(|v| v.vector.clone()).collect(),
-            self.dimension(),
-        )
+        caption_rows(&self.model, &self.runtime, texts)
     }
 }
