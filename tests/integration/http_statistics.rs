@@ -15,7 +15,9 @@ fn probe_json(n: usize) -> Vec<Value> {
 
 #[tokio::test(flavor = "multi_thread")]
 async fn a_bundle_against_itself_has_not_drifted() {
-    let state = state_with(&["blocks-v1"], befit::server::Limits::default());
+    // With the caption cache on, both sides get the very same vectors; without it, other tests'
+    // captions sharing encoder batches could move a cosine by float rounding and break ties.
+    let state = state_with(&["blocks-v1+cache"], befit::server::Limits::default());
     let body = json!({"from": "blocks@v1", "to": "blocks@v1", "probe": probe_json(120)});
     let (status, r) = post_json(&state, "/v1/drift", &body).await;
     assert_eq!(status, 200, "{r}");

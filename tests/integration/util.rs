@@ -57,6 +57,8 @@ pub fn ort_env() -> &'static ort::environment::Environment {
 }
 
 /// One loaded model per bundle and settings, shared by the tests of this binary.
+/// The caption cache is off so that every request encodes; `NAME+cache` loads
+/// the bundle NAME with the server's default caption cache instead.
 pub fn model(name: &str) -> Arc<Model> {
     type Loaded = std::sync::Mutex<Vec<(String, Arc<Model>)>>;
     static MODELS: OnceLock<Loaded> = OnceLock::new();
@@ -66,11 +68,15 @@ pub fn model(name: &str) -> Arc<Model> {
     if let Some((_, m)) = cache.iter().find(|(n, _)| n == name) {
         return Arc::clone(m);
     }
-    let bundle = Bundle::open(&bundle_dir(name)).unwrap_or_else(|e| panic!("{e}"));
+    let (dir, cached) = name
+        .split_once('+')
+        .map_or((name, false), |(dir, _)| (dir, true));
+    let bundle = Bundle::open(&bundle_dir(dir)).unwrap_or_else(|e| panic!("{e}"));
+    let defaults = ModelSettings::default();
     let settings = ModelSettings {
         workers: 2,
-        caption_cache: 0,
-        ..ModelSettings::default()
+        caption_cache: if cached { defaults.caption_cache } else { 0 },
+        ..defaults
     };
     let m =
         Arc::new(Model::load(bundle, ort_env(), &settings, Arc::new(Registry::default())).unwrap());
