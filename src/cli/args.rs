@@ -191,6 +191,23 @@ pub struct ServeArgs {
     pub maps: Vec<String>,
 }
 
+/// What a probe-set command does with bad rows and where its figures go.
+#[derive(Debug, Args)]
+pub struct ProbeOutputArgs {
+    /// Go on without rows that cannot be read or embedded (they are listed as warnings).
+    #[arg(long)]
+    pub skip_bad: bool,
+    /// Print every figure as JSON.
+    #[arg(long)]
+    pub json: bool,
+    /// Write a self-contained HTML report.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Write the vectors and figures for the reference cross-check.
+    #[arg(long, value_name = "FILE")]
+    pub export: Option<PathBuf>,
+}
+
 #[derive(Debug, Args)]
 pub struct CalibrateArgs {
     /// Model bundle folder.
@@ -205,18 +222,8 @@ pub struct CalibrateArgs {
     /// Images per batch for the batch-averaged hinge losses.
     #[arg(long, default_value_t = crate::stats::hinge::DEFAULT_BATCH_IMAGES)]
     pub batch_images: usize,
-    /// Go on without rows that cannot be read or embedded (they are listed as warnings).
-    #[arg(long)]
-    pub skip_bad: bool,
-    /// Print every figure as JSON.
-    #[arg(long)]
-    pub json: bool,
-    /// Write a self-contained HTML report.
-    #[arg(long, value_name = "FILE")]
-    pub report: Option<PathBuf>,
-    /// Write the vectors and figures for the reference cross-check.
-    #[arg(long, value_name = "FILE")]
-    pub export: Option<PathBuf>,
+    #[command(flatten)]
+    pub output: ProbeOutputArgs,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
     #[command(flatten)]
@@ -243,18 +250,8 @@ pub struct DriftArgs {
     /// Pairs listed as moved most.
     #[arg(long, default_value_t = crate::stats::drift::DEFAULT_MOVED_PAIRS)]
     pub moved: usize,
-    /// Go on without rows that cannot be read or embedded.
-    #[arg(long)]
-    pub skip_bad: bool,
-    /// Print every figure as JSON.
-    #[arg(long)]
-    pub json: bool,
-    /// Write a self-contained HTML report.
-    #[arg(long, value_name = "FILE")]
-    pub report: Option<PathBuf>,
-    /// Write the vectors and figures for the reference cross-check.
-    #[arg(long, value_name = "FILE")]
-    pub export: Option<PathBuf>,
+    #[command(flatten)]
+    pub output: ProbeOutputArgs,
     /// Write the fitted new-to-old reward map (monotone unless --affine-map) for `serve --map`.
     #[arg(long, value_name = "FILE")]
     pub save_map: Option<PathBuf>,

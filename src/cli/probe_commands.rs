@@ -110,18 +110,18 @@ pub fn calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
         ..CalibrationOptions::default()
     };
     options.validate()?;
-    let set = load_probe(&a.probe, a.skip_bad)?;
+    let set = load_probe(&a.probe, a.output.skip_bad)?;
     let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
-    let vectors = embed(&model, &set, a.skip_bad)?;
+    let vectors = embed(&model, &set, a.output.skip_bad)?;
     let report = stats::calibrate(&vectors, &options)?;
-    if let Some(path) = &a.report {
+    if let Some(path) = &a.output.report {
         write_text(path, &stats::calibration_html(&report))?;
         eprintln!("befit: report written to {}", path.display());
     }
-    if let Some(path) = &a.export {
+    if let Some(path) = &a.output.export {
         stats::write_json(path, &stats::calibration_export(&vectors, &options)?)?;
     }
-    if a.json {
+    if a.output.json {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {
         print!("{}", summary_of_calibration(&report)?);
@@ -141,20 +141,20 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
         ..DriftOptions::default()
     };
     options.validate()?;
-    let set = load_probe(&a.probe, a.skip_bad)?;
+    let set = load_probe(&a.probe, a.output.skip_bad)?;
     let (from, to) = {
         let old = OfflineModel::open(&a.from, &a.runtime, &a.encoders)?;
-        let from = embed(&old, &set, a.skip_bad)?;
+        let from = embed(&old, &set, a.output.skip_bad)?;
         drop(old);
         let new = OfflineModel::open(&a.to, &a.runtime, &a.encoders)?;
-        (from, embed(&new, &set, a.skip_bad)?)
+        (from, embed(&new, &set, a.output.skip_bad)?)
     };
     let report = stats::drift(&from, &to, &options)?;
-    if let Some(path) = &a.report {
+    if let Some(path) = &a.output.report {
         write_text(path, &stats::drift_html(&report))?;
         eprintln!("befit: report written to {}", path.display());
     }
-    if let Some(path) = &a.export {
+    if let Some(path) = &a.output.export {
         stats::write_json(path, &stats::drift_export(&from, &to, &options)?)?;
     }
     if let Some(path) = &a.save_map {
@@ -170,7 +170,7 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
             path.display()
         );
     }
-    if a.json {
+    if a.output.json {
         println!("{}", serde_json::to_string_pretty(&report)?);
     } else {
         print!("{}", summary_of_drift(&report)?);
@@ -181,33 +181,100 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
 /// A few headline lines for a terminal; `--json` has everything.
 fn summary_of_calibration(report: &stats::CalibrationReport) -> anyhow::Result<String> {
     let v = serde_json::to_value(report)?;
-    Ok(format!("{}\n", headline(&v, "calibration")))
+    let mut out = format!(
+        "calibration of {} on {} images\n",
+        text(&v, "/bundle"),
+        num(&v, "/counts/images")
+    );
+    out += &retrieval_lines(&v, "");
+    out += &format!(
+        "  hinge (margin {}): sum {:.4}, max {:.4} over the whole set; margin violated by {:.1}% of positives\n",
+        num(&v, "/hinge/margin"),
+        num(&v, "/hinge/whole_set/sum_of_hinges"),
+        num(&v, "/hinge/whole_set/max_of_hinges"),
+        100.0 * num(&v, "/hinge/whole_set/violation_rate"),
+    );
+    out += &format!(
+        "  cosine: true pairs mean {:.4}, hardest negatives mean {:.4}\n",
+        num(&v, "/cosines/true_pairs/mean"),
+        num(&v, "/cosines/hardest_negatives/mean"),
+    );
+    out += &format!(
+        "  true beats contrast: {:.4}\n",
+        num(&v, "/contrast/overall/rate")
+    );
+    out += &format!(
+        "  suggested: affine {:.4} * c + {:.4}; CLIP-S weight {:.4}\n",
+        num(&v, "/suggested/affine/a"),
+        num(&v, "/suggested/affine/b"),
+        num(&v, "/suggested/clip_s_weight"),
+    );
+    out += "  (--json prints every figure; --report FILE writes the HTML report)\n";
+    Ok(out)
 }
 
 fn summary_of_drift(report: &stats::DriftReport) -> anyhow::Result<String> {
     let v = serde_json::to_value(report)?;
-    Ok(format!("{}\n", headline(&v, "drift")))
+    let mut out = format!(
+        "drift from {} to {}\n",
+        text(&v, "/from_bundle"),
+        text(&v, "/to_bundle")
+    );
+    out += &format!(
+        "  rank agreement of {} pairs: Spearman {:.4}, Kendall tau-b {:.4}\n",
+        num(&v, "/agreement/all_pairs/pairs"),
+        num(&v, "/agreement/all_pairs/spearman_rho"),
+        num(&v, "/agreement/all_pairs/kendall_tau_b"),
+    );
+    out += &format!(
+        "  KS D of true-pair cosines: {:.4}\n",
+        num(&v, "/true_cosine_ks/statistic")
+    );
+    out += &format!(
+        "  linear CKA: images {:.4}, texts {:.4}; neighbour overlap@{}: {:.4}\n",
+        num(&v, "/cka/images"),
+        num(&v, "/cka/texts"),
+        num(&v, "/neighbour_overlap/k"),
+        num(&v, "/neighbour_overlap/mean_jaccard"),
+    );
+    out += &format!(
+        "  new-to-old map: affine {:.4} * c + {:.4} (RMSE {:.4}); monotone RMSE {:.4}\n",
+        num(&v, "/continuity/affine/map/a"),
+        num(&v, "/continuity/affine/map/b"),
+        num(&v, "/continuity/affine/rmse"),
+        num(&v, "/continuity/monotone/rmse"),
+    );
+    out += "  old:\n";
+    out += &retrieval_lines(&v, "/from");
+    out += "  new:\n";
+    out += &retrieval_lines(&v, "/to");
+    out += "  (--json prints every figure; --report FILE writes the HTML report)\n";
+    Ok(out)
 }
 
-/// Numbers at the top level and one level down, flattened as `a.b = x`.
-fn headline(v: &serde_json::Value, title: &str) -> String {
-    let mut lines = vec![title.to_string()];
-    if let Some(map) = v.as_object() {
-        for (k, value) in map {
-            match value {
-                serde_json::Value::Number(n) => lines.push(format!("  {k} = {n}")),
-                serde_json::Value::String(s) => lines.push(format!("  {k} = {s}")),
-                serde_json::Value::Object(inner) => {
-                    for (k2, v2) in inner {
-                        if let serde_json::Value::Number(n) = v2 {
-                            lines.push(format!("  {k}.{k2} = {n}"));
-                        }
-                    }
-                }
-                _ => {}
-            }
-        }
-    }
-    lines.push("  (--json prints every figure; --report FILE writes the HTML report)".into());
-    lines.join("\n")
+fn retrieval_lines(v: &serde_json::Value, at: &str) -> String {
+    let r = |dir: &str, k: &str| num(v, &format!("{at}/retrieval/{dir}/{k}"));
+    format!(
+        "  image->text R@1/5/10 {:.1} / {:.1} / {:.1}; text->image {:.1} / {:.1} / {:.1} (percent)\n",
+        r("image_to_text", "r_at_1"),
+        r("image_to_text", "r_at_5"),
+        r("image_to_text", "r_at_10"),
+        r("text_to_image", "r_at_1"),
+        r("text_to_image", "r_at_5"),
+        r("text_to_image", "r_at_10"),
+    )
+}
+
+/// A number of the report (NaN when absent, e.g. CKA undefined).
+fn num(v: &serde_json::Value, pointer: &str) -> f64 {
+    v.pointer(pointer)
+        .and_then(serde_json::Value::as_f64)
+        .unwrap_or(f64::NAN)
+}
+
+fn text(v: &serde_json::Value, pointer: &str) -> String {
+    v.pointer(pointer)
+        .and_then(serde_json::Value::as_str)
+        .unwrap_or("?")
+        .to_string()
 }

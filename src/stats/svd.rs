@@ -122,18 +122,18 @@ fn rotate_rows(a: &mut [f64], n: usize, p: usize, q: usize, c: f64, s: f64) {
 }
 
 /// Fills the columns `missing` of `u` (all others orthonormal) so that `u` is
-/// orthogonal: Gram-Schmidt, done twice for accuracy, of the first standard
-/// basis vectors that are not yet in the span.
+/// orthogonal: for each, the standard basis vector farthest from the span so
+/// far, orthogonalised by Gram-Schmidt (done twice for accuracy). While the
+/// span has dimension m < n, the farthest basis vector is at least
+/// sqrt((n - m) / n) >= 1 / sqrt(n) away from it, so a column is always found.
 fn complete_orthonormal(u: &mut Array2<f64>, missing: &[usize]) {
     let n = u.nrows();
     let mut filled: Vec<usize> = (0..n).filter(|c| !missing.contains(c)).collect();
-    let mut candidate = 0;
     for &col in missing {
-        loop {
-            assert!(candidate < n, "no basis vector left to complete U");
+        let mut best: Option<(f64, Vec<f64>)> = None;
+        for candidate in 0..n {
             let mut x = vec![0.0; n];
             x[candidate] = 1.0;
-            candidate += 1;
             for _ in 0..2 {
                 for &f in &filled {
                     let dot: f64 = (0..n).map(|k| u[[k, f]] * x[k]).sum();
@@ -143,15 +143,15 @@ fn complete_orthonormal(u: &mut Array2<f64>, missing: &[usize]) {
                 }
             }
             let norm = x.iter().map(|v| v * v).sum::<f64>().sqrt();
-            // A basis vector mostly outside the span so far; at least one of
-            // any n is, since the span has dimension < n.
-            if norm > 0.5 {
-                for (k, xk) in x.iter().enumerate() {
-                    u[[k, col]] = xk / norm;
-                }
-                filled.push(col);
-                break;
+            if best.as_ref().is_none_or(|(b, _)| norm > *b) {
+                best = Some((norm, x));
             }
+        }
+        if let Some((norm, x)) = best.filter(|(norm, _)| *norm > 0.0) {
+            for (k, xk) in x.iter().enumerate() {
+                u[[k, col]] = xk / norm;
+            }
+            filled.push(col);
         }
     }
 }
@@ -167,6 +167,21 @@ mod tests {
             .mapv(f64::abs)
             .fold(0.0f64, |a, &b| a.max(b));
         assert!(err < 1e-12, "not orthogonal: {err}");
+    }
+
+    #[test]
+    fn rank_deficient_matrices_still_give_an_orthogonal_u() {
+        // A^T B of 20 rows in 64 dimensions has rank <= 20: 44 columns of U must be completed.
+        let a = Array2::from_shape_fn((20, 64), |(i, j)| ((i * 7 + j * 3) % 11) as f64 - 5.0);
+        let b = Array2::from_shape_fn((20, 64), |(i, j)| ((i * 5 + j * 2) % 13) as f64 - 6.0);
+        let svd = svd_square(&a.t().dot(&b));
+        assert_orthogonal(&svd.u);
+        assert_orthogonal(&svd.vt);
+        let back = reconstruct(&svd);
+        let err = (back - a.t().dot(&b))
+            .mapv(f64::abs)
+            .fold(0.0f64, |x, &y| x.max(y));
+        assert!(err < 1e-8, "reconstruction error {err}");
     }
 
     fn reconstruct(svd: &Svd) -> Array2<f64> {
