@@ -15,6 +15,7 @@ after L2 normalisation). Exits non-zero on the first bundle that fails.
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import json
 import sys
 from pathlib import Path
@@ -35,11 +36,7 @@ def unit(v: np.ndarray) -> np.ndarray:
 
 
 def tokenizers_available() -> bool:
-    try:
-        import tokenizers  # noqa: F401
-    except ImportError:
-        return False
-    return True
+    return importlib.util.find_spec("tokenizers") is not None
 
 
 def check(golden_dir: Path, models: Path) -> list[str]:

@@ -24,7 +24,6 @@ from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import torch
 from tokenizers import Tokenizer
 

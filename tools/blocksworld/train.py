@@ -13,34 +13,31 @@ text side never repeats exactly.
 Loss (Faghri et al. 2018, VSE++): for a batch of matching image/caption pairs
 with cosine matrix S, each image's hinge against every other caption,
 `max(0, margin + S[i, j] - S[i, i])`, and each caption's against every other
-image. Up to `sum_until` of the run the hinges are summed over negatives (warm-up:
-all negatives give gradient while the space forms), the rest take the largest
-(hardest in-batch negative). Pairs whose scenes have the same facts are not
-negatives: their captions are true of each other. With `contrast_negatives`,
-each image also meets one caption made from its own true caption by changing
-one fact (captions.contrast), as its own hinge term next to the in-batch
-ones (inside the max it would rarely be the hardest early on and give no
-gradient). In-batch negatives almost never differ from the truth by a single
-relation word or shape, so without these left and right are barely learned;
-the changed fact is drawn with weights CHANGE_WEIGHTS for the same reason.
-Every training image is flipped left-right and top-bottom at random (facts
-and captions following), which doubles the placements seen.
+image. Up to `sum_until` of the run the hinges are summed over negatives
+(warm-up: all negatives give gradient while the space forms), then only the
+largest counts (hardest in-batch negative). Pairs whose scenes have the same
+facts are not negatives: their captions are true of each other.
 
-Captions alone do not teach relations, though: the symmetric point (no
-position in any vector, "left of" and "right of" embedded alike) is a saddle
-that ranking losses leave very slowly, because each push towards "left" from
-one image is undone by the mirror-placed twin of another (measured: after
-2,000 steps relation contrasts were still at chance). `place_weight` adds an
-auxiliary loss that breaks it from the image side: a linear head
-(encoders.PlaceHead, training only, not exported) must read from the image
-embedding where each colour and each shape is (presence, centre when present,
-and whether that piece is large). The same head also reads
-caption vectors (`text_place_weight`): an inventory caption must show the
-colours and shapes it lists as present, every mentioned piece its size, and a
-relation caption "A left of B"
-must put A's colour and shape left of B's by at least 0.2 of the side. The
-head is shared, so both towers write places into the same directions of the
-shared space, and cosine then rewards agreeing places.
+Additions, each because the plain loss did not learn something in budget:
+- `contrast_negatives`: each image also meets one caption made from its own
+  true caption by changing one fact (captions.contrast), in its own hinge
+  term (inside the max it would rarely be the hardest early on and give no
+  gradient). In-batch negatives almost never differ from the truth by one
+  relation word or shape; the changed fact is drawn by CHANGE_WEIGHTS.
+- Every training image is flipped left-right and top-bottom at random, its
+  facts and captions following.
+- `place_weight`, `text_place_weight`: the symmetric point (no position in
+  any vector, "left of" and "right of" embedded alike) is a saddle that
+  ranking losses leave very slowly, because each push towards "left" from one
+  image is undone by the mirror-placed twin of another (measured: after 2,000
+  steps relation contrasts were still at chance, with cosine 0.998 between
+  the two captions). A linear head (encoders.PlaceHead, training only, not
+  exported) must read from image vectors which colours and shapes are there,
+  where and whether large; and from caption vectors the colours and shapes an
+  inventory caption lists, the sizes it states, and for "A left of B" A's
+  colour and shape left of B's by at least 0.2 of the side. The head is
+  shared, so both towers write places into the same directions of the shared
+  space, and cosine then rewards agreeing places.
 
 The run ends at whichever budget runs out first: a step cap (`steps`), a
 compute budget of `minutes` on 2 cores (process CPU time, 2 x minutes), and a
@@ -112,8 +109,8 @@ class Preset:
 
 
 PRESETS = {
-    "blocks-v1": Preset(seed=1, width=32, text_hidden=128, embed=64, steps=3000, minutes=9.0, wall_minutes=11.0,
-                        sum_until=0.2, batch=112, lr=3e-3, weight_decay=1e-4, pool=20000, schedule="cosine"),
+    "blocks-v1": Preset(seed=1, width=24, text_hidden=128, embed=64, steps=3000, minutes=9.0, wall_minutes=11.0,
+                        sum_until=0.15, batch=128, lr=3e-3, weight_decay=1e-4, pool=20000, schedule="onecycle"),
     "blocks-v2": Preset(seed=2, width=32, text_hidden=160, embed=96, steps=3000, minutes=9.0, wall_minutes=11.0,
                         sum_until=0.15, batch=112, lr=3e-3, weight_decay=5e-5, pool=20000, schedule="onecycle"),
 }
