@@ -21,7 +21,10 @@
 //! - [`probe`]: labelled probe sets (JSON Lines) for calibration and drift.
 //! - [`stats`]: calibration and drift statistics, and their HTML report.
 //! - [`metrics`]: Prometheus counters, gauges and histograms every stage reports to.
-//! - [`server`]: the HTTP service: routes, errors, limits, metrics.
+//! - [`service`]: the service as a library: data folder and its lock, start-up,
+//!   reward maps, background dumps; what the server and the tests build on.
+//! - [`server`]: the HTTP layer: routes that parse, check, call the domain and
+//!   shape the answer; the one error table.
 
 pub mod bank;
 pub mod batching;
@@ -34,6 +37,7 @@ pub mod probe;
 pub mod runtime;
 pub mod scoring;
 pub mod server;
+pub mod service;
 pub mod stats;
 pub mod store;
 pub mod vectors;

@@ -8,7 +8,7 @@ use clap::{Args, Parser, Subcommand};
 
 use crate::batching::{DEFAULT_MAX_BATCH, DEFAULT_MAX_WAIT_MICROS, DEFAULT_QUEUE_DEPTH};
 use crate::intake::image_decode::DEFAULT_MAX_PIXELS;
-use crate::server::limits::*;
+use crate::intake::limits::*;
 use crate::store::memory::{DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
 
 /// How well does a caption fit an image? Rewards for training loops.

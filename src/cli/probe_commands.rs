@@ -11,7 +11,8 @@ use indicatif::{ProgressBar, ProgressStyle};
 
 use super::args::{CalibrateArgs, DriftArgs, EncoderArgs, RuntimeArgs};
 use super::ort_environment;
-use super::serve::{load_models, model_settings};
+use super::serve::model_settings;
+use crate::encoders::load_bundles;
 use crate::encoders::offline::ModelEmbedder;
 use crate::encoders::Model;
 use crate::metrics::Registry;
@@ -33,7 +34,7 @@ impl OfflineModel {
     ) -> anyhow::Result<OfflineModel> {
         let env = ort_environment(runtime_args.ort_lib.clone())?;
         let settings = model_settings(encoders)?;
-        let model = load_models(&[dir], env, &settings, &Arc::new(Registry::default()))?.remove(0);
+        let model = load_bundles(&[dir], env, &settings, &Arc::new(Registry::default()))?.remove(0);
         let runtime = tokio::runtime::Builder::new_multi_thread()
             .enable_all()
             .build()

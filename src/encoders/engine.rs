@@ -7,20 +7,11 @@ use std::sync::Arc;
 use super::model::{EncodeError, Model};
 use crate::intake::image_decode::{decode_rgb, DecodeError};
 use crate::intake::image_root::{ImageRoot, PathError};
-use crate::intake::image_tensor::to_tensor;
+pub use crate::intake::image_source::ImageSource;
+use crate::intake::image_tensor::tensor_from_bytes;
 use crate::metrics::Registry;
-use crate::store::images::{content_id, is_content_id, ImageStore, StoreError};
-
-/// An image as a request names it.
-#[derive(Debug, Clone)]
-pub enum ImageSource {
-    /// Content id of a registered image.
-    Id(String),
-    /// The file's bytes.
-    Bytes(Arc<Vec<u8>>),
-    /// A path under the image root.
-    Path(String),
-}
+use crate::store::image_index::{ImageHit, ImageIndex};
+use crate::store::images::{content_id, ImageStore, StoreError};
 
 /// What registering an image found.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -38,8 +29,6 @@ pub enum EngineError {
     UnknownModel { asked: String, loaded: Vec<String> },
     #[error("unknown image id {0}; register it first with POST /v1/images")]
     UnknownImage(String),
-    #[error("{0:?} is not an image id (64 lower-case hex digits)")]
-    BadImageId(String),
     #[error("{0}")]
     Decode(#[from] DecodeError),
     #[error("{0}")]
@@ -59,6 +48,14 @@ pub struct Engine {
     root: Option<ImageRoot>,
     max_pixels: u64,
     metrics: Arc<Registry>,
+    image_index: ImageIndex,
+}
+
+/// An image source resolved to its content id, with its bytes when the
+/// request carried them (an id-named image's bytes stay in the store until needed).
+struct Resolved {
+    id: String,
+    bytes: Option<Arc<Vec<u8>>>,
 }
 
 /// Runs blocking work (SQLite, decoding) off the async runtime's threads.
@@ -86,6 +83,7 @@ impl Engine {
             root,
             max_pixels,
             metrics,
+            image_index: ImageIndex::default(),
         }
     }
 
@@ -124,22 +122,43 @@ impl Engine {
         }
     }
 
-    async fn bytes_of(&self, source: &ImageSource) -> Result<Arc<Vec<u8>>, EngineError> {
+    /// Checks, without reading, that `source` could be read: a path needs an
+    /// image root and must stay inside it. Lets a caller refuse a whole
+    /// request before any encoder work.
+    pub fn check_source(&self, source: &ImageSource) -> Result<(), EngineError> {
+        if let ImageSource::Path(path) = source {
+            let root = self.root.as_ref().ok_or(PathError::NoRoot)?;
+            root.resolve(path)?;
+        }
+        Ok(())
+    }
+
+    /// The content id of `source`, computed once, with the bytes read on the way.
+    async fn resolve(&self, source: &ImageSource) -> Result<Resolved, EngineError> {
         match source {
-            ImageSource::Bytes(bytes) => Ok(Arc::clone(bytes)),
+            ImageSource::Id(id) => Ok(Resolved {
+                id: id.clone(),
+                bytes: None,
+            }),
+            ImageSource::Bytes(bytes) => {
+                let bytes = Arc::clone(bytes);
+                blocking(move || Resolved {
+                    id: content_id(&bytes),
+                    bytes: Some(bytes),
+                })
+                .await
+            }
             ImageSource::Path(path) => {
                 let root = self.root.clone().ok_or(PathError::NoRoot)?;
                 let path = path.clone();
-                Ok(Arc::new(blocking(move || root.read(&path)).await??))
-            }
-            ImageSource::Id(id) => {
-                let (store, id) = (Arc::clone(&self.store), id.clone());
-                let found = blocking({
-                    let id = id.clone();
-                    move || store.image_bytes(&id)
+                blocking(move || -> Result<Resolved, EngineError> {
+                    let bytes = root.read(&path)?;
+                    Ok(Resolved {
+                        id: content_id(&bytes),
+                        bytes: Some(Arc::new(bytes)),
+                    })
                 })
-                .await??;
-                found.map(Arc::new).ok_or(EngineError::UnknownImage(id))
+                .await?
             }
         }
     }
@@ -150,75 +169,134 @@ impl Engine {
         source: ImageSource,
         model: Option<&Arc<Model>>,
     ) -> Result<Registered, EngineError> {
-        if let ImageSource::Id(id) = &source {
-            check_id(id)?;
+        let resolved = self.resolve(&source).await?;
+        if let (Some(model), None) = (model, &resolved.bytes) {
+            // Named by id: already stored; embed it under `model` if that is still to do.
+            self.image_vector_of(model, resolved.id.clone()).await?;
         }
-        let bytes = self.bytes_of(&source).await?;
-        let (store, max_pixels) = (Arc::clone(&self.store), self.max_pixels);
-        let tensor_spec = model.map(|m| m.bundle.manifest.image.clone());
-        let (registered, tensor) = blocking(move || -> Result<_, EngineError> {
-            let id = content_id(&bytes);
-            let rgb = decode_rgb(&bytes, max_pixels)?;
-            let (width, height) = rgb.dimensions();
-            let new = store.put_image(&id, &bytes, width, height)?;
-            let tensor = tensor_spec.map(|spec| to_tensor(&rgb, &spec));
-            Ok((
-                Registered {
-                    id,
+        match resolved.bytes {
+            None => {
+                let (store, id) = (Arc::clone(&self.store), resolved.id.clone());
+                let size = blocking(move || store.image_size(&id)).await??;
+                let (width, height) =
+                    size.ok_or_else(|| EngineError::UnknownImage(resolved.id.clone()))?;
+                Ok(Registered {
+                    id: resolved.id,
                     width,
                     height,
-                    new,
-                },
-                tensor,
-            ))
-        })
-        .await??;
-        if let (Some(model), Some(tensor)) = (model, tensor) {
-            self.embed_and_keep(model, &registered.id, tensor).await?;
+                    new: false,
+                })
+            }
+            Some(bytes) => {
+                let cached = match model {
+                    Some(m) => self.cached_vector(m, &resolved.id).await?.is_some(),
+                    None => true,
+                };
+                let embed_with = if cached { None } else { model };
+                let (registered, _) = self.ingest(embed_with, resolved.id, bytes, true).await?;
+                Ok(registered)
+            }
         }
-        Ok(registered)
     }
 
-    /// The content id and unit vector of an image under `model`, from the
-    /// memory cache, the store, or (last) the encoder.
+    /// The content id and unit vector of an image under `model`: the id is
+    /// computed once, then the memory cache, the store, and last the encoder
+    /// (which also registers the image).
     pub async fn image_vector(
         &self,
         model: &Arc<Model>,
         source: &ImageSource,
     ) -> Result<(String, Arc<Vec<f32>>), EngineError> {
-        let id = match source {
-            ImageSource::Id(id) => {
-                check_id(id)?;
-                id.clone()
-            }
-            ImageSource::Bytes(bytes) => {
-                let bytes = Arc::clone(bytes);
-                blocking(move || content_id(&bytes)).await?
-            }
-            ImageSource::Path(_) => {
-                let registered = self.register(source.clone(), Some(model)).await?;
-                let vector = self.cached_vector(model, &registered.id).await?;
-                return vector.map(|v| (registered.id.clone(), v)).ok_or_else(|| {
-                    EngineError::Task(format!(
-                        "image {} was embedded but its vector is gone",
-                        registered.id
-                    ))
-                });
-            }
-        };
-        if let Some(vector) = self.cached_vector(model, &id).await? {
-            return Ok((id, vector));
+        let resolved = self.resolve(source).await?;
+        if let Some(vector) = self.cached_vector(model, &resolved.id).await? {
+            return Ok((resolved.id, vector));
         }
-        // Not embedded under this model yet: (re)register from the bytes we have, which also embeds.
-        let source = match source {
-            ImageSource::Id(_) => ImageSource::Bytes(self.bytes_of(source).await?),
-            other => other.clone(),
+        let id = resolved.id.clone();
+        let vector = match resolved.bytes {
+            Some(bytes) => self.ingest(Some(model), resolved.id, bytes, true).await?.1,
+            None => self.image_vector_of(model, id.clone()).await?,
         };
-        let registered = self.register(source, Some(model)).await?;
-        let vector = self.cached_vector(model, &registered.id).await?;
-        vector
-            .map(|v| (registered.id.clone(), v))
-            .ok_or(EngineError::UnknownImage(registered.id))
+        let vector =
+            vector.ok_or_else(|| EngineError::Task(format!("image {id} was not embedded")))?;
+        Ok((id, vector))
+    }
+
+    /// The vector of a stored image, embedding it from the store's bytes when
+    /// `model` has not seen it.
+    async fn image_vector_of(
+        &self,
+        model: &Arc<Model>,
+        id: String,
+    ) -> Result<Option<Arc<Vec<f32>>>, EngineError> {
+        if let Some(vector) = self.cached_vector(model, &id).await? {
+            return Ok(Some(vector));
+        }
+        let (store, key) = (Arc::clone(&self.store), id.clone());
+        let bytes = blocking(move || store.image_bytes(&key))
+            .await??
+            .ok_or_else(|| EngineError::UnknownImage(id.clone()))?;
+        Ok(self
+            .ingest(Some(model), id, Arc::new(bytes), false)
+            .await?
+            .1)
+    }
+
+    /// Decodes once; keeps the bytes when they are new to the store
+    /// (`from_request`), and embeds and keeps the vector when `model` is given.
+    async fn ingest(
+        &self,
+        model: Option<&Arc<Model>>,
+        id: String,
+        bytes: Arc<Vec<u8>>,
+        from_request: bool,
+    ) -> Result<(Registered, Option<Arc<Vec<f32>>>), EngineError> {
+        let (store, max_pixels) = (Arc::clone(&self.store), self.max_pixels);
+        let spec = model.map(|m| m.bundle.manifest.image.clone());
+        let key = id.clone();
+        let (width, height, new, tensor) = blocking(move || -> Result<_, EngineError> {
+            let (width, height, tensor) = match &spec {
+                Some(spec) => {
+                    let t = tensor_from_bytes(&bytes, max_pixels, spec)?;
+                    (t.width, t.height, Some(t.values))
+                }
+                None => {
+                    let (w, h) = decode_rgb(&bytes, max_pixels)?.dimensions();
+                    (w, h, None)
+                }
+            };
+            let new = from_request && store.put_image(&key, &bytes, width, height)?;
+            Ok((width, height, new, tensor))
+        })
+        .await??;
+        let vector = match (model, tensor) {
+            (Some(model), Some(tensor)) => Some(self.embed_and_keep(model, &id, tensor).await?),
+            _ => None,
+        };
+        let registered = Registered {
+            id,
+            width,
+            height,
+            new,
+        };
+        Ok((registered, vector))
+    }
+
+    /// The `k` registered images nearest `query` under `model`, best first.
+    pub async fn nearest_images(
+        self: &Arc<Self>,
+        model: &Arc<Model>,
+        query: Vec<f32>,
+        k: usize,
+    ) -> Result<Vec<ImageHit>, EngineError> {
+        let engine = Arc::clone(self);
+        let digest = model.bundle.digest.clone();
+        blocking(move || {
+            engine
+                .image_index
+                .nearest(&engine.store, &digest, &query, k)
+        })
+        .await?
+        .map_err(EngineError::from)
     }
 
     async fn cached_vector(
@@ -279,13 +357,5 @@ impl Engine {
         let vector = Arc::new(vector);
         model.image_vectors.put(id.to_string(), Arc::clone(&vector));
         Ok(vector)
-    }
-}
-
-fn check_id(id: &str) -> Result<(), EngineError> {
-    if is_content_id(id) {
-        Ok(())
-    } else {
-        Err(EngineError::BadImageId(id.to_string()))
     }
 }

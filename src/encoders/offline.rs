@@ -7,8 +7,7 @@ use std::sync::Arc;
 use ndarray::Array2;
 
 use super::model::Model;
-use crate::intake::image_decode::decode_rgb;
-use crate::intake::image_tensor::to_tensor;
+use crate::intake::image_tensor::tensor_from_bytes;
 use crate::vectors::{EmbedError, Embedder};
 
 /// Embeds through `model` by blocking on `runtime`; never call it from an async task.
@@ -55,9 +54,9 @@ impl Embedder for ModelEmbedder {
         for path in paths {
             let bytes =
                 std::fs::read(path).map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
-            let rgb = decode_rgb(&bytes, self.max_pixels)
+            let tensor = tensor_from_bytes(&bytes, self.max_pixels, spec)
                 .map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
-            tensors.push(to_tensor(&rgb, spec));
+            tensors.push(tensor.values);
         }
         let vectors = self
             .runtime
@@ -81,19 +80,12 @@ impl crate::probe::ProbeEncoder for EngineProbeEncoder {
         self.model.dimension()
     }
 
-    fn embed_images(&self, images: &[&crate::probe::ImageRef]) -> Result<Array2<f32>, EmbedError> {
-        use super::ImageSource;
-        let sources: Vec<ImageSource> = images
-            .iter()
-            .map(|image| match image {
-                crate::probe::ImageRef::Id(id) => ImageSource::Id(id.clone()),
-                crate::probe::ImageRef::Path(p) => {
-                    ImageSource::Path(p.to_string_lossy().into_owned())
-                }
-            })
-            .collect();
+    fn embed_images(
+        &self,
+        images: &[&crate::probe::ImageSource],
+    ) -> Result<Array2<f32>, EmbedError> {
         let work = futures::future::try_join_all(
-            sources
+            images
                 .iter()
                 .map(|s| self.engine.image_vector(&self.model, s)),
         );

@@ -34,42 +34,42 @@ impl ImageRoot {
     }
 
     /// The real file `relative` names, when it is inside the root.
-    pub fn resolve(&self, relative: &str) -> Result<PathBuf, PathError> {
-        let path = Path::new(relative);
+    pub fn resolve(&self, path: &Path) -> Result<PathBuf, PathError> {
+        let relative = path.display().to_string();
         let lexically_inside = !relative.is_empty()
             && path
                 .components()
                 .all(|c| matches!(c, Component::Normal(_) | Component::CurDir));
         if !lexically_inside {
-            return Err(PathError::Escapes(relative.to_string()));
+            return Err(PathError::Escapes(relative));
         }
         let real = match self.root.join(path).canonicalize() {
             Ok(real) => real,
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-                return Err(PathError::Missing(relative.to_string()))
+                return Err(PathError::Missing(relative))
             }
             Err(e) => {
                 return Err(PathError::Read {
-                    path: relative.to_string(),
+                    path: relative,
                     message: e.to_string(),
                 })
             }
         };
         // A symbolic link inside the root may point anywhere; the real path decides.
         if !real.starts_with(&self.root) {
-            return Err(PathError::Escapes(relative.to_string()));
+            return Err(PathError::Escapes(relative));
         }
         if !real.is_file() {
-            return Err(PathError::Missing(relative.to_string()));
+            return Err(PathError::Missing(relative));
         }
         Ok(real)
     }
 
     /// Reads the file `relative` names.
-    pub fn read(&self, relative: &str) -> Result<Vec<u8>, PathError> {
+    pub fn read(&self, relative: &Path) -> Result<Vec<u8>, PathError> {
         let real = self.resolve(relative)?;
         std::fs::read(&real).map_err(|e| PathError::Read {
-            path: relative.to_string(),
+            path: relative.display().to_string(),
             message: e.to_string(),
         })
     }
@@ -93,8 +93,8 @@ mod tests {
         .unwrap();
         let root = ImageRoot::new(dir.path()).unwrap();
 
-        assert_eq!(root.read("scenes/a.png").unwrap(), b"png");
-        assert_eq!(root.read("./scenes/a.png").unwrap(), b"png");
+        assert_eq!(root.read(Path::new("scenes/a.png")).unwrap(), b"png");
+        assert_eq!(root.read(Path::new("./scenes/a.png")).unwrap(), b"png");
         for bad in [
             "../x.png",
             "scenes/../../x.png",
@@ -103,14 +103,17 @@ mod tests {
             "",
         ] {
             assert!(
-                matches!(root.resolve(bad), Err(PathError::Escapes(_))),
+                matches!(root.resolve(Path::new(bad)), Err(PathError::Escapes(_))),
                 "{bad}"
             );
         }
         assert!(matches!(
-            root.resolve("scenes/none.png"),
+            root.resolve(Path::new("scenes/none.png")),
             Err(PathError::Missing(_))
         ));
-        assert!(matches!(root.resolve("scenes"), Err(PathError::Missing(_))));
+        assert!(matches!(
+            root.resolve(Path::new("scenes")),
+            Err(PathError::Missing(_))
+        ));
     }
 }

@@ -3,8 +3,35 @@
 
 use image::RgbImage;
 
+use super::image_decode::{decode_rgb, DecodeError};
 use super::resample;
 use crate::bundle::{ImageSpec, ResizeRule};
+
+/// An image file's bytes as the encoder's input: decoded (pixel limit checked
+/// from the header), resized and normalised. The one way bytes become a tensor,
+/// for the server, the offline commands and the parity tests alike.
+pub fn tensor_from_bytes(
+    bytes: &[u8],
+    max_pixels: u64,
+    spec: &ImageSpec,
+) -> Result<ImageTensor, DecodeError> {
+    let rgb = decode_rgb(bytes, max_pixels)?;
+    let (width, height) = rgb.dimensions();
+    Ok(ImageTensor {
+        width,
+        height,
+        values: to_tensor(&rgb, spec),
+    })
+}
+
+/// A decoded image's size and its encoder input.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ImageTensor {
+    pub width: u32,
+    pub height: u32,
+    /// `[3, size, size]`, channel first.
+    pub values: Vec<f32>,
+}
 
 /// Brings `image` to the encoder's square input and normalises it.
 ///

@@ -7,9 +7,15 @@
 //! - [`image_tensor`]: the bundle's resize rule and normalisation, to NCHW floats.
 //! - [`captions`]: tokenisation with prefix, truncation (reported) and padding.
 //! - [`image_root`]: image paths relative to a root folder, never escaping it.
+//! - [`image_source`]: how requests, probe rows and commands name an image.
+//! - [`limits`]: the request limits, each with its flag, defined once.
+//! - [`validation`]: typed faults of a request's fields.
 
 pub mod captions;
 pub mod image_decode;
 pub mod image_root;
+pub mod image_source;
 pub mod image_tensor;
+pub mod limits;
 pub mod resample;
+pub mod validation;

@@ -13,7 +13,7 @@ use ndarray::Array2;
 use crate::stats::ProbeVectors;
 use crate::vectors::{EmbedError, Embedder};
 
-use super::set::{ImageRef, ProbeSet};
+use super::set::{ImageSource, ProbeSet};
 use super::{ProbeError, RowIssue, RowProblem};
 
 /// Default images per encoder call: enough to keep an encoder busy, few
@@ -27,12 +27,12 @@ pub const DEFAULT_TEXT_BATCH: usize = 256;
 /// L2-normalised.
 ///
 /// Implemented by [`ImageFiles`] for an [`Embedder`] and image paths; a
-/// caller with an image store implements it to resolve [`ImageRef::Id`].
+/// caller with an image store implements it to resolve [`ImageSource::Id`].
 pub trait ProbeEncoder {
     /// Length of every vector.
     fn dimension(&self) -> usize;
     /// One row per image, in order.
-    fn embed_images(&self, images: &[&ImageRef]) -> Result<Array2<f32>, EmbedError>;
+    fn embed_images(&self, images: &[&ImageSource]) -> Result<Array2<f32>, EmbedError>;
     /// One row per caption, in order.
     fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError>;
 }
@@ -45,14 +45,17 @@ impl ProbeEncoder for ImageFiles<'_> {
         self.0.dimension()
     }
 
-    fn embed_images(&self, images: &[&ImageRef]) -> Result<Array2<f32>, EmbedError> {
+    fn embed_images(&self, images: &[&ImageSource]) -> Result<Array2<f32>, EmbedError> {
         let paths = images
             .iter()
             .map(|image| match image {
-                ImageRef::Path(p) => Ok(p.clone()),
-                ImageRef::Id(id) => Err(EmbedError(format!(
+                ImageSource::Path(p) => Ok(p.clone()),
+                ImageSource::Id(id) => Err(EmbedError(format!(
                     "image id {id} can only be resolved by a server's image store; name the image by path"
                 ))),
+                ImageSource::Bytes(_) => Err(EmbedError(
+                    "probe rows name images by path or id".to_string(),
+                )),
             })
             .collect::<Result<Vec<PathBuf>, _>>()?;
         self.0.embed_image_files(&paths)
@@ -131,7 +134,7 @@ pub fn embed_probe(
     let mut done = 0;
 
     // Images, one per row.
-    let images: Vec<&ImageRef> = set.rows.iter().map(|r| &r.image).collect();
+    let images: Vec<&ImageSource> = set.rows.iter().map(|r| &r.image).collect();
     let image_lines: Vec<usize> = set.rows.iter().map(|r| r.line).collect();
     let image_vectors = embed_in_batches(
         Tower::Image,
@@ -599,7 +602,7 @@ mod tests {
     #[test]
     fn image_ids_need_a_store() {
         let set = ProbeSet::parse(
-            br#"{"image": {"id": "abc"}, "captions": ["x"]}"#,
+            br#"{"image": {"id": "abcdef0123456789abcdef0123456789abcdef0123456789abcdef0123456789"}, "captions": ["x"]}"#,
             Path::new(""),
             "request",
             &LoadOptions::default(),

@@ -14,7 +14,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
-use super::set::{Contrast, ImageRef, ProbeRow, ProbeSet};
+use super::set::{Contrast, ImageSource, ProbeRow, ProbeSet};
 use super::{ProbeError, RowIssue, RowProblem};
 
 /// How strictly a probe set is read.
@@ -203,7 +203,7 @@ fn image_ref(
     value: &serde_json::Value,
     base: &Path,
     options: &LoadOptions,
-) -> Result<(ImageRef, String), RowProblem> {
+) -> Result<(ImageSource, String), RowProblem> {
     use serde_json::Value;
     const SHAPE: &str = "\"image\" must be a path string, {\"path\": \"...\"} or {\"id\": \"...\"}";
     let bad = |why: String| Err(RowProblem::BadImage(why));
@@ -218,7 +218,10 @@ fn image_ref(
             }
             match (map.get("id"), map.get("path")) {
                 (Some(Value::String(id)), None) if !id.trim().is_empty() => {
-                    Ok((ImageRef::Id(id.clone()), id.clone()))
+                    match ImageSource::id(id, "image") {
+                        Ok(source) => Ok((source, id.clone())),
+                        Err(e) => bad(e.problem.to_string()),
+                    }
                 }
                 (None, Some(Value::String(p))) => path_ref(p, base, options),
                 (Some(_), Some(_)) => bad(format!("{SHAPE}, not both")),
@@ -229,7 +232,11 @@ fn image_ref(
     }
 }
 
-fn path_ref(p: &str, base: &Path, options: &LoadOptions) -> Result<(ImageRef, String), RowProblem> {
+fn path_ref(
+    p: &str,
+    base: &Path,
+    options: &LoadOptions,
+) -> Result<(ImageSource, String), RowProblem> {
     if p.trim().is_empty() {
         return Err(RowProblem::BadImage("\"image\" is an empty path".into()));
     }
@@ -237,7 +244,7 @@ fn path_ref(p: &str, base: &Path, options: &LoadOptions) -> Result<(ImageRef, St
     if options.check_files && !resolved.is_file() {
         return Err(RowProblem::MissingImage(resolved));
     }
-    Ok((ImageRef::Path(resolved), p.to_string()))
+    Ok((ImageSource::Path(resolved), p.to_string()))
 }
 
 #[cfg(test)]
@@ -260,7 +267,7 @@ mod tests {
         let text = concat!(
             r#"{"image": "images/0.png", "captions": ["a red square"], "scene": {"x": 1}}"#,
             "\n\n",
-            r#"{"image": {"id": "abc"}, "captions": ["a", "b"], "contrasts": [{"caption": "c", "changed": "colour", "from": 1}]}"#,
+            r#"{"image": {"id": "abcdef0123456789abcdef0123456789abcdef0123456789abcdef0123456789"}, "captions": ["a", "b"], "contrasts": [{"caption": "c", "changed": "colour", "from": 1}]}"#,
             "\r\n"
         );
         let loaded = parse(text, &no_files()).unwrap();
@@ -269,11 +276,16 @@ mod tests {
         assert_eq!(rows[0].line, 1);
         assert_eq!(
             rows[0].image,
-            ImageRef::Path(PathBuf::from("/probe/images/0.png"))
+            ImageSource::Path(PathBuf::from("/probe/images/0.png"))
         );
         assert_eq!(rows[0].image_name, "images/0.png");
         assert_eq!(rows[1].line, 3);
-        assert_eq!(rows[1].image, ImageRef::Id("abc".into()));
+        assert_eq!(
+            rows[1].image,
+            ImageSource::Id(
+                "abcdef0123456789abcdef0123456789abcdef0123456789abcdef0123456789".into()
+            )
+        );
         assert_eq!(rows[1].contrasts[0].from, 1);
         assert_eq!(loaded.set.caption_count(), 3);
         assert_eq!(loaded.set.contrast_count(), 1);
@@ -377,13 +389,21 @@ mod tests {
     #[test]
     fn values_from_a_request_count_rows_from_one() {
         let values = vec![
-            serde_json::json!({"image": {"id": "x"}, "captions": ["a"]}),
-            serde_json::json!({"image": {"id": "y"}, "captions": [""]}),
+            serde_json::json!({"image": {"id": "a".repeat(64)}, "captions": ["a"]}),
+            serde_json::json!({"image": {"id": "b".repeat(64)}, "captions": [""]}),
+            serde_json::json!({"image": {"id": "not-hex"}, "captions": ["a"]}),
         ];
         let err = ProbeSet::from_values(values, Path::new(""), "request", &no_files()).unwrap_err();
         let ProbeError::BadRows { issues, .. } = &err else {
             panic!("{err}");
         };
         assert_eq!(issues[0].line, 2);
+        // An id that is not a content id is the third row's fault, found before any encoder work.
+        assert_eq!(issues[1].line, 3);
+        assert!(
+            issues[1].to_string().contains("not an image id"),
+            "{}",
+            issues[1]
+        );
     }
 }

@@ -17,7 +17,7 @@ pub mod set;
 
 pub use embed::{embed_probe, EmbedOptions, EmbeddedProbe, ImageFiles, ProbeEncoder};
 pub use load::{LoadOptions, LoadedProbe};
-pub use set::{Contrast, ImageRef, ProbeRow, ProbeSet};
+pub use set::{Contrast, ImageSource, ProbeRow, ProbeSet};
 
 /// Most bad rows kept in a [`ProbeError::BadRows`]; the rest are only
 /// counted, so a wholly wrong file does not make a message of megabytes.

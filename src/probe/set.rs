@@ -1,27 +1,7 @@
 //! A probe set in memory: rows of one image, its true captions and optional
 //! contrasts, each remembering the line it came from.
 
-use std::fmt;
-use std::path::PathBuf;
-
-/// How a probe row names its image.
-#[derive(Debug, Clone, PartialEq, Eq, Hash)]
-pub enum ImageRef {
-    /// A file, already resolved against the probe file's folder.
-    Path(PathBuf),
-    /// A content id the caller's image store knows (e.g. the 64-hex id of
-    /// `POST /v1/images`); befit's file loader cannot resolve it.
-    Id(String),
-}
-
-impl fmt::Display for ImageRef {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        match self {
-            ImageRef::Path(p) => write!(f, "{}", p.display()),
-            ImageRef::Id(id) => write!(f, "id {id}"),
-        }
-    }
-}
+pub use crate::intake::image_source::ImageSource;
 
 /// A true caption with one fact changed.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -41,7 +21,7 @@ pub struct ProbeRow {
     /// 1-based line in the probe file (or position in the request).
     pub line: usize,
     /// The image.
-    pub image: ImageRef,
+    pub image: ImageSource,
     /// The image as written in the probe set (path relative to the file, or
     /// id); reports name images by it, so they do not depend on where the
     /// probe set lives.

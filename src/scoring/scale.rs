@@ -9,6 +9,17 @@ fn default_weight() -> f32 {
     DEFAULT_CLIP_S_WEIGHT
 }
 
+/// Why a scale's parameters cannot be used.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ScaleError {
+    #[error("weight must be a positive number, got {0}")]
+    Weight(f32),
+    #[error("a and b must be finite numbers")]
+    Affine,
+    #[error("the ref-clip-s scale needs reference captions in each group")]
+    NoReferences,
+}
+
 /// A reward scale, as requests name it.
 #[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
@@ -37,16 +48,14 @@ impl Scale {
     }
 
     /// The problem with the scale's parameters, if any.
-    pub fn check(&self) -> Result<(), String> {
+    pub fn check(&self) -> Result<(), ScaleError> {
         match self {
             Scale::ClipS { weight } | Scale::RefClipS { weight }
                 if !(weight.is_finite() && *weight > 0.0) =>
             {
-                Err(format!("weight must be a positive number, got {weight}"))
+                Err(ScaleError::Weight(*weight))
             }
-            Scale::Affine { a, b } if !(a.is_finite() && b.is_finite()) => {
-                Err("a and b must be finite numbers".into())
-            }
+            Scale::Affine { a, b } if !(a.is_finite() && b.is_finite()) => Err(ScaleError::Affine),
             _ => Ok(()),
         }
     }

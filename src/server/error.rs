@@ -1,5 +1,7 @@
-//! The one error type of the HTTP API and its JSON form
-//! `{"error": {"code", "message", "field"?}}`.
+//! The one error type of the HTTP API: a closed set of codes mirroring the
+//! table in `proto-free-api.md`, the JSON form
+//! `{"error": {"code", "message", "field"?}}`, and the conversion of every
+//! domain error into it, in this one place.
 //!
 //! Client errors are answered and not logged; server errors are logged once
 //! with their details and answered with a generic message.
@@ -8,18 +10,114 @@ use axum::http::{header, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
 
+use crate::bank::BankError;
 use crate::encoders::{EncodeError, EngineError};
 use crate::intake::image_decode::DecodeError;
 use crate::intake::image_root::PathError;
+use crate::intake::validation::{Invalid, Problem};
+use crate::probe::ProbeError;
+use crate::scoring::ScoreError;
+use crate::service::maps::MapError;
+use crate::service::NotReady;
+use crate::stats::StatsError;
 
 /// Seconds a client is told to wait after a 503.
 pub const RETRY_AFTER_SECONDS: u64 = 1;
 
+/// Every code an answer can carry; `proto-free-api.md` has the same table.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ErrorCode {
+    BadJson,
+    InvalidField,
+    OverLimit,
+    PathRefused,
+    UnknownImage,
+    UnknownModel,
+    UnknownMap,
+    NotFound,
+    MethodNotAllowed,
+    MapMismatch,
+    BodyTooLarge,
+    UnsupportedMediaType,
+    BadImage,
+    ImageTooLarge,
+    Overloaded,
+    NotReady,
+    Internal,
+}
+
+impl ErrorCode {
+    /// Every code, in the order of the API doc's table.
+    pub const ALL: [ErrorCode; 17] = [
+        ErrorCode::BadJson,
+        ErrorCode::InvalidField,
+        ErrorCode::OverLimit,
+        ErrorCode::PathRefused,
+        ErrorCode::UnknownImage,
+        ErrorCode::UnknownModel,
+        ErrorCode::UnknownMap,
+        ErrorCode::NotFound,
+        ErrorCode::MethodNotAllowed,
+        ErrorCode::MapMismatch,
+        ErrorCode::BodyTooLarge,
+        ErrorCode::UnsupportedMediaType,
+        ErrorCode::BadImage,
+        ErrorCode::ImageTooLarge,
+        ErrorCode::Overloaded,
+        ErrorCode::NotReady,
+        ErrorCode::Internal,
+    ];
+
+    /// The HTTP status answered with the code.
+    pub fn status(self) -> StatusCode {
+        match self {
+            ErrorCode::BadJson | ErrorCode::InvalidField | ErrorCode::OverLimit => {
+                StatusCode::BAD_REQUEST
+            }
+            ErrorCode::PathRefused => StatusCode::FORBIDDEN,
+            ErrorCode::UnknownImage
+            | ErrorCode::UnknownModel
+            | ErrorCode::UnknownMap
+            | ErrorCode::NotFound => StatusCode::NOT_FOUND,
+            ErrorCode::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
+            ErrorCode::MapMismatch => StatusCode::CONFLICT,
+            ErrorCode::BodyTooLarge => StatusCode::PAYLOAD_TOO_LARGE,
+            ErrorCode::UnsupportedMediaType => StatusCode::UNSUPPORTED_MEDIA_TYPE,
+            ErrorCode::BadImage | ErrorCode::ImageTooLarge => StatusCode::UNPROCESSABLE_ENTITY,
+            ErrorCode::Overloaded | ErrorCode::NotReady => StatusCode::SERVICE_UNAVAILABLE,
+            ErrorCode::Internal => StatusCode::INTERNAL_SERVER_ERROR,
+        }
+    }
+
+    /// The code as answers spell it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ErrorCode::BadJson => "bad_json",
+            ErrorCode::InvalidField => "invalid_field",
+            ErrorCode::OverLimit => "over_limit",
+            ErrorCode::PathRefused => "path_refused",
+            ErrorCode::UnknownImage => "unknown_image",
+            ErrorCode::UnknownModel => "unknown_model",
+            ErrorCode::UnknownMap => "unknown_map",
+            ErrorCode::NotFound => "not_found",
+            ErrorCode::MethodNotAllowed => "method_not_allowed",
+            ErrorCode::MapMismatch => "map_mismatch",
+            ErrorCode::BodyTooLarge => "body_too_large",
+            ErrorCode::UnsupportedMediaType => "unsupported_media_type",
+            ErrorCode::BadImage => "bad_image",
+            ErrorCode::ImageTooLarge => "image_too_large",
+            ErrorCode::Overloaded => "overloaded",
+            ErrorCode::NotReady => "not_ready",
+            ErrorCode::Internal => "internal",
+        }
+    }
+}
+
 /// An answer that is not a success.
 #[derive(Debug, Clone)]
 pub struct ApiError {
-    pub status: StatusCode,
-    pub code: &'static str,
+    pub code: ErrorCode,
     pub message: String,
     pub field: Option<String>,
 }
@@ -38,45 +136,42 @@ struct Inner<'a> {
 }
 
 impl ApiError {
-    pub fn new(status: StatusCode, code: &'static str, message: impl Into<String>) -> ApiError {
+    pub fn new(code: ErrorCode, message: impl Into<String>) -> ApiError {
         ApiError {
-            status,
             code,
             message: message.into(),
             field: None,
         }
     }
 
-    /// 400 `invalid_field` blaming `field`.
-    pub fn invalid(field: impl Into<String>, message: impl Into<String>) -> ApiError {
-        ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message).at(field)
-    }
-
-    /// 400 `over_limit` blaming `field`, naming the flag that raises the limit.
-    pub fn over_limit(field: impl Into<String>, what: &str, limit: usize, flag: &str) -> ApiError {
-        let message =
-            format!("{what} is over the server's limit of {limit} (raise it with {flag})");
-        ApiError::new(StatusCode::BAD_REQUEST, "over_limit", message).at(field)
+    pub fn status(&self) -> StatusCode {
+        self.code.status()
     }
 
     pub fn not_ready() -> ApiError {
         ApiError::new(
-            StatusCode::SERVICE_UNAVAILABLE,
-            "not_ready",
+            ErrorCode::NotReady,
             "bundles are still loading; retry shortly",
         )
     }
 
     pub fn overloaded(message: impl Into<String>) -> ApiError {
-        ApiError::new(StatusCode::SERVICE_UNAVAILABLE, "overloaded", message)
+        ApiError::new(ErrorCode::Overloaded, message)
+    }
+
+    /// 413, naming the flag.
+    pub fn body_too_large() -> ApiError {
+        ApiError::new(
+            ErrorCode::BodyTooLarge,
+            "request body is over the server's limit (raise it with --max-body-bytes, or send fewer items per request)",
+        )
     }
 
     /// A fault of ours: logged here with its details, answered without them.
     pub fn internal(details: impl std::fmt::Display) -> ApiError {
         tracing::error!(error = %details, "internal error");
         ApiError::new(
-            StatusCode::INTERNAL_SERVER_ERROR,
-            "internal",
+            ErrorCode::Internal,
             "internal error; the server log has details",
         )
     }
@@ -94,13 +189,13 @@ impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
         let body = Body {
             error: Inner {
-                code: self.code,
+                code: self.code.as_str(),
                 message: &self.message,
                 field: self.field.as_deref(),
             },
         };
-        let mut response = (self.status, axum::Json(body)).into_response();
-        if self.status == StatusCode::SERVICE_UNAVAILABLE {
+        let mut response = (self.status(), axum::Json(body)).into_response();
+        if self.status() == StatusCode::SERVICE_UNAVAILABLE {
             response
                 .headers_mut()
                 .insert(header::RETRY_AFTER, HeaderValue::from(RETRY_AFTER_SECONDS));
@@ -109,44 +204,141 @@ impl IntoResponse for ApiError {
     }
 }
 
+impl From<NotReady> for ApiError {
+    fn from(_: NotReady) -> ApiError {
+        ApiError::not_ready()
+    }
+}
+
+impl From<Invalid> for ApiError {
+    fn from(e: Invalid) -> ApiError {
+        let code = if e.problem.is_over_limit() {
+            ErrorCode::OverLimit
+        } else {
+            ErrorCode::InvalidField
+        };
+        let message = match &e.problem {
+            Problem::OverLimit { .. } => e.problem.to_string(),
+            _ => e.to_string(),
+        };
+        ApiError::new(code, message).at(e.field)
+    }
+}
+
 impl From<EngineError> for ApiError {
     fn from(e: EngineError) -> ApiError {
         let message = e.to_string();
-        match e {
+        let code = match e {
             EngineError::UnknownModel { .. } => {
-                ApiError::new(StatusCode::NOT_FOUND, "unknown_model", message).at("model")
+                return ApiError::new(ErrorCode::UnknownModel, message).at("model")
             }
-            EngineError::UnknownImage(_) => {
-                ApiError::new(StatusCode::NOT_FOUND, "unknown_image", message)
-            }
-            EngineError::BadImageId(_) => {
-                ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message)
-            }
-            EngineError::Decode(DecodeError::TooLarge { .. }) => {
-                ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "image_too_large", message)
-            }
-            EngineError::Decode(_) => {
-                ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message)
-            }
-            EngineError::Path(PathError::NoRoot | PathError::Escapes(_)) => {
-                ApiError::new(StatusCode::FORBIDDEN, "path_refused", message)
-            }
-            EngineError::Path(_) => {
-                ApiError::new(StatusCode::UNPROCESSABLE_ENTITY, "bad_image", message)
-            }
-            EngineError::Encode(EncodeError::Overloaded { .. }) => ApiError::overloaded(message),
-            EngineError::Encode(EncodeError::Caption { .. }) => {
-                ApiError::new(StatusCode::BAD_REQUEST, "invalid_field", message)
-            }
+            EngineError::UnknownImage(_) => ErrorCode::UnknownImage,
+            EngineError::Decode(DecodeError::TooLarge { .. }) => ErrorCode::ImageTooLarge,
+            EngineError::Decode(_) => ErrorCode::BadImage,
+            EngineError::Path(PathError::NoRoot | PathError::Escapes(_)) => ErrorCode::PathRefused,
+            EngineError::Path(_) => ErrorCode::BadImage,
+            EngineError::Encode(EncodeError::Overloaded { .. }) => ErrorCode::Overloaded,
+            EngineError::Encode(EncodeError::Caption { .. }) => ErrorCode::InvalidField,
             EngineError::Encode(EncodeError::Failed { .. })
             | EngineError::Store(_)
-            | EngineError::Task(_) => ApiError::internal(message),
-        }
+            | EngineError::Task(_) => return ApiError::internal(message),
+        };
+        ApiError::new(code, message)
     }
 }
 
 impl From<EncodeError> for ApiError {
     fn from(e: EncodeError) -> ApiError {
         ApiError::from(EngineError::Encode(e))
+    }
+}
+
+impl From<ScoreError> for ApiError {
+    fn from(e: ScoreError) -> ApiError {
+        let error = ApiError::from(e.source);
+        match e.field {
+            Some(field) => error.at(field),
+            None => error,
+        }
+    }
+}
+
+impl From<MapError> for ApiError {
+    fn from(e: MapError) -> ApiError {
+        let message = e.to_string();
+        match e {
+            MapError::Unknown { .. } => ApiError::new(ErrorCode::UnknownMap, message).at("remap"),
+            MapError::WrongModel { .. } => {
+                ApiError::new(ErrorCode::MapMismatch, message).at("remap")
+            }
+            MapError::BadName { .. } => ApiError::new(ErrorCode::InvalidField, message),
+            MapError::Write { .. } | MapError::Read { .. } | MapError::NoDigests { .. } => {
+                ApiError::internal(message)
+            }
+        }
+    }
+}
+
+impl From<BankError> for ApiError {
+    fn from(e: BankError) -> ApiError {
+        match e {
+            BankError::Invalid { position, problem } => {
+                ApiError::new(ErrorCode::InvalidField, problem).at(format!("captions[{position}]"))
+            }
+            BankError::TooMany { .. } => {
+                ApiError::new(ErrorCode::OverLimit, e.to_string()).at("captions")
+            }
+            BankError::NotLoaded(_) => ApiError::not_ready(),
+            other => ApiError::internal(other),
+        }
+    }
+}
+
+impl From<ProbeError> for ApiError {
+    fn from(e: ProbeError) -> ApiError {
+        match e {
+            ProbeError::Encoder { .. } | ProbeError::Shape { .. } => ApiError::internal(e),
+            other => ApiError::new(ErrorCode::InvalidField, other.to_string()).at("probe"),
+        }
+    }
+}
+
+impl From<StatsError> for ApiError {
+    fn from(e: StatsError) -> ApiError {
+        ApiError::new(ErrorCode::InvalidField, e.to_string()).at("options")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The table of `proto-free-api.md` lists exactly these codes with these statuses.
+    #[test]
+    fn the_api_doc_table_matches_the_codes() {
+        let doc = include_str!("../../proto-free-api.md");
+        let mut rows = Vec::new();
+        for line in doc.lines() {
+            let cells: Vec<&str> = line.split('|').map(str::trim).collect();
+            if cells.len() > 3 && cells[1].parse::<u16>().is_ok() && cells[2].starts_with('`') {
+                rows.push((
+                    cells[1].parse::<u16>().unwrap(),
+                    cells[2].trim_matches('`').to_string(),
+                ));
+            }
+        }
+        let ours: Vec<(u16, String)> = ErrorCode::ALL
+            .iter()
+            .map(|c| (c.status().as_u16(), c.as_str().to_string()))
+            .collect();
+        let mut sorted_doc = rows.clone();
+        sorted_doc.sort();
+        let mut sorted_ours = ours.clone();
+        sorted_ours.sort();
+        assert_eq!(sorted_doc, sorted_ours);
+        // serde spelling and as_str agree.
+        for code in ErrorCode::ALL {
+            assert_eq!(serde_json::to_value(code).unwrap(), code.as_str());
+        }
     }
 }

@@ -1,24 +1,22 @@
 //! The HTTP service.
 //!
-//! [`app`] builds the router (routes, per-route body limits, the layer stack
-//! of panic catching, tracing, load shedding, a concurrency limit and a
-//! timeout) so tests can drive it with `oneshot`; [`run`] serves it on a bound
-//! listener until `shutdown` resolves. The API is documented in
-//! `proto-free-api.md`.
+//! [`app`] builds the router over a [`Service`] (routes, the body limit
+//! `--max-body-bytes` for every route, the layer stack of panic catching,
+//! tracing, load shedding, a concurrency limit and a timeout) so tests can
+//! drive it with `oneshot`; [`run`] serves it on a bound listener until
+//! `shutdown` resolves. Handlers parse, check, call the domain and shape the
+//! answer; [`error`] maps every domain error to the API's codes. The API is
+//! documented in `proto-free-api.md`.
 
 pub mod error;
-pub mod image_ref;
 pub mod json;
-pub mod limits;
 pub mod routes;
-pub mod state;
 
 use std::future::Future;
 use std::time::Instant;
 
 use axum::error_handling::HandleErrorLayer;
 use axum::extract::{DefaultBodyLimit, MatchedPath, Request, State};
-use axum::http::StatusCode;
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
@@ -28,12 +26,12 @@ use tower::ServiceBuilder;
 use tower_http::catch_panic::CatchPanicLayer;
 use tower_http::trace::TraceLayer;
 
-use error::ApiError;
-pub use limits::Limits;
-pub use state::AppState;
+pub use crate::intake::limits::Limits;
+use crate::service::Service;
+use error::{ApiError, ErrorCode};
 
 /// The router with every route and layer.
-pub fn app(state: AppState) -> Router {
+pub fn app(state: Service) -> Router {
     let limits = state.limits().clone();
     let routes = Router::new()
         .route("/healthz", get(routes::health::healthz))
@@ -72,7 +70,7 @@ pub fn app(state: AppState) -> Router {
 /// Serves `app(state)` on `listener` until `shutdown` resolves, then drains.
 pub async fn run(
     listener: tokio::net::TcpListener,
-    state: AppState,
+    state: Service,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
     axum::serve(listener, app(state))
@@ -82,16 +80,14 @@ pub async fn run(
 
 async fn not_found() -> ApiError {
     ApiError::new(
-        StatusCode::NOT_FOUND,
-        "not_found",
+        ErrorCode::NotFound,
         "no such route; see proto-free-api.md for the routes",
     )
 }
 
 async fn method_not_allowed() -> ApiError {
     ApiError::new(
-        StatusCode::METHOD_NOT_ALLOWED,
-        "method_not_allowed",
+        ErrorCode::MethodNotAllowed,
         "this route does not take that method",
     )
 }
@@ -109,7 +105,7 @@ async fn shed_or_timeout(error: BoxError) -> ApiError {
 }
 
 /// Counts and times requests by matched route, never by raw path.
-async fn record(State(state): State<AppState>, request: Request, next: Next) -> Response {
+async fn record(State(state): State<Service>, request: Request, next: Next) -> Response {
     let route = request
         .extensions()
         .get::<MatchedPath>()

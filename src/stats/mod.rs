@@ -15,6 +15,7 @@
 //! - [`agreement`]: Spearman, Kendall tau-b, two-sample Kolmogorov-Smirnov.
 //! - [`spaces`]: linear CKA and orthogonal Procrustes, on [`svd`].
 //! - [`continuity`]: maps from a new bundle's cosine to an old one's.
+//! - [`reward_map`]: such a map tied to the two bundles it was fitted between.
 //! - [`drift`](mod@drift): all of the above between two bundles.
 //! - [`html`]: self-contained HTML reports, drawn with `svg`.
 //! - [`export`]: the JSON export the numpy/scipy cross-check reads.
@@ -31,6 +32,7 @@ pub mod hinge;
 pub mod html;
 pub mod pairs;
 pub mod retrieval;
+pub mod reward_map;
 pub mod spaces;
 pub mod summary;
 pub mod svd;
@@ -42,6 +44,7 @@ pub use drift::{drift, DriftOptions, DriftReport};
 pub use export::{calibration_export, drift_export, write_json, CalibrationExport, DriftExport};
 pub use html::{calibration_html, drift_html};
 pub use pairs::ProbeVectors;
+pub use reward_map::{MapBundle, RewardMap, RewardMapError};
 
 /// Why a statistic could not be computed; each message says what to change.
 #[derive(Debug, thiserror::Error)]

@@ -183,6 +183,35 @@ impl ImageStore {
     }
 }
 
+/// A stored image vector with the SQLite row id it was written under.
+pub type StoredVector = (i64, String, Vec<f32>);
+
+impl ImageStore {
+    /// Vectors of `digest` written after row `after` (0: all), in write order,
+    /// so an index over the store can catch up with what was added since.
+    pub fn vectors_after(&self, digest: &str, after: i64) -> Result<Vec<StoredVector>, StoreError> {
+        let conn = self.conn();
+        let mut stmt = conn.prepare(
+            "SELECT rowid, image_id, vector FROM image_vectors \
+             WHERE digest = ?1 AND rowid > ?2 ORDER BY rowid",
+        )?;
+        let rows = stmt.query_map(params![digest, after], |r| {
+            Ok((
+                r.get::<_, i64>(0)?,
+                r.get::<_, String>(1)?,
+                r.get::<_, Vec<u8>>(2)?,
+            ))
+        })?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (rowid, id, blob) = row?;
+            let vector = decode_vector(&id, &blob)?;
+            out.push((rowid, id, vector));
+        }
+        Ok(out)
+    }
+}
+
 fn decode_vector(id: &str, blob: &[u8]) -> Result<Vec<f32>, StoreError> {
     if !blob.len().is_multiple_of(4) {
         return Err(StoreError::BadVector {

@@ -10,7 +10,7 @@ use crate::util::*;
 // Each call reads as one row of the API's error table, so its columns stay arguments.
 #[allow(clippy::too_many_arguments)]
 async fn expect(
-    state: &befit::server::AppState,
+    state: &befit::service::Service,
     method: &str,
     uri: &str,
     ctype: &str,
@@ -357,21 +357,9 @@ async fn every_error_row_has_its_status_and_a_useful_message() {
 
 #[tokio::test(flavor = "multi_thread")]
 async fn paths_are_refused_without_an_image_root() {
-    let state = {
-        use befit::encoders::Engine;
-        use std::sync::Arc;
-        let metrics = Arc::new(befit::metrics::Registry::default());
-        let state = befit::server::AppState::new(Limits::default(), Arc::clone(&metrics));
-        let store = Arc::new(befit::store::images::ImageStore::in_memory().unwrap());
-        state.set_engine(Arc::new(Engine::new(
-            vec![model("blocks-v1")],
-            store,
-            None,
-            Limits::default().max_pixels,
-            metrics,
-        )));
-        state
-    };
+    let mut no_root = config(Limits::default());
+    no_root.image_root = None;
+    let state = ready(&no_root, &["blocks-v1"]);
     let body = j(json!({"groups": [{"image": {"path": "images/00000.png"}, "captions": ["a"]}]}));
     expect(
         &state,
@@ -388,7 +376,7 @@ async fn paths_are_refused_without_an_image_root() {
 
 #[tokio::test(flavor = "multi_thread")]
 async fn not_ready_until_the_engine_is_set() {
-    let state = befit::server::AppState::new(Limits::default(), Default::default());
+    let state = unready(&config(Limits::default()));
     expect(
         &state,
         "GET",

@@ -12,12 +12,11 @@ use std::time::{Duration, Instant};
 use axum::body::Body;
 use axum::http::{Request, StatusCode};
 use befit::bundle::Bundle;
-use befit::encoders::{Engine, Model, ModelSettings};
-use befit::intake::image_root::ImageRoot;
+use befit::encoders::{Model, ModelSettings};
 use befit::metrics::Registry;
 use befit::runtime::LibrarySearch;
-use befit::server::{AppState, Limits};
-use befit::store::images::ImageStore;
+use befit::server::Limits;
+use befit::service::{Service, ServiceConfig};
 use http_body_util::BodyExt;
 use serde_json::Value;
 use tower::ServiceExt;
@@ -84,23 +83,32 @@ pub fn model(name: &str) -> Arc<Model> {
     m
 }
 
-/// A ready state over fresh in-memory stores, with the probe folder as image root.
-pub fn state_with(models: &[&str], limits: Limits) -> AppState {
-    let metrics = Arc::new(Registry::default());
-    let state = AppState::new(limits.clone(), Arc::clone(&metrics));
-    let models = models.iter().map(|n| model(n)).collect();
-    let store = Arc::new(ImageStore::in_memory().unwrap());
-    let root = Some(ImageRoot::new(&probe_dir()).unwrap());
-    let engine = Engine::new(models, store, root, limits.max_pixels, metrics);
-    let bank =
-        befit::bank::CaptionBank::open(&scratch_dir("bank"), befit::bank::BankConfig::default())
-            .unwrap();
-    for m in engine.models() {
-        bank.model(&m.bundle.digest, m.dimension()).unwrap();
+/// The service's configuration for tests: a fresh data folder, the probe folder as image root.
+pub fn config(limits: Limits) -> ServiceConfig {
+    ServiceConfig {
+        image_root: Some(probe_dir()),
+        limits,
+        ..ServiceConfig::new(Vec::new(), scratch_dir("data"))
     }
-    state.set_engine(Arc::new(engine));
-    state.set_bank(bank);
-    state
+}
+
+/// A service opened as `befit serve` opens it, not ready yet.
+pub fn unready(config: &ServiceConfig) -> Service {
+    Service::open(config, Arc::new(Registry::default())).unwrap_or_else(|e| panic!("{e}"))
+}
+
+/// A service made ready with the shared test models (the same start-up as the binary's).
+pub fn ready(config: &ServiceConfig, models: &[&str]) -> Service {
+    let service = unready(config);
+    service
+        .ready_with(models.iter().map(|n| model(n)).collect())
+        .unwrap_or_else(|e| panic!("{e}"));
+    service
+}
+
+/// A ready service over a fresh data folder, with the probe folder as image root.
+pub fn state_with(models: &[&str], limits: Limits) -> Service {
+    ready(&config(limits), models)
 }
 
 /// A fresh folder under the system's temporary folder, left for the OS to clean.
@@ -113,13 +121,13 @@ pub fn scratch_dir(what: &str) -> PathBuf {
     dir
 }
 
-pub fn state() -> AppState {
+pub fn state() -> Service {
     state_with(&["blocks-v1"], Limits::default())
 }
 
 /// Sends one request through the router; returns status, headers and JSON body (Null when not JSON).
 pub async fn call(
-    state: &AppState,
+    state: &Service,
     method: &str,
     uri: &str,
     content_type: &str,
@@ -142,7 +150,7 @@ pub async fn call(
     (status, headers, json)
 }
 
-pub async fn post_json(state: &AppState, uri: &str, body: &Value) -> (StatusCode, Value) {
+pub async fn post_json(state: &Service, uri: &str, body: &Value) -> (StatusCode, Value) {
     let (status, _, json) = call(
         state,
         "POST",

@@ -4,22 +4,53 @@
 use std::sync::Arc;
 
 use axum::extract::{Query, State};
-use axum::http::StatusCode;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 use serde_json::{json, Value};
 
 use super::ModelRef;
-use crate::bank::{check_tag, BankAnswer, BankError, BankQuery, ModelBank, NewCaption, SearchMode};
+use crate::bank::{check_tag, BankAnswer, BankQuery, ModelBank, NewCaption, SearchMode};
 use crate::encoders::Model;
-use crate::server::error::ApiError;
-use crate::server::image_ref::ImageRef;
+use crate::intake::image_source::ImageRef;
+use crate::intake::validation::{Invalid, Problem};
+use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::ApiJson;
-use crate::server::state::AppState;
-use crate::vectors::dot;
+use crate::service::Service;
 
 /// Most neighbours one query may ask for.
 pub const MAX_K: usize = 1000;
+/// Widest search breadth one query may ask for.
+pub const MAX_EF_SEARCH: usize = 10_000;
+
+fn tag_ok(tag: &str, field: &str) -> Result<(), Invalid> {
+    check_tag(tag).map_err(|_| {
+        Invalid::new(
+            field,
+            Problem::Tag {
+                max: crate::bank::MAX_TAG_BYTES,
+            },
+        )
+    })
+}
+
+/// A query vector: the model's length, finite, not zero; scaled to unit length.
+fn query_vector(vector: &[f32], dimension: usize) -> Result<Vec<f32>, Invalid> {
+    if vector.len() != dimension {
+        return Err(Invalid::new(
+            "vector",
+            Problem::VectorLength {
+                got: vector.len(),
+                want: dimension,
+            },
+        ));
+    }
+    if vector.iter().any(|x| !x.is_finite()) || vector.iter().all(|x| *x == 0.0) {
+        return Err(Invalid::new("vector", Problem::VectorValues));
+    }
+    let mut v = vector.to_vec();
+    crate::vectors::normalise(&mut v);
+    Ok(v)
+}
 
 #[derive(Deserialize)]
 #[serde(untagged)]
@@ -42,19 +73,6 @@ struct AppendedOut {
     new: bool,
 }
 
-fn bank_error(e: BankError) -> ApiError {
-    match e {
-        BankError::Invalid { position, problem } => {
-            ApiError::invalid(format!("captions[{position}]"), problem)
-        }
-        BankError::TooMany { .. } => {
-            ApiError::new(StatusCode::BAD_REQUEST, "over_limit", e.to_string()).at("captions")
-        }
-        BankError::NotLoaded(_) => ApiError::not_ready(),
-        other => ApiError::internal(other),
-    }
-}
-
 async fn blocking<T: Send + 'static>(
     f: impl FnOnce() -> Result<T, ApiError> + Send + 'static,
 ) -> Result<T, ApiError> {
@@ -63,34 +81,23 @@ async fn blocking<T: Send + 'static>(
         .map_err(ApiError::internal)?
 }
 
-fn model_bank(state: &AppState, model: &Model) -> Result<Arc<ModelBank>, ApiError> {
-    state
+fn model_bank(service: &Service, model: &Model) -> Result<Arc<ModelBank>, ApiError> {
+    service
         .bank()?
         .loaded(&model.bundle.digest)
         .ok_or_else(ApiError::not_ready)
 }
 
 pub async fn append(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     ApiJson(request): ApiJson<AppendRequest>,
 ) -> Result<Json<Value>, ApiError> {
-    let engine = state.engine()?;
-    let limits = state.limits();
+    let engine = service.engine()?;
+    let limits = service.limits();
     let model = engine.model(request.model.as_deref())?;
-    let bank = model_bank(&state, model)?;
-    if request.captions.is_empty() {
-        return Err(ApiError::invalid("captions", "give at least one caption"));
-    }
-    if request.captions.len() > limits.max_captions {
-        return Err(ApiError::over_limit(
-            "captions",
-            "number of captions",
-            limits.max_captions,
-            "--max-captions",
-        ));
-    }
+    let bank = model_bank(&service, model)?;
     if let Some(tag) = &request.tag {
-        check_tag(tag).map_err(|m| ApiError::invalid("tag", m))?;
+        tag_ok(tag, "tag")?;
     }
     let mut texts = Vec::with_capacity(request.captions.len());
     let mut tags = Vec::with_capacity(request.captions.len());
@@ -99,26 +106,13 @@ pub async fn append(
             CaptionIn::Text(text) => (text, None),
             CaptionIn::Tagged { text, tag } => (text, tag),
         };
-        if text.trim().is_empty() {
-            return Err(ApiError::invalid(
-                format!("captions[{i}]"),
-                "captions must not be empty",
-            ));
-        }
-        if text.len() > limits.max_caption_bytes {
-            return Err(ApiError::over_limit(
-                format!("captions[{i}]"),
-                "caption length in bytes",
-                limits.max_caption_bytes,
-                "--max-caption-bytes",
-            ));
-        }
         if let Some(t) = &tag {
-            check_tag(t).map_err(|m| ApiError::invalid(format!("captions[{i}].tag"), m))?;
+            tag_ok(t, &format!("captions[{i}].tag"))?;
         }
         texts.push(text);
         tags.push(tag.or_else(|| request.tag.clone()));
     }
+    limits.check_captions(&texts, "captions")?;
     let vectors = model.caption_vectors(&texts).await?;
     let new: Vec<NewCaption> = texts
         .into_iter()
@@ -131,7 +125,7 @@ pub async fn append(
         })
         .collect();
     // Answers only after the commit: the store syncs fully before append returns.
-    let appended = blocking(move || bank.append(&new).map_err(bank_error)).await?;
+    let appended = blocking(move || bank.append(&new).map_err(ApiError::from)).await?;
     let out: Vec<AppendedOut> = appended
         .iter()
         .map(|a| AppendedOut {
@@ -148,25 +142,24 @@ pub struct StatsQuery {
 }
 
 pub async fn stats(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     Query(query): Query<StatsQuery>,
 ) -> Result<Json<Value>, ApiError> {
-    let engine = Arc::clone(state.engine()?);
-    let bank = state.bank()?.clone();
+    let engine = Arc::clone(service.engine()?);
+    let bank = service.bank()?.clone();
     if let Some(id) = query.id {
-        let caption = blocking(move || bank.caption(id).map_err(bank_error)).await?;
+        let caption = blocking(move || bank.caption(id).map_err(ApiError::from)).await?;
         return match caption {
             Some(c) => Ok(Json(
                 json!({"id": c.id, "text": c.text, "tags": c.tags, "added_unix_ms": c.added_unix_ms}),
             )),
             None => Err(ApiError::new(
-                StatusCode::NOT_FOUND,
-                "not_found",
+                ErrorCode::NotFound,
                 format!("no caption with id {id} in the bank"),
             )),
         };
     }
-    let stats = blocking(move || bank.stats().map_err(bank_error)).await?;
+    let stats = blocking(move || bank.stats().map_err(ApiError::from)).await?;
     let models: Vec<Value> = stats
         .models
         .iter()
@@ -215,30 +208,38 @@ enum Among {
 }
 
 pub async fn neighbors(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     ApiJson(request): ApiJson<NeighborsRequest>,
 ) -> Result<Json<Value>, ApiError> {
-    let engine = state.engine()?;
+    let engine = service.engine()?;
     let model = engine.model(request.model.as_deref())?;
     if request.k == 0 || request.k > MAX_K {
-        return Err(ApiError::invalid(
+        return Err(Invalid::new(
             "k",
-            format!("k must be between 1 and {MAX_K}"),
-        ));
+            Problem::OutOfRange {
+                what: "k",
+                min: 1,
+                max: MAX_K as u64,
+            },
+        )
+        .into());
     }
     if let Some(ef) = request.ef_search {
-        if ef == 0 || ef > 10_000 {
-            return Err(ApiError::invalid(
+        if ef == 0 || ef > MAX_EF_SEARCH {
+            return Err(Invalid::new(
                 "ef_search",
-                "ef_search must be between 1 and 10000",
-            ));
+                Problem::OutOfRange {
+                    what: "ef_search",
+                    min: 1,
+                    max: MAX_EF_SEARCH as u64,
+                },
+            )
+            .into());
         }
     }
     let query: Vec<f32> = match (&request.text, &request.image, &request.vector) {
         (Some(text), None, None) => {
-            if text.trim().is_empty() {
-                return Err(ApiError::invalid("text", "the text must not be empty"));
-            }
+            service.limits().check_caption(text, "text")?;
             model.caption_vectors(std::slice::from_ref(text)).await?[0]
                 .vector
                 .clone()
@@ -252,58 +253,22 @@ pub async fn neighbors(
                 .1
                 .to_vec()
         }
-        (None, None, Some(vector)) => {
-            if vector.len() != model.dimension() {
-                return Err(ApiError::invalid(
-                    "vector",
-                    format!(
-                        "the vector has {} numbers, the model's dimension is {}",
-                        vector.len(),
-                        model.dimension()
-                    ),
-                ));
-            }
-            let mut v = vector.clone();
-            if v.iter().any(|x| !x.is_finite()) || v.iter().all(|x| *x == 0.0) {
-                return Err(ApiError::invalid(
-                    "vector",
-                    "the vector must be finite and not all zeros",
-                ));
-            }
-            crate::vectors::normalise(&mut v);
-            v
-        }
+        (None, None, Some(vector)) => query_vector(vector, model.dimension())?,
         _ => {
-            return Err(ApiError::invalid(
-                "text",
-                "give exactly one of `text`, `image` or `vector`",
-            ))
+            return Err(Invalid::new("text", Problem::OneOf("`text`, `image` or `vector`")).into())
         }
     };
     if request.among == Among::Images {
-        let store = Arc::clone(engine.store());
-        let digest = model.bundle.digest.clone();
-        let k = request.k;
-        let hits = blocking(move || {
-            let all = store.vectors(&digest).map_err(ApiError::internal)?;
-            let mut scored: Vec<(f32, String)> = all
-                .into_iter()
-                .map(|(id, v)| (dot(&query, &v), id))
-                .collect();
-            scored.sort_by(|a, b| b.0.total_cmp(&a.0).then_with(|| a.1.cmp(&b.1)));
-            scored.truncate(k);
-            Ok(scored)
-        })
-        .await?;
+        let hits = engine.nearest_images(model, query, request.k).await?;
         let neighbors: Vec<Value> = hits
             .iter()
-            .map(|(c, id)| json!({"id": id, "cosine": c}))
+            .map(|h| json!({"id": h.id, "cosine": h.cosine}))
             .collect();
         return Ok(Json(
             json!({"model": ModelRef::of(model), "answered": "exact", "ef_search": 0, "neighbors": neighbors}),
         ));
     }
-    let bank = model_bank(&state, model)?;
+    let bank = model_bank(&service, model)?;
     let mode = if request.exact {
         SearchMode::Exact
     } else {
@@ -315,7 +280,8 @@ pub async fn neighbors(
         tag: request.tag.clone(),
         mode,
     };
-    let answer: BankAnswer = blocking(move || bank.search(&query, &q).map_err(bank_error)).await?;
+    let answer: BankAnswer =
+        blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?;
     Ok(Json(json!({
         "model": ModelRef::of(model),
         "answered": answer.answered,

@@ -7,13 +7,13 @@ use axum::Json;
 use serde_json::{json, Value};
 
 use crate::server::error::ApiError;
-use crate::server::state::AppState;
+use crate::service::Service;
 
 pub async fn healthz() -> Json<Value> {
     Json(json!({"status": "ok"}))
 }
 
-pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+pub async fn readyz(State(state): State<Service>) -> Result<Json<Value>, ApiError> {
     let engine = state.engine()?;
     // Ready means every route answers: the caption bank's indexes are loaded too.
     state.bank()?;
@@ -21,7 +21,7 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiErr
     Ok(Json(json!({"status": "ready", "models": models})))
 }
 
-pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
+pub async fn metrics(State(state): State<Service>) -> impl IntoResponse {
     (
         [(
             header::CONTENT_TYPE,

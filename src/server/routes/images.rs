@@ -1,18 +1,21 @@
 //! `POST /v1/images`: registers images (raw body or JSON), idempotently.
 
+use std::sync::Arc;
+
 use axum::body::Bytes;
 use axum::extract::rejection::BytesRejection;
 use axum::extract::State;
-use axum::http::{header, HeaderMap, StatusCode};
+use axum::http::{header, HeaderMap};
 use axum::Json;
 use serde::{Deserialize, Serialize};
-use std::sync::Arc;
 
 use crate::encoders::{ImageSource, Registered};
-use crate::server::error::ApiError;
-use crate::server::image_ref::ImageRef;
-use crate::server::json::{body_too_large, json_rejection};
-use crate::server::state::AppState;
+use crate::intake::image_source::{sources, ImageRef};
+use crate::intake::limits::Limit;
+use crate::intake::validation::{Invalid, Problem};
+use crate::server::error::{ApiError, ErrorCode};
+use crate::server::json::{body_rejection, is_json, parse_json};
+use crate::service::Service;
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -45,19 +48,21 @@ impl From<Registered> for RegisteredOut {
     }
 }
 
+/// Media types taken as one raw image file.
+const RAW_IMAGE_TYPES: [&str; 4] = [
+    "image/png",
+    "image/jpeg",
+    "image/webp",
+    "application/octet-stream",
+];
+
 pub async fn register(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     headers: HeaderMap,
     body: Result<Bytes, BytesRejection>,
 ) -> Result<Json<RegisterResponse>, ApiError> {
-    let body = body.map_err(|rejection| {
-        if rejection.status() == StatusCode::PAYLOAD_TOO_LARGE {
-            body_too_large()
-        } else {
-            ApiError::new(StatusCode::BAD_REQUEST, "bad_json", rejection.body_text())
-        }
-    })?;
-    let engine = state.engine()?;
+    let body = body.map_err(body_rejection)?;
+    let engine = service.engine()?;
     let content_type = headers
         .get(header::CONTENT_TYPE)
         .and_then(|v| v.to_str().ok())
@@ -68,64 +73,44 @@ pub async fn register(
         .unwrap_or("")
         .trim()
         .to_ascii_lowercase();
-    let (sources, model_name) = match mime.as_str() {
-        "application/json" => {
-            let request: RegisterRequest = parse_json(&headers, body).await?;
-            if request.images.is_empty() {
-                return Err(ApiError::invalid("images", "give at least one image"));
-            }
-            let limit = state.limits().max_images;
-            if request.images.len() > limit {
-                return Err(ApiError::over_limit("images", "number of images", limit, "--max-images"));
-            }
-            let sources = request
-                .images
-                .iter()
-                .enumerate()
-                .map(|(i, r)| r.source(&format!("images[{i}]")).map(|s| (format!("images[{i}]"), s)))
-                .collect::<Result<Vec<_>, _>>()?;
-            (sources, request.model)
+    let (sources, fields, model_name) = if is_json(&headers) {
+        let request: RegisterRequest = parse_json(&body)?;
+        if request.images.is_empty() {
+            return Err(Invalid::new("images", Problem::Missing("image")).into());
         }
-        "image/png" | "image/jpeg" | "image/webp" | "application/octet-stream" => {
-            if body.is_empty() {
-                return Err(ApiError::invalid("body", "the body is empty; send the image file's bytes"));
-            }
-            (vec![("body".to_string(), ImageSource::Bytes(Arc::new(body.to_vec())))], None)
+        service
+            .limits()
+            .check(Limit::Images, request.images.len(), "images")?;
+        let fields = (0..request.images.len())
+            .map(|i| format!("images[{i}]"))
+            .collect();
+        (sources(&request.images, "images")?, fields, request.model)
+    } else if RAW_IMAGE_TYPES.contains(&mime.as_str()) {
+        if body.is_empty() {
+            return Err(Invalid::new("body", Problem::Blank("the image body")).into());
         }
-        _ => {
-            return Err(ApiError::new(
-                StatusCode::UNSUPPORTED_MEDIA_TYPE,
-                "unsupported_media_type",
-                format!(
-                    "Content-Type {content_type:?} is not taken here: send application/json, or an image as \
-                     image/png, image/jpeg, image/webp or application/octet-stream"
-                ),
-            ))
-        }
+        let source = ImageSource::Bytes(Arc::new(body.to_vec()));
+        (vec![source], vec!["body".to_string()], None)
+    } else {
+        return Err(ApiError::new(
+            ErrorCode::UnsupportedMediaType,
+            format!(
+                "Content-Type {content_type:?} is not taken here: send application/json, or an image as \
+                 image/png, image/jpeg, image/webp or application/octet-stream"
+            ),
+        ));
     };
     let model = engine.model(model_name.as_deref())?;
-    let registered =
-        futures::future::try_join_all(sources.into_iter().map(|(field, source)| async move {
+    let registered = futures::future::try_join_all(sources.into_iter().zip(fields).map(
+        |(source, field)| async move {
             engine
                 .register(source, Some(model))
                 .await
                 .map_err(|e| ApiError::from(e).at(field))
-        }))
-        .await?;
+        },
+    ))
+    .await?;
     Ok(Json(RegisterResponse {
         images: registered.into_iter().map(RegisteredOut::from).collect(),
     }))
-}
-
-/// Parses an already-read body through the same rejections as `ApiJson`.
-async fn parse_json<T: serde::de::DeserializeOwned>(
-    headers: &HeaderMap,
-    body: Bytes,
-) -> Result<T, ApiError> {
-    let mut request = axum::http::Request::new(axum::body::Body::from(body));
-    *request.headers_mut() = headers.clone();
-    match <axum::Json<T> as axum::extract::FromRequest<()>>::from_request(request, &()).await {
-        Ok(axum::Json(value)) => Ok(value),
-        Err(rejection) => Err(json_rejection(rejection)),
-    }
 }

@@ -6,9 +6,9 @@ use serde_json::{json, Value};
 
 use super::ModelRef;
 use crate::server::error::ApiError;
-use crate::server::state::AppState;
+use crate::service::Service;
 
-pub async fn list(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+pub async fn list(State(state): State<Service>) -> Result<Json<Value>, ApiError> {
     let engine = state.engine()?;
     let models: Vec<Value> = engine
         .models()

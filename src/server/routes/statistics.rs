@@ -12,12 +12,16 @@ use serde_json::Value;
 use super::ModelRef;
 use crate::encoders::offline::EngineProbeEncoder;
 use crate::encoders::{Engine, Model};
-use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeError, ProbeSet, RowIssue};
+use crate::intake::limits::Limit;
+use crate::intake::validation::{Invalid, Problem};
+use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
 use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
-use crate::server::state::AppState;
+use crate::service::maps::{valid_map_name, MAX_MAP_NAME};
+use crate::service::Service;
 use crate::stats::{
-    self, CalibrationOptions, CalibrationReport, DriftOptions, DriftReport, ProbeVectors,
+    self, CalibrationOptions, CalibrationReport, DriftOptions, DriftReport, MapBundle,
+    ProbeVectors, RewardMap,
 };
 
 #[derive(Deserialize)]
@@ -77,33 +81,27 @@ pub struct DriftResponse {
     report: DriftReport,
 }
 
-fn probe_error(e: ProbeError) -> ApiError {
-    match e {
-        ProbeError::Encoder { .. } => ApiError::internal(e),
-        other => ApiError::invalid("probe", other.to_string()),
-    }
-}
-
+/// Parses the rows and checks every image can be read at all (a path needs
+/// the server's image root) before any encoder work.
 fn parse_probe(
-    state: &AppState,
+    service: &Service,
+    engine: &Engine,
     rows: Vec<Value>,
     skip_bad: bool,
 ) -> Result<(ProbeSet, Vec<RowIssue>), ApiError> {
-    let limit = state.limits().max_probe_rows;
-    if rows.len() > limit {
-        return Err(ApiError::over_limit(
-            "probe",
-            "number of probe rows",
-            limit,
-            "--max-probe-rows",
-        ));
-    }
+    service
+        .limits()
+        .check(Limit::ProbeRows, rows.len(), "probe")?;
     let options = LoadOptions {
         skip_bad,
         check_files: false,
     };
-    let loaded =
-        ProbeSet::from_values(rows, Path::new(""), "request", &options).map_err(probe_error)?;
+    let loaded = ProbeSet::from_values(rows, Path::new(""), "request", &options)?;
+    for row in &loaded.set.rows {
+        engine
+            .check_source(&row.image)
+            .map_err(|e| ApiError::from(e).at(format!("probe[{}].image", row.line - 1)))?;
+    }
     Ok((loaded.set, loaded.skipped))
 }
 
@@ -127,30 +125,24 @@ async fn embed_with(
     let embedded =
         tokio::task::spawn_blocking(move || embed_probe(&set, &encoder, &options, &mut |_, _| {}))
             .await
-            .map_err(ApiError::internal)?
-            .map_err(probe_error)?;
+            .map_err(ApiError::internal)??;
     Ok((embedded.vectors, embedded.skipped))
 }
 
-fn stats_error(e: stats::StatsError) -> ApiError {
-    ApiError::invalid("options", e.to_string())
-}
-
 pub async fn calibration(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     ApiJson(request): ApiJson<CalibrationRequest>,
 ) -> Result<Json<CalibrationResponse>, ApiError> {
-    let engine = state.engine()?;
-    request.options.validate().map_err(stats_error)?;
+    let engine = service.engine()?;
+    request.options.validate()?;
     let model = engine.model(request.model.as_deref())?;
-    let (set, mut skipped) = parse_probe(&state, request.probe, request.skip_bad)?;
+    let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let (vectors, dropped) = embed_with(engine, model, Arc::new(set), request.skip_bad).await?;
     skipped.extend(dropped);
     let options = request.options;
     let report = tokio::task::spawn_blocking(move || stats::calibrate(&vectors, &options))
         .await
-        .map_err(ApiError::internal)?
-        .map_err(stats_error)?;
+        .map_err(ApiError::internal)??;
     Ok(Json(CalibrationResponse {
         model: ModelRef::of(model),
         skipped: skipped.iter().map(|s| s.to_string()).collect(),
@@ -159,11 +151,11 @@ pub async fn calibration(
 }
 
 pub async fn drift(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     ApiJson(request): ApiJson<DriftRequest>,
 ) -> Result<Json<DriftResponse>, ApiError> {
-    let engine = state.engine()?;
-    request.options.validate().map_err(stats_error)?;
+    let engine = service.engine()?;
+    request.options.validate()?;
     let from = engine
         .model(Some(&request.from))
         .map_err(|e| ApiError::from(e).at("from"))?;
@@ -171,14 +163,12 @@ pub async fn drift(
         .model(Some(&request.to))
         .map_err(|e| ApiError::from(e).at("to"))?;
     if let Some(save) = &request.save_map {
-        if !crate::server::state::valid_map_name(&save.name) {
-            return Err(ApiError::invalid(
-                "save_map.name",
-                "map names must match [A-Za-z0-9._-]+ (at most 64 characters)",
-            ));
+        if !valid_map_name(&save.name) {
+            let problem = Problem::MapName { max: MAX_MAP_NAME };
+            return Err(Invalid::new("save_map.name", problem).into());
         }
     }
-    let (set, mut skipped) = parse_probe(&state, request.probe, request.skip_bad)?;
+    let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
     let (a, dropped_a) = embed_with(engine, from, Arc::clone(&set), request.skip_bad).await?;
     let (b, dropped_b) = embed_with(engine, to, set, request.skip_bad).await?;
@@ -187,17 +177,19 @@ pub async fn drift(
     let options = request.options;
     let report = tokio::task::spawn_blocking(move || stats::drift(&a, &b, &options))
         .await
-        .map_err(ApiError::internal)?
-        .map_err(stats_error)?;
+        .map_err(ApiError::internal)??;
     let saved_map = match request.save_map {
         Some(save) => {
             let fit = match save.kind {
                 MapKind::Monotone => &report.continuity.monotone,
                 MapKind::Affine => &report.continuity.affine,
             };
-            state
-                .save_map(&save.name, fit.map.clone())
-                .map_err(ApiError::internal)?;
+            let map = RewardMap {
+                applies_to: map_bundle(to),
+                lands_on: map_bundle(from),
+                map: fit.map.clone(),
+            };
+            service.maps().save(&save.name, map)?;
             Some(save.name)
         }
         None => None,
@@ -209,4 +201,11 @@ pub async fn drift(
         saved_map,
         report,
     }))
+}
+
+fn map_bundle(model: &Model) -> MapBundle {
+    MapBundle {
+        id: model.id.clone(),
+        digest: model.bundle.digest.clone(),
+    }
 }

@@ -5,10 +5,12 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 
 use super::ModelRef;
+use crate::intake::image_source::{sources, ImageRef};
+use crate::intake::limits::Limit;
+use crate::intake::validation::{Invalid, Problem};
 use crate::server::error::ApiError;
-use crate::server::image_ref::ImageRef;
 use crate::server::json::ApiJson;
-use crate::server::state::AppState;
+use crate::service::Service;
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -42,56 +44,20 @@ struct TextVector {
 }
 
 pub async fn embed(
-    State(state): State<AppState>,
+    State(service): State<Service>,
     ApiJson(request): ApiJson<VectorsRequest>,
 ) -> Result<Json<VectorsResponse>, ApiError> {
-    let engine = state.engine()?;
-    let limits = state.limits();
+    let engine = service.engine()?;
+    let limits = service.limits();
     if request.images.is_empty() && request.texts.is_empty() {
-        return Err(ApiError::invalid(
-            "texts",
-            "give at least one image or text",
-        ));
+        return Err(Invalid::new("texts", Problem::Missing("image or text")).into());
     }
-    if request.images.len() > limits.max_images {
-        return Err(ApiError::over_limit(
-            "images",
-            "number of images",
-            limits.max_images,
-            "--max-images",
-        ));
-    }
-    if request.texts.len() > limits.max_captions {
-        return Err(ApiError::over_limit(
-            "texts",
-            "number of texts",
-            limits.max_captions,
-            "--max-captions",
-        ));
-    }
-    for (i, text) in request.texts.iter().enumerate() {
-        if text.trim().is_empty() {
-            return Err(ApiError::invalid(
-                format!("texts[{i}]"),
-                "texts must not be empty",
-            ));
-        }
-        if text.len() > limits.max_caption_bytes {
-            return Err(ApiError::over_limit(
-                format!("texts[{i}]"),
-                "text length in bytes",
-                limits.max_caption_bytes,
-                "--max-caption-bytes",
-            ));
-        }
+    limits.check(Limit::Images, request.images.len(), "images")?;
+    if !request.texts.is_empty() {
+        limits.check_captions(&request.texts, "texts")?;
     }
     let model = engine.model(request.model.as_deref())?;
-    let sources = request
-        .images
-        .iter()
-        .enumerate()
-        .map(|(i, r)| r.source(&format!("images[{i}]")))
-        .collect::<Result<Vec<_>, _>>()?;
+    let sources = sources(&request.images, "images")?;
     let images =
         futures::future::try_join_all(sources.iter().enumerate().map(|(i, source)| async move {
             engine

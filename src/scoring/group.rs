@@ -1,0 +1,168 @@
+//! Scoring one group from its vectors: cosines, rewards on the spec's scale,
+//! advantages against its baseline. Pure arithmetic; the vectors come from
+//! [`super::run`].
+
+use serde::Serialize;
+
+use super::advantages;
+use super::spec::RewardSpec;
+use crate::encoders::CaptionVector;
+use crate::vectors::dot;
+
+/// A sampled caption's cosine with its image, reward and advantage.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Sample {
+    pub cosine: f32,
+    pub reward: f32,
+    pub advantage: f32,
+    pub truncated: bool,
+}
+
+/// The greedy caption's cosine and reward (its reward is the greedy baseline).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Scored {
+    pub cosine: f32,
+    pub reward: f32,
+    pub truncated: bool,
+}
+
+/// One group's answer.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct GroupScores {
+    /// Content id of the group's image.
+    pub image: String,
+    pub samples: Vec<Sample>,
+    pub greedy: Option<Scored>,
+}
+
+/// The vectors of one group, as encoded.
+pub struct GroupVectors<'a> {
+    pub image: &'a [f32],
+    pub samples: &'a [std::sync::Arc<CaptionVector>],
+    pub references: &'a [std::sync::Arc<CaptionVector>],
+    pub greedy: Option<&'a CaptionVector>,
+}
+
+/// Rewards and advantages of one group. The groups were checked by
+/// [`super::check_groups`], so the baseline always has what it needs.
+pub fn score_group(spec: &RewardSpec, image_id: String, v: &GroupVectors<'_>) -> GroupScores {
+    let score_one = |caption: &[f32]| {
+        let cosine = dot(caption, v.image);
+        let reference = v
+            .references
+            .iter()
+            .map(|r| dot(caption, &r.vector))
+            .reduce(f32::max);
+        (
+            cosine,
+            spec.scale().reward(spec.on_scale(cosine), reference),
+        )
+    };
+    let scored: Vec<(f32, f32)> = v.samples.iter().map(|s| score_one(&s.vector)).collect();
+    let greedy = v.greedy.map(|g| {
+        let (cosine, reward) = score_one(&g.vector);
+        Scored {
+            cosine,
+            reward,
+            truncated: g.truncated,
+        }
+    });
+    let rewards: Vec<f32> = scored.iter().map(|(_, r)| *r).collect();
+    // Checked groups always have what their baseline needs; a group that does
+    // not is answered with its rewards as advantages rather than a panic.
+    let advantage = advantages(&rewards, spec.baseline(), greedy.as_ref().map(|g| g.reward))
+        .unwrap_or_else(|_| rewards.clone());
+    let samples = scored
+        .iter()
+        .zip(v.samples)
+        .zip(advantage)
+        .map(|(((cosine, reward), s), advantage)| Sample {
+            cosine: *cosine,
+            reward: *reward,
+            advantage,
+            truncated: s.truncated,
+        })
+        .collect();
+    GroupScores {
+        image: image_id,
+        samples,
+        greedy,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::sync::Arc;
+
+    use super::*;
+    use crate::scoring::{Baseline, Remap, Scale};
+
+    fn caption(v: [f32; 2]) -> Arc<CaptionVector> {
+        Arc::new(CaptionVector {
+            vector: v.to_vec(),
+            tokens: 3,
+            truncated: false,
+        })
+    }
+
+    #[derive(Debug)]
+    struct Halve;
+    impl Remap for Halve {
+        fn apply(&self, c: f32) -> f32 {
+            c / 2.0
+        }
+    }
+
+    #[test]
+    fn clip_s_with_mean_of_others_by_hand() {
+        // Image (1, 0); captions at cosines 0.8, 0.6, 0 (their first coordinate).
+        // CLIP-S, w = 2.5 (Hessel et al. 2021, eq. 1): 2.0, 1.5, 0.0.
+        // Mean of others (Luo 2020): b = (1.5 + 0)/2 = 0.75, (2 + 0)/2 = 1, (2 + 1.5)/2 = 1.75.
+        let spec =
+            RewardSpec::new(Scale::ClipS { weight: 2.5 }, Baseline::MeanOfOthers, None).unwrap();
+        let samples = [
+            caption([0.8, 0.6]),
+            caption([0.6, 0.8]),
+            caption([0.0, 1.0]),
+        ];
+        let out = score_group(
+            &spec,
+            "img".into(),
+            &GroupVectors {
+                image: &[1.0, 0.0],
+                samples: &samples,
+                references: &[],
+                greedy: None,
+            },
+        );
+        let want = [(2.0, 1.25), (1.5, 0.5), (0.0, -1.75)];
+        for (s, (reward, advantage)) in out.samples.iter().zip(want) {
+            assert!(
+                (s.reward - reward).abs() < 1e-6 && (s.advantage - advantage).abs() < 1e-6,
+                "{s:?}"
+            );
+        }
+    }
+
+    #[test]
+    fn remap_applies_before_the_scale_and_greedy_is_the_baseline() {
+        let spec = RewardSpec::new(Scale::Cosine, Baseline::Greedy, Some(Arc::new(Halve))).unwrap();
+        let samples = [caption([0.8, 0.6])];
+        let greedy = caption([0.6, 0.8]);
+        let out = score_group(
+            &spec,
+            "img".into(),
+            &GroupVectors {
+                image: &[1.0, 0.0],
+                samples: &samples,
+                references: &[],
+                greedy: Some(&greedy),
+            },
+        );
+        // cosine stays raw (0.8); reward 0.4; greedy reward 0.3; advantage 0.1.
+        assert!((out.samples[0].cosine - 0.8).abs() < 1e-6);
+        assert!((out.samples[0].reward - 0.4).abs() < 1e-6);
+        assert!((out.samples[0].advantage - 0.1).abs() < 1e-6);
+        assert!((out.greedy.unwrap().reward - 0.3).abs() < 1e-6);
+    }
+}
