@@ -333,6 +333,11 @@ impl CaptionBank {
         Ok((model, Some(report)))
     }
 
+    /// The limits and index settings the bank was opened with.
+    pub fn config(&self) -> &BankConfig {
+        &self.core.config
+    }
+
     /// The bank of a digest already loaded by [`Self::model`].
     pub fn loaded(&self, digest: &str) -> Option<Arc<ModelBank>> {
         read(&self.models).get(digest).cloned()

@@ -28,6 +28,8 @@ pub enum Command {
     Serve(ServeArgs),
     /// Check a bundle against its ONNX graphs and print its identity and digest.
     CheckBundle(CheckBundleArgs),
+    /// Rewards of sampled captions offline: JSON Lines of groups in, one JSON line of rewards per group out.
+    Score(ScoreArgs),
     /// Calibration of one bundle on a labelled probe set.
     Calibrate(CalibrateArgs),
     /// Drift between two bundle versions on a labelled probe set.
@@ -97,6 +99,68 @@ pub struct BankQueryArgs {
     /// Data folder holding the bank.
     #[arg(long, value_name = "DIR", default_value = "befit-data")]
     pub data_dir: PathBuf,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
+}
+
+/// How cosines become rewards, as `/v1/rewards` takes them.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum ScaleKind {
+    Cosine,
+    ClipS,
+    RefClipS,
+    Affine,
+}
+
+/// The baseline advantages are taken against.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum BaselineKind {
+    None,
+    MeanOfOthers,
+    Greedy,
+}
+
+#[derive(Debug, Args)]
+pub struct ScoreArgs {
+    /// Model bundle that scores.
+    #[arg(long, value_name = "DIR")]
+    pub bundle: PathBuf,
+    /// Groups, one per line, in the shape of a `/v1/rewards` group:
+    /// {"image": {"path": ...} | {"base64": ...}, "captions": [...], "references"?: [...], "greedy"?: "..."}.
+    #[arg(long, value_name = "FILE.jsonl")]
+    pub input: PathBuf,
+    /// Where the rewards go, one JSON line per input line (default: standard output).
+    #[arg(long, value_name = "FILE.jsonl")]
+    pub output: Option<PathBuf>,
+    /// Folder that image paths are relative to (default: the input file's folder).
+    #[arg(long, value_name = "DIR")]
+    pub image_root: Option<PathBuf>,
+    /// Reward scale.
+    #[arg(long, value_enum, default_value_t = ScaleKind::Cosine)]
+    pub scale: ScaleKind,
+    /// Weight w of clip-s and ref-clip-s.
+    #[arg(long, default_value_t = crate::scoring::scale::DEFAULT_CLIP_S_WEIGHT)]
+    pub weight: f32,
+    /// Slope of the affine scale.
+    #[arg(long, default_value_t = 1.0)]
+    pub affine_a: f32,
+    /// Offset of the affine scale.
+    #[arg(long, default_value_t = 0.0)]
+    pub affine_b: f32,
+    /// Baseline of the advantages.
+    #[arg(long, value_enum, default_value_t = BaselineKind::None)]
+    pub baseline: BaselineKind,
+    /// A reward map file (from `befit drift --save-map`) fitted for this bundle.
+    #[arg(long, value_name = "FILE")]
+    pub remap: Option<PathBuf>,
+    /// Write bad lines as {"line", "error"} and go on, instead of stopping at the first.
+    #[arg(long)]
+    pub skip_bad: bool,
+    /// Groups scored together (they share encoder batches).
+    #[arg(long, default_value_t = 256)]
+    pub chunk: usize,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
     #[command(flatten)]

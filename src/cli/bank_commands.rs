@@ -9,6 +9,7 @@ use super::probe_commands::OfflineModel;
 use crate::bank::import::import_jsonl;
 use crate::bank::progress::ImportBar;
 use crate::bank::{BankConfig, BankQuery, CaptionBank, SearchMode};
+use crate::service::data_dir::{DataDir, BANK_WRITE_ADVICE};
 use crate::vectors::Embedder;
 
 fn open_bank(data_dir: &std::path::Path) -> anyhow::Result<CaptionBank> {
@@ -20,6 +21,8 @@ pub fn import(a: BankImportArgs) -> anyhow::Result<ExitCode> {
     let total_bytes = std::fs::metadata(&a.from)
         .with_context(|| format!("reading {}", a.from.display()))?
         .len();
+    // A running server would never see what this writes: refuse its data folder.
+    let _lock = DataDir::new(&a.data_dir).lock("befit bank import", BANK_WRITE_ADVICE)?;
     let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
     let bank = open_bank(&a.data_dir)?;
     let (model_bank, _) = bank.model(&model.model.bundle.digest, model.model.dimension())?;

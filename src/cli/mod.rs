@@ -5,6 +5,7 @@
 pub mod args;
 mod bank_commands;
 mod probe_commands;
+mod score_command;
 mod serve;
 
 use std::ffi::OsString;
@@ -31,6 +32,7 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
     match cli.command {
         Command::Serve(a) => serve::serve(a),
         Command::CheckBundle(a) => serve::check_bundle(a),
+        Command::Score(a) => score_command::score(a),
         Command::Calibrate(a) => probe_commands::calibrate(a),
         Command::Drift(a) => probe_commands::drift(a),
         Command::Bank(BankCommand::Import(a)) => bank_commands::import(a),

@@ -46,6 +46,14 @@ impl OfflineModel {
         })
     }
 
+    /// The bundle's id and digest, as a reward map names it.
+    pub fn map_bundle(&self) -> stats::MapBundle {
+        stats::MapBundle {
+            id: self.model.id.clone(),
+            digest: self.model.bundle.digest.clone(),
+        }
+    }
+
     pub fn embedder(&self) -> ModelEmbedder {
         ModelEmbedder {
             model: Arc::clone(&self.model),
@@ -143,12 +151,18 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
     };
     options.validate()?;
     let set = load_probe(&a.probe, a.output.skip_bad)?;
-    let (from, to) = {
+    let (from, to, ends) = {
         let old = OfflineModel::open(&a.from, &a.runtime, &a.encoders)?;
         let from = embed(&old, &set, a.output.skip_bad)?;
+        let lands_on = old.map_bundle();
         drop(old);
         let new = OfflineModel::open(&a.to, &a.runtime, &a.encoders)?;
-        (from, embed(&new, &set, a.output.skip_bad)?)
+        let applies_to = new.map_bundle();
+        (
+            from,
+            embed(&new, &set, a.output.skip_bad)?,
+            (applies_to, lands_on),
+        )
     };
     let report = stats::drift(&from, &to, &options)?;
     if let Some(path) = &a.output.report {
@@ -164,7 +178,13 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
         } else {
             &report.continuity.monotone
         };
-        write_text(path, &serde_json::to_string_pretty(&fit.map)?)?;
+        let (applies_to, lands_on) = ends;
+        let map = stats::RewardMap {
+            applies_to,
+            lands_on,
+            map: fit.map.clone(),
+        };
+        write_text(path, &serde_json::to_string_pretty(&map)?)?;
         eprintln!(
             "befit: reward map written to {} (serve it with --map NAME={})",
             path.display(),

@@ -18,4 +18,4 @@ pub use baseline::{advantages, Baseline, BaselineError};
 pub use group::{score_group, GroupScores, GroupVectors, Sample, Scored};
 pub use run::{score_groups, ScoreError};
 pub use scale::{Scale, ScaleError};
-pub use spec::{check_groups, GroupJson, Remap, RewardGroup, RewardSpec};
+pub use spec::{check_group, check_groups, GroupJson, Remap, RewardGroup, RewardSpec};

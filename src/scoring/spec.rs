@@ -122,7 +122,8 @@ pub fn check_groups(
     Ok(())
 }
 
-fn check_group(
+/// One group's checks; `at` (say `groups[3]`) prefixes its fields.
+pub fn check_group(
     group: &RewardGroup,
     spec: &RewardSpec,
     limits: &Limits,

@@ -12,3 +12,4 @@ mod http_errors;
 mod http_rewards;
 mod http_statistics;
 mod parity;
+mod seams;
