@@ -9,7 +9,7 @@ VENV := $(CACHE)/venv
 VENV_PY := $(VENV)/bin/python
 BIN := target/release/befit
 ADDR ?= 127.0.0.1:7878
-DATA_DIR ?= $(CACHE)/serve-data
+DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 

@@ -80,7 +80,8 @@ pub struct SceneSpec {
 }
 
 impl SceneSpec {
-    /// About five captions per scene (as in COCO), moderate spread.
+    /// About five captions per scene (several captions per scene, as a captioning
+    /// corpus has; the number is a choice of ours), moderate spread.
     pub fn blocks_like(n: usize) -> Self {
         Self {
             scenes: (n / 5).max(1),

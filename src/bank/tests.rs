@@ -28,7 +28,7 @@ fn captions_file(dir: &Path, n: usize) -> PathBuf {
     let lines: Vec<String> = (0..n)
         .map(|i| match i % 3 {
             0 => serde_json::json!({"text": format!("scene{} caption number {i}", i / 4)}).to_string(),
-            1 => serde_json::json!({"text": format!("scene{} caption number {i}", i / 4), "tag": "coco", "extra": 1}).to_string(),
+            1 => serde_json::json!({"text": format!("scene{} caption number {i}", i / 4), "tag": "tabletop", "extra": 1}).to_string(),
             _ => serde_json::json!(format!("scene{} caption number {i}", i / 4)).to_string(),
         })
         .collect();
@@ -116,7 +116,7 @@ fn importing_twice_gives_the_same_bank_and_embeds_nothing_the_second_time() {
     assert_eq!(once.len(), 700);
     // Lines without their own tag get the import's.
     assert_eq!(once[0].2, vec!["mine".to_string()]);
-    assert_eq!(once[1].2, vec!["coco".to_string()]);
+    assert_eq!(once[1].2, vec!["tabletop".to_string()]);
 
     let second = import_jsonl(&model, &embedder, &file, Some("mine"), 100, &mut |_| {}).unwrap();
     assert_eq!((second.added, second.present), (0, 700));

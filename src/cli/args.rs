@@ -9,6 +9,7 @@ use clap::{Args, Parser, Subcommand};
 use crate::batching::{DEFAULT_MAX_BATCH, DEFAULT_MAX_WAIT_MICROS, DEFAULT_QUEUE_DEPTH};
 use crate::intake::image_decode::DEFAULT_MAX_PIXELS;
 use crate::intake::limits::*;
+use crate::service::data_dir::DEFAULT_DATA_DIR;
 use crate::store::memory::{DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
 
 /// How well does a caption fit an image? Rewards for training loops.
@@ -59,7 +60,7 @@ pub struct BankImportArgs {
     #[arg(long)]
     pub tag: Option<String>,
     /// Data folder holding the bank (the one `befit serve --data-dir` uses).
-    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,
     /// Captions embedded and committed together.
     #[arg(long, default_value_t = crate::bank::import::DEFAULT_IMPORT_BATCH)]
@@ -97,7 +98,7 @@ pub struct BankQueryArgs {
     #[arg(long)]
     pub json: bool,
     /// Data folder holding the bank.
-    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
@@ -216,7 +217,7 @@ pub struct ServeArgs {
     #[arg(long, default_value = "127.0.0.1:7878")]
     pub listen: SocketAddr,
     /// Folder for the image store and the caption bank (created if missing).
-    #[arg(long, value_name = "DIR", default_value = "befit-data")]
+    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,
     /// Folder under which requests may name images by relative path.
     #[arg(long, value_name = "DIR")]

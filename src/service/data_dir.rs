@@ -13,6 +13,10 @@ use std::path::{Path, PathBuf};
 
 use crate::bank::{BANK_FILE, INDEX_DIR};
 
+/// The data folder when none is given: relative to where befit runs (the
+/// Makefile's `make serve` uses the same one), ignored by git.
+pub const DEFAULT_DATA_DIR: &str = "befit-data";
+
 /// File name of the SQLite image store.
 pub const IMAGES_FILE: &str = "images.sqlite";
 /// Folder of saved reward maps, one `NAME.json` each.

@@ -3,6 +3,7 @@
 //!
 //! - [`data_dir`]: every file of the data folder, and its exclusive lock.
 //! - [`maps`]: the reward maps the server knows, each tied to its bundle.
+//! - [`backfill`]: embedding the bank's captions for a newly loaded bundle.
 //!
 //! [`Service::open`] takes the data folder's lock and opens the image store,
 //! the caption bank and the maps; [`Service::ready_with`] (or, in
@@ -10,6 +11,7 @@
 //! [`Running`] owns the background work, the bank's dump timer and the
 //! final dump, and stops it when stopped or dropped.
 
+pub mod backfill;
 pub mod data_dir;
 pub mod maps;
 
@@ -103,6 +105,7 @@ struct Shared {
     limits: Limits,
     metrics: Arc<Registry>,
     maps: MapRegistry,
+    backfills: backfill::Backfills,
     data_dir: DataDir,
     _lock: DataDirLock,
 }
@@ -134,6 +137,7 @@ impl Service {
             limits: config.limits.clone(),
             metrics,
             maps,
+            backfills: backfill::Backfills::default(),
             data_dir,
             _lock: lock,
         };
@@ -196,6 +200,28 @@ impl Service {
         &self.shared.data_dir
     }
 
+    /// Progress of embedding the bank's captions for newly loaded bundles.
+    pub fn backfills(&self) -> &backfill::Backfills {
+        &self.shared.backfills
+    }
+
+    /// Embeds the bank's captions that each loaded bundle has no vector for
+    /// (blocking; searches answer meanwhile, marked partial).
+    pub fn backfill(&self, runtime: tokio::runtime::Handle) -> Result<(), StartError> {
+        let (Ok(engine), Ok(bank)) = (self.engine(), self.bank()) else {
+            return Ok(());
+        };
+        for model in engine.models() {
+            self.shared.backfills.run(
+                bank,
+                model,
+                runtime.clone(),
+                self.shared.limits.max_pixels,
+            )?;
+        }
+        Ok(())
+    }
+
     /// Writes the bank's index dumps (blocking); nothing to do before it is loaded.
     pub fn dump_bank(&self) -> Result<(), BankError> {
         if let Some(bank) = self.shared.bank.get() {
@@ -234,9 +260,11 @@ impl Running {
         let service = Service::open(&config, Arc::clone(&metrics))?;
         let loading = {
             let service = service.clone();
+            let runtime = tokio::runtime::Handle::current();
             tokio::task::spawn_blocking(move || {
                 let models = load_bundles(&config.bundles, env, &config.models, &metrics)?;
-                service.ready_with(models)
+                service.ready_with(models)?;
+                service.backfill(runtime)
             })
         };
         let dumper = tokio::spawn(dump_every(service.clone(), config.bank_dump_every));
@@ -265,8 +293,10 @@ impl Running {
         }
     }
 
-    /// Waits for loading to end, stops the timer and writes the last dump.
+    /// Stops the background embedding after its batch, waits for loading to
+    /// end, stops the timer and writes the last dump.
     pub async fn stop(mut self) {
+        self.service.backfills().stop();
         if let Some(loading) = self.loading.take() {
             let _ = loading.await;
         }

@@ -147,6 +147,7 @@ pub async fn stats(
 ) -> Result<Json<Value>, ApiError> {
     let engine = Arc::clone(service.engine()?);
     let bank = service.bank()?.clone();
+    let backfills = service.backfills();
     if let Some(id) = query.id {
         let caption = blocking(move || bank.caption(id).map_err(ApiError::from)).await?;
         return match caption {
@@ -169,7 +170,7 @@ pub async fn stats(
                 .iter()
                 .find(|m| m.bundle.digest == index.digest)
                 .map(|m| ModelRef::of(m));
-            json!({"model": model, "index": index})
+            json!({"model": model, "index": index, "backfill": backfills.progress(&index.digest)})
         })
         .collect();
     let tags: serde_json::Map<String, Value> = stats
@@ -286,6 +287,7 @@ pub async fn neighbors(
         "model": ModelRef::of(model),
         "answered": answer.answered,
         "ef_search": answer.ef_search,
+        "partial": service.backfills().partial(&model.bundle.digest),
         "neighbors": answer.hits,
     })))
 }
