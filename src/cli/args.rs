@@ -46,6 +46,8 @@ pub enum BankCommand {
     Import(BankImportArgs),
     /// The captions nearest an image or a text.
     Query(BankQueryArgs),
+    /// Embed, for a bundle, every bank caption it has no vector for (after a retrain).
+    EmbedMissing(BankEmbedMissingArgs),
 }
 
 #[derive(Debug, Args)]
@@ -59,6 +61,23 @@ pub struct BankImportArgs {
     /// Tag for lines without their own.
     #[arg(long)]
     pub tag: Option<String>,
+    /// Data folder holding the bank (the one `befit serve --data-dir` uses).
+    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
+    pub data_dir: PathBuf,
+    /// Captions embedded and committed together.
+    #[arg(long, default_value_t = crate::bank::import::DEFAULT_IMPORT_BATCH)]
+    pub batch_size: usize,
+    #[command(flatten)]
+    pub runtime: RuntimeArgs,
+    #[command(flatten)]
+    pub encoders: EncoderArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct BankEmbedMissingArgs {
+    /// Model bundle whose text encoder embeds the captions.
+    #[arg(long, value_name = "DIR")]
+    pub bundle: PathBuf,
     /// Data folder holding the bank (the one `befit serve --data-dir` uses).
     #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,

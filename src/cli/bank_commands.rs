@@ -4,8 +4,8 @@ use std::process::ExitCode;
 
 use anyhow::{bail, Context};
 
-use super::args::{BankImportArgs, BankQueryArgs};
-use super::probe_commands::OfflineModel;
+use super::args::{BankEmbedMissingArgs, BankImportArgs, BankQueryArgs};
+use super::probe_commands::{progress_bar, OfflineModel};
 use crate::bank::import::import_jsonl;
 use crate::bank::progress::ImportBar;
 use crate::bank::{BankConfig, BankQuery, CaptionBank, SearchMode};
@@ -100,5 +100,36 @@ pub fn query(a: BankQueryArgs) -> anyhow::Result<ExitCode> {
             );
         }
     }
+    Ok(ExitCode::SUCCESS)
+}
+
+pub fn embed_missing(a: BankEmbedMissingArgs) -> anyhow::Result<ExitCode> {
+    let _lock = DataDir::new(&a.data_dir).lock("befit bank embed-missing", BANK_WRITE_ADVICE)?;
+    let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
+    let bank = open_bank(&a.data_dir)?;
+    let digest = &model.model.bundle.digest;
+    let (model_bank, _) = bank.model(digest, model.model.dimension())?;
+    let missing = crate::service::backfill::missing_captions(&bank, digest)?;
+    let bar = progress_bar("embedding");
+    bar.set_length(missing);
+    let embedded =
+        crate::bank::embed_missing(&model_bank, &model.embedder(), a.batch_size, &mut |n| {
+            bar.set_position(n)
+        });
+    bar.finish_and_clear();
+    let embedded = match embedded {
+        Ok(n) => n,
+        Err(e) => {
+            let _ = bank.dump();
+            return Err(e).context("embedding captions (what was committed is kept; run the same command again to carry on)");
+        }
+    };
+    bank.dump().context("writing the bank index")?;
+    println!(
+        "{}",
+        serde_json::to_string_pretty(
+            &serde_json::json!({"model": model.model.id, "embedded": embedded})
+        )?
+    );
     Ok(ExitCode::SUCCESS)
 }

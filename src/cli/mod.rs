@@ -37,6 +37,7 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Command::Drift(a) => probe_commands::drift(a),
         Command::Bank(BankCommand::Import(a)) => bank_commands::import(a),
         Command::Bank(BankCommand::Query(a)) => bank_commands::query(a),
+        Command::Bank(BankCommand::EmbedMissing(a)) => bank_commands::embed_missing(a),
     }
 }
 

@@ -164,7 +164,14 @@ fn bank_import_refuses_a_data_folder_a_server_holds() {
 #[tokio::test(flavor = "multi_thread")]
 async fn images_registered_after_a_search_are_found_among_images() {
     let state = state();
-    let register = |path: &str| json!({"images": [{"path": path}], "model": "blocks@v1"});
+    // The test models are shared, and so is their memory cache of image vectors: bytes no
+    // other test sends (a PNG with bytes after its end chunk, which decoders ignore) make
+    // sure these images go through this service's store.
+    let register = |path: &str| {
+        let mut bytes = read(probe_dir().join(path));
+        bytes.extend_from_slice(b"among-images");
+        json!({"images": [{"base64": b64(&bytes)}], "model": "blocks@v1"})
+    };
     let (_, first) = post_json(&state, "/v1/images", &register("images/00000.png")).await;
     let ask = |id: &Value| json!({"image": {"id": id}, "k": 5, "among": "images"});
     let id0 = &first["images"][0]["id"];
@@ -280,4 +287,81 @@ async fn offline_scores_are_the_routes_scores() {
             }
         }
     }
+}
+
+const SCENE_CAPTIONS: [&str; 5] = [
+    "a red ring left of a blue cube",
+    "a small green circle",
+    "the big yellow square is below the big violet cross",
+    "two blue triangles on a table",
+    "a violet ring above a red square",
+];
+
+#[tokio::test(flavor = "multi_thread")]
+async fn a_new_bundle_embeds_the_banks_captions_at_start() {
+    let config = config(Limits::default());
+    {
+        let old = ready(&config, &["blocks-v1"]);
+        let (status, r) = post_json(&old, "/v1/bank", &json!({"captions": SCENE_CAPTIONS})).await;
+        assert_eq!(status, 200, "{r}");
+        old.dump_bank().unwrap();
+    }
+    let new = ready(&config, &["blocks-v2"]);
+    let ask = json!({"text": "a red ring", "k": 3});
+    let (_, before) = post_json(&new, "/v1/neighbors", &ask).await;
+    // blocks-v2 has seen none of the captions yet.
+    assert_eq!(before["neighbors"].as_array().unwrap().len(), 0, "{before}");
+    let runtime = tokio::runtime::Handle::current();
+    let filler = new.clone();
+    tokio::task::spawn_blocking(move || filler.backfill(runtime))
+        .await
+        .unwrap()
+        .unwrap();
+    let (status, _, stats) = call(&new, "GET", "/v1/bank", "", vec![]).await;
+    assert_eq!(status, 200, "{stats}");
+    let backfill = &stats["models"][0]["backfill"];
+    assert_eq!(backfill["phase"], "done", "{stats}");
+    assert_eq!(
+        (backfill["missing"].as_u64(), backfill["embedded"].as_u64()),
+        (Some(5), Some(5))
+    );
+    let (_, after) = post_json(&new, "/v1/neighbors", &ask).await;
+    assert_eq!(after["neighbors"].as_array().unwrap().len(), 3, "{after}");
+    assert_eq!(after["partial"], false);
+}
+
+#[test]
+fn embed_missing_on_the_command_line_fills_a_second_bundle_once() {
+    let data = scratch_dir("embed-missing");
+    let captions = data.join("captions.jsonl");
+    let lines: String = SCENE_CAPTIONS
+        .iter()
+        .map(|c| format!("\"{c}\"\n"))
+        .collect();
+    std::fs::write(&captions, lines).unwrap();
+    let befit = |args: &[&str], bundle: &str| {
+        let out = Command::new(env!("CARGO_BIN_EXE_befit"))
+            .args(["bank"])
+            .args(args)
+            .arg("--bundle")
+            .arg(bundle_dir(bundle))
+            .arg("--data-dir")
+            .arg(data.join("d"))
+            .arg("--ort-lib")
+            .arg(ort_lib())
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        serde_json::from_slice::<Value>(&out.stdout).unwrap()
+    };
+    let from = captions.to_str().unwrap();
+    assert_eq!(befit(&["import", "--from", from], "blocks-v1")["added"], 5);
+    assert_eq!(befit(&["embed-missing"], "blocks-v2")["embedded"], 5);
+    // Nothing is left to do the second time, and blocks-v1 never missed any.
+    assert_eq!(befit(&["embed-missing"], "blocks-v2")["embedded"], 0);
+    assert_eq!(befit(&["embed-missing"], "blocks-v1")["embedded"], 0);
 }
