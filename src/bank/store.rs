@@ -451,7 +451,7 @@ mod tests {
         let rows = [
             StoreRow {
                 text: "a red cube",
-                tag: Some("tabletop"),
+                tag: Some("blocks"),
                 vector: Some(&v),
             },
             StoreRow {
@@ -488,7 +488,7 @@ mod tests {
         );
 
         let c = store.caption_by_text("a red cube").unwrap().unwrap();
-        assert_eq!(c.tags, vec!["tabletop".to_string(), "mine".to_string()]);
+        assert_eq!(c.tags, vec!["blocks".to_string(), "mine".to_string()]);
         assert_eq!(
             store.has_vector("d1", &["a red cube", "other"]).unwrap(),
             vec![true, false]
