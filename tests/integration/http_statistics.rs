@@ -5,14 +5,6 @@ use serde_json::{json, Value};
 
 use crate::util::*;
 
-fn probe_json(n: usize) -> Vec<Value> {
-    let text = std::fs::read_to_string(probe_dir().join("probe.jsonl")).unwrap();
-    text.lines()
-        .take(n)
-        .map(|l| serde_json::from_str(l).unwrap())
-        .collect()
-}
-
 #[tokio::test(flavor = "multi_thread")]
 async fn a_bundle_against_itself_has_not_drifted() {
     // With the caption cache on, both sides get the very same vectors; without it, other tests'

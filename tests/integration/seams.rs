@@ -11,14 +11,6 @@ use serde_json::{json, Value};
 
 use crate::util::*;
 
-fn probe_json(n: usize) -> Vec<Value> {
-    let text = std::fs::read_to_string(probe_dir().join("probe.jsonl")).unwrap();
-    text.lines()
-        .take(n)
-        .map(|l| serde_json::from_str(l).unwrap())
-        .collect()
-}
-
 #[tokio::test(flavor = "multi_thread")]
 async fn a_map_is_refused_on_a_model_it_was_not_fitted_for() {
     let state = state_with(&["blocks-v1", "blocks-v2"], Limits::default());
@@ -124,34 +116,27 @@ fn bank_import_refuses_a_data_folder_a_server_holds() {
     let service = unready(&config);
     let captions = scratch_dir("import").join("captions.jsonl");
     std::fs::write(&captions, "\"a red ring left of a blue cube\"\n").unwrap();
-    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
-        .args(["bank", "import", "--bundle"])
-        .arg(bundle_dir("blocks-v1"))
-        .arg("--from")
-        .arg(&captions)
-        .arg("--data-dir")
-        .arg(&config.data_dir)
-        .arg("--ort-lib")
-        .arg(ort_lib())
-        .output()
-        .unwrap();
+    let import = || {
+        Command::new(env!("CARGO_BIN_EXE_befit"))
+            .args(["bank", "import", "--bundle"])
+            .arg(bundle_dir("blocks-v1"))
+            .arg("--from")
+            .arg(&captions)
+            .arg("--data-dir")
+            .arg(&config.data_dir)
+            .arg("--ort-lib")
+            .arg(ort_lib())
+            .output()
+            .unwrap()
+    };
+    let out = import();
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(!out.status.success(), "{stderr}");
     assert!(stderr.contains("befit serve (process "), "{stderr}");
     assert!(stderr.contains("POST /v1/bank"), "{stderr}");
     drop(service);
     // Released (as when the server stops, or is killed): the import goes through.
-    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
-        .args(["bank", "import", "--bundle"])
-        .arg(bundle_dir("blocks-v1"))
-        .arg("--from")
-        .arg(&captions)
-        .arg("--data-dir")
-        .arg(&config.data_dir)
-        .arg("--ort-lib")
-        .arg(ort_lib())
-        .output()
-        .unwrap();
+    let out = import();
     assert!(
         out.status.success(),
         "{}",

@@ -178,6 +178,15 @@ pub struct Contrast {
     pub from: usize,
 }
 
+/// The first `n` rows of the bundled probe set, as JSON.
+pub fn probe_json(n: usize) -> Vec<Value> {
+    let text = std::fs::read_to_string(probe_dir().join("probe.jsonl")).unwrap();
+    text.lines()
+        .take(n)
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
 pub fn probe_rows(file: &str) -> Vec<ProbeRow> {
     let text = std::fs::read_to_string(probe_dir().join(file)).unwrap();
     text.lines()
