@@ -101,9 +101,9 @@ fn importing_twice_gives_the_same_bank_and_embeds_nothing_the_second_time() {
         inner: SceneEmbedder::new(DIM, 200),
         embedded: AtomicUsize::new(0),
     };
-    let mut calls = 0;
-    let first = import_jsonl(&model, &embedder, &file, Some("mine"), 100, &mut |_| {
-        calls += 1
+    let mut seen: Vec<(u64, u64, u64, u64)> = Vec::new();
+    let first = import_jsonl(&model, &embedder, &file, Some("mine"), 100, &mut |p| {
+        seen.push((p.lines, p.added, p.bytes_read, p.total_bytes))
     })
     .unwrap();
     assert_eq!(
@@ -111,7 +111,13 @@ fn importing_twice_gives_the_same_bank_and_embeds_nothing_the_second_time() {
         (700, 700, 0, 0)
     );
     assert_eq!(first.batches, 7);
-    assert!(calls >= 7);
+    // One report after each committed batch of 100 lines, and a last one at the end of the file.
+    let counts: Vec<(u64, u64)> = seen.iter().map(|s| (s.0, s.1)).collect();
+    let mut want: Vec<(u64, u64)> = (1..=7).map(|b| (100 * b, 100 * b)).collect();
+    want.push((700, 700));
+    assert_eq!(counts, want);
+    let size = std::fs::metadata(&file).unwrap().len();
+    assert_eq!(seen.last().map(|s| (s.2, s.3)), Some((size, size)));
     let once = snapshot(&bank, &model);
     assert_eq!(once.len(), 700);
     // Lines without their own tag get the import's.
