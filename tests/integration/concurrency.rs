@@ -91,6 +91,18 @@ async fn concurrent_mixed_batches_match_sequential_singles() {
     // Batched and single runs of the same graph differ only by float summation order (padding is
     // masked), far below the gap between different captions of one image (~1e-2 and more).
     assert!(worst < 1e-5, "largest difference {worst}");
+    // Every request was counted once under its matched route: one per caption sequentially,
+    // then 2 x 32 concurrent ones.
+    let sequential: usize = expected.iter().map(Vec::len).sum();
     let runs = state.metrics().render();
-    assert!(runs.contains("befit_encoder_batch_size"), "{runs}");
+    let counted = runs
+        .lines()
+        .find(|l| {
+            l.starts_with("befit_http_requests_total{")
+                && l.contains(r#"route="/v1/rewards""#)
+                && l.contains(r#"status="200""#)
+        })
+        .and_then(|l| l.rsplit(' ').next())
+        .and_then(|n| n.parse::<usize>().ok());
+    assert_eq!(counted, Some(sequential + 64), "{runs}");
 }
