@@ -352,7 +352,28 @@ async fn every_error_row_has_its_status_and_a_useful_message() {
     )
     .await;
     assert_eq!(status, 200, "{ok}");
-    assert!(ok["groups"][0]["samples"][0]["cosine"].as_f64().unwrap() > 0.0);
+    // The same cosine as the dot product of the two unit vectors /v1/vectors gives, summed here.
+    let (status, v) = post_json(
+        s,
+        "/v1/vectors",
+        &json!({"images": [good_image], "texts": [row.captions[0]]}),
+    )
+    .await;
+    assert_eq!(status, 200, "{v}");
+    let numbers = |x: &Value| -> Vec<f64> {
+        x.as_array()
+            .unwrap()
+            .iter()
+            .map(|n| n.as_f64().unwrap())
+            .collect()
+    };
+    let by_hand: f64 = numbers(&v["images"][0]["vector"])
+        .iter()
+        .zip(numbers(&v["texts"][0]["vector"]))
+        .map(|(a, b)| a * b)
+        .sum();
+    let cosine = ok["groups"][0]["samples"][0]["cosine"].as_f64().unwrap();
+    assert!((cosine - by_hand).abs() < 1e-5, "{cosine} vs {by_hand}");
 }
 
 #[tokio::test(flavor = "multi_thread")]
