@@ -268,6 +268,16 @@ pub fn b64(bytes: &[u8]) -> String {
     base64::engine::general_purpose::STANDARD.encode(bytes)
 }
 
+/// Cosine of two vectors in f64, computed here rather than with befit's own function, so an error
+/// in `befit::vectors::cosine` cannot hide one elsewhere: `sum(a b) / (|a| |b|)`.
 pub fn cosine(a: &[f32], b: &[f32]) -> f64 {
-    befit::vectors::cosine(a, b) as f64
+    assert_eq!(a.len(), b.len());
+    let (mut ab, mut aa, mut bb) = (0f64, 0f64, 0f64);
+    for (&x, &y) in a.iter().zip(b) {
+        let (x, y) = (f64::from(x), f64::from(y));
+        ab += x * y;
+        aa += x * x;
+        bb += y * y;
+    }
+    ab / (aa.sqrt() * bb.sqrt())
 }
