@@ -3,7 +3,7 @@
 //! append that returned; the parent kills it mid-stream, reopens the bank
 //! and checks that every announced caption is there, in the store and the
 //! index, and that SQLite's integrity check passes. (The same test against
-//! the HTTP server belongs with the routes.)
+//! the real binary over HTTP is in `tests/integration/bank.rs`.)
 
 use std::io::{BufRead, BufReader};
 use std::process::{Command, Stdio};
@@ -24,13 +24,11 @@ fn caption(e: &SceneEmbedder, i: usize) -> NewCaption {
     }
 }
 
-/// The child: appends forever, one line per acknowledged append.
-#[test]
-fn bank_crash_child() {
-    let Some(dir) = std::env::var_os(CHILD_ENV) else {
-        return;
-    };
-    let bank = CaptionBank::open(std::path::Path::new(&dir), BankConfig::default()).unwrap();
+/// The child's work: appends forever, printing one line per append that returned, until killed.
+/// Not a test of its own (one that `cargo test` would run and pass without doing anything): the
+/// crash test below runs it, in a copy of this test binary started with `CHILD_ENV` set.
+fn append_until_killed(dir: &std::path::Path) -> ! {
+    let bank = CaptionBank::open(dir, BankConfig::default()).unwrap();
     let (model, _) = bank.model(DIGEST, DIM).unwrap();
     let e = SceneEmbedder::new(DIM, 97);
     for batch in 0.. {
@@ -42,15 +40,20 @@ fn bank_crash_child() {
             bank.dump().unwrap();
         }
     }
+    unreachable!("the batch counter does not end")
 }
 
 #[test]
 fn every_acknowledged_append_survives_sigkill() {
+    if let Some(dir) = std::env::var_os(CHILD_ENV) {
+        append_until_killed(std::path::Path::new(&dir));
+    }
     let dir = tempfile::tempdir().unwrap();
+    // This same test, in a child process that sees CHILD_ENV and appends until it is killed.
     let mut child = Command::new(std::env::current_exe().unwrap())
         .args([
             "--exact",
-            "bank_crash_child",
+            "every_acknowledged_append_survives_sigkill",
             "--nocapture",
             "--test-threads",
             "1",
@@ -78,7 +81,13 @@ fn every_acknowledged_append_survives_sigkill() {
             break;
         }
     }
-    child.wait().unwrap();
+    // Killed by the signal (9, SIGKILL), not ended some other way before it.
+    let status = child.wait().unwrap();
+    assert_eq!(
+        std::os::unix::process::ExitStatusExt::signal(&status),
+        Some(9),
+        "{status}"
+    );
     assert_eq!(acked.len(), 40);
 
     let bank = CaptionBank::open(dir.path(), BankConfig::default()).unwrap();
