@@ -104,11 +104,13 @@ fn index_recall_and_what_the_nearest_captions_say() {
     let any_rate = any as f64 / rows.len() as f64;
     eprintln!("probe bank: recall@10 (graph vs exact) {recall:.4}; own captions among the 5 nearest {own_rate:.3}; images with one of their own among the 5 nearest {any_rate:.3}");
     assert!(recall >= 0.98, "recall@10 {recall}");
+    // Measured with blocks-v1: 0.962 and 0.715. The floors sit below that by the few images whose
+    // near-tied captions a different CPU's float rounding could reorder, and far above chance.
     assert!(
-        any_rate >= 0.8,
+        any_rate >= 0.9,
         "images with an own caption in the nearest 5: {any_rate}"
     );
-    assert!(own_rate >= 0.3, "own-caption rate {own_rate}");
+    assert!(own_rate >= 0.6, "own-caption rate {own_rate}");
 }
 
 #[tokio::test(flavor = "multi_thread")]
@@ -229,6 +231,9 @@ fn every_acknowledged_append_survives_sigkill() {
     let client = reqwest::blocking::Client::new();
     let url = format!("{}/v1/bank", server.url);
     let acked = Arc::new(std::sync::Mutex::new(Vec::<(u64, String, u64)>::new()));
+    // A rendezvous channel: the writer waits after each acknowledged append until the test has
+    // taken note of it, so the two move in step.
+    let (announce, announced) = std::sync::mpsc::sync_channel::<u64>(0);
     let writer = {
         let acked = Arc::clone(&acked);
         std::thread::spawn(move || {
@@ -247,26 +252,31 @@ fn every_acknowledged_append_survives_sigkill() {
                         for (c, t) in body["captions"].as_array().unwrap().iter().zip(&texts) {
                             a.push((c["id"].as_u64().unwrap(), t.clone(), i));
                         }
+                        drop(a);
+                        // After the kill nobody listens; the next request then fails.
+                        announce.send(i).ok();
                     }
                     _ => return,
                 }
             }
         })
     };
-    // A moment that is not chosen by the test's author: from the clock's nanoseconds, 0.3 to 1.5 s.
-    let nanos = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap()
-        .subsec_nanos();
-    std::thread::sleep(std::time::Duration::from_millis(
-        300 + u64::from(nanos % 1200),
-    ));
+    // Killed after the writer's 30th acknowledged append, while it sends the 31st: a state the
+    // test waits for, not a guessed time. The wait is bounded so a stalled server fails the test.
+    for n in 0..30u64 {
+        announced
+            .recv_timeout(std::time::Duration::from_secs(60))
+            .unwrap_or_else(|e| panic!("append {n} not acknowledged: {e}"));
+    }
     server.kill(); // SIGKILL
+    drop(announced);
     writer.join().unwrap();
     let acked = acked.lock().unwrap().clone();
+    // The 30 appends waited for, and the 31st if it was answered before the kill landed.
     assert!(
-        !acked.is_empty(),
-        "nothing was acknowledged before the kill"
+        (150..=155).contains(&acked.len()),
+        "{} captions acknowledged",
+        acked.len()
     );
 
     let conn = rusqlite::Connection::open(data.join("bank.sqlite")).unwrap();
