@@ -1,7 +1,11 @@
 """Retries, backoff, Retry-After and dropped connections, through a stub
 HTTP server placed in front of the real befit: the stub answers 503, drops
-the connection or stalls for the first requests as told, then passes every
-request through to befit unchanged."""
+the connection or holds a request unanswered for the first requests as told,
+then passes every request through to befit unchanged.
+
+No test measures time: the client's waits go to an injected ``sleep`` that
+records them, its jitter comes from a scripted ``rng``, and its deadline is
+read from an injected ``clock``."""
 
 from __future__ import annotations
 
@@ -10,7 +14,7 @@ import http.server
 import json
 import threading
 import time
-from typing import Iterator, List, Tuple
+from typing import Iterator, List, Optional, Sequence, Tuple
 
 import pytest
 from befit_client import (
@@ -31,13 +35,17 @@ from .client_env import BUNDLE, BefitProcess
 class Stub:
     """Stub server; `script` is consumed one entry per incoming request:
     ("503", retry_after or None), ("not_ready", None), ("drop", None),
-    ("stall", seconds); once empty, requests pass through to `upstream`."""
+    ("hold", None): no answer until the stub is closed; once empty, requests
+    pass through to `upstream`. `answered` lists the requests (by arrival
+    number) the stub has answered or dropped."""
 
     def __init__(self, upstream: str) -> None:
         host, port = upstream.split("//", 1)[1].split(":")
         self.upstream = (host, int(port))
         self.script: List[Tuple[str, object]] = []
         self.seen: List[str] = []
+        self.answered: List[int] = []
+        self.release = threading.Event()
         self.lock = threading.Lock()
         stub = self
 
@@ -50,14 +58,22 @@ class Stub:
             def handle_any(self) -> None:
                 body = self.rfile.read(int(self.headers.get("Content-Length") or 0))
                 with stub.lock:
+                    number = len(stub.seen)
                     stub.seen.append(f"{self.command} {self.path}")
                     action = stub.script.pop(0) if stub.script else ("pass", None)
-                kind, arg = action
+                try:
+                    self.act(*action, body)
+                finally:
+                    with stub.lock:
+                        stub.answered.append(number)
+
+            def act(self, kind: str, arg: object, body: bytes) -> None:
                 if kind == "drop":
                     self.close_connection = True
                     return
-                if kind == "stall":
-                    time.sleep(float(arg))
+                if kind == "hold":
+                    # Bounded, so a test that forgets to close the stub cannot hang the run.
+                    stub.release.wait(timeout=120)
                     self.close_connection = True
                     return
                 if kind in ("503", "not_ready"):
@@ -94,6 +110,7 @@ class Stub:
         self.thread.start()
 
     def close(self) -> None:
+        self.release.set()
         self.server.shutdown()
         self.server.server_close()
 
@@ -111,9 +128,20 @@ def image_id(befit) -> ImageId:
         return c.register_images([ServerPath("images/00000.png")])[0]
 
 
-def client_via(stub: Stub, retry: RetryPolicy, timeout: float = 30.0):
+class ScriptedRandom:
+    """Stands in for ``random.Random``: ``random()`` returns the given
+    numbers in turn, so every jittered wait is known in advance."""
+
+    def __init__(self, values: Sequence[float]) -> None:
+        self.values = list(values)
+
+    def random(self) -> float:
+        return self.values.pop(0)
+
+
+def client_via(stub: Stub, retry: RetryPolicy, timeout: float = 30.0, rng: Optional[ScriptedRandom] = None):
     waits: List[float] = []
-    transport = Transport(stub.url, timeout=timeout, retry=retry, sleep=waits.append)
+    transport = Transport(stub.url, timeout=timeout, retry=retry, sleep=waits.append, rng=rng)
     return Client(transport=transport), waits
 
 
@@ -123,12 +151,16 @@ CAPTIONS = [["two pieces", "a large purple cross", "a small red circle"]]
 def test_503_is_retried_and_retry_after_honoured(stub, befit, image_id):
     direct = Client(befit.url).rewards([image_id], CAPTIONS)
     stub.script = [("503", 1), ("503", 1), ("503", 2)]
-    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01, jitter=0.5))
+    # Two draws per retry: the backoff's shortening, then Retry-After's lengthening.
+    rng = ScriptedRandom([0.2, 0.0, 0.6, 1.0, 0.4, 0.5])
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01, jitter=0.5), rng=rng)
     out = client.rewards([image_id], CAPTIONS)
     assert len(stub.seen) == 4
-    assert len(waits) == 3 and client.transport.retries_done == 3
-    # Never earlier than Retry-After, and at most jitter/4 of it later.
-    assert 1.0 <= waits[0] <= 1.125 and 1.0 <= waits[1] <= 1.125 and 2.0 <= waits[2] <= 2.25
+    assert client.transport.retries_done == 3 and rng.values == []
+    # RetryPolicy's documented rule: max(backoff * (1 - jitter r1), s * (1 + jitter/4 r2)), worked
+    # by hand: the backoffs 0.01 * 0.9, 0.02 * 0.7, 0.04 * 0.8 are all below Retry-After, which
+    # becomes 1 * (1 + 0.125 * 0), 1 * (1 + 0.125 * 1), 2 * (1 + 0.125 * 0.5).
+    assert waits == pytest.approx([1.0, 1.125, 2.125], abs=1e-12)
     assert out.cosine.tolist() == direct.cosine.tolist()
 
 
@@ -137,6 +169,15 @@ def test_without_retry_after_the_backoff_grows(stub, image_id):
     client, waits = client_via(stub, RetryPolicy(initial_delay=0.1, multiplier=2.0, max_delay=0.5, jitter=0.0))
     client.rewards([image_id], CAPTIONS)
     assert waits == pytest.approx([0.1, 0.2, 0.4, 0.5])
+
+
+def test_jitter_shortens_the_backoff_by_its_fraction(stub, image_id):
+    stub.script = [("503", None)] * 3
+    rng = ScriptedRandom([0.0, 1.0, 0.5])
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.1, multiplier=2.0, jitter=0.5), rng=rng)
+    client.rewards([image_id], CAPTIONS)
+    # 0.1 * (1 - 0.5 * 0), 0.2 * (1 - 0.5 * 1), 0.4 * (1 - 0.5 * 0.5), one draw per retry.
+    assert waits == pytest.approx([0.1, 0.1, 0.3], abs=1e-12) and rng.values == []
 
 
 def test_gives_up_after_max_attempts_with_the_servers_error(stub, image_id):
@@ -206,12 +247,14 @@ def test_a_connection_that_always_drops_raises_transport_error(stub, image_id):
 
 
 def test_a_stalled_answer_times_out_and_is_retried(stub, image_id):
-    stub.script = [("stall", 1.5)]
-    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01), timeout=0.5)
-    started = time.monotonic()
+    # The first request is held without an answer for as long as the test runs; the client's
+    # socket timeout must give up on it and send the request again.
+    stub.script = [("hold", None)]
+    client, waits = client_via(stub, RetryPolicy(initial_delay=0.01, jitter=0.0), timeout=0.5)
     out = client.rewards([image_id], CAPTIONS)
-    assert time.monotonic() - started < 1.5  # did not wait for the stalled answer
-    assert len(stub.seen) == 2 and len(waits) == 1 and out.reward.shape == (1, 3)
+    assert len(stub.seen) == 2 and waits == [0.01] and out.reward.shape == (1, 3)
+    with stub.lock:
+        assert 0 not in stub.answered  # the held request had no answer when the client returned
 
 
 def test_client_errors_pass_through_and_are_not_retried(stub, image_id):
@@ -222,13 +265,14 @@ def test_client_errors_pass_through_and_are_not_retried(stub, image_id):
     assert len(stub.seen) == 1 and waits == []
 
 
-def test_retry_after_is_waited_for_in_real_time(stub, image_id):
-    stub.script = [("503", 1)]
-    client = Client(stub.url, retry=RetryPolicy(jitter=0.0))
-    started = time.monotonic()
+def test_the_default_client_waits_with_the_real_clock(stub, image_id):
+    # Without injected functions the client sleeps with time.sleep and reads time.monotonic
+    # (what the waits above are recorded in place of), and a retry through them goes through.
+    stub.script = [("503", 0)]
+    client = Client(stub.url, retry=RetryPolicy(initial_delay=0.01, jitter=0.0))
+    assert client.transport.sleep is time.sleep and client.transport.clock is time.monotonic
     client.rewards([image_id], CAPTIONS)
-    assert time.monotonic() - started >= 1.0
-    assert len(stub.seen) == 2
+    assert len(stub.seen) == 2 and client.transport.retries_done == 1
 
 
 def test_the_real_server_sheds_and_every_call_still_gets_through(tmp_path, probe_rows):
