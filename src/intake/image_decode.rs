@@ -6,7 +6,8 @@ use std::io::Cursor;
 use image::{ImageDecoder, ImageFormat, ImageReader, RgbImage};
 
 /// Default for the largest `width * height` befit decodes (40 megapixels:
-/// above any camera frame a trainer feeds, below what would exhaust memory).
+/// above any camera frame a trainer feeds, 120 MB once decoded to 8-bit RGB,
+/// so a handful at once stays well inside a server's memory).
 pub const DEFAULT_MAX_PIXELS: u64 = 40_000_000;
 
 /// Why bytes could not become an image.
@@ -95,14 +96,26 @@ mod tests {
 
     /// A PNG whose IHDR declares `width x height` but whose one IDAT chunk holds
     /// an empty zlib stream: a few dozen bytes claiming any size.
+    ///
+    /// Section numbers are those of "Portable Network Graphics (PNG) Specification
+    /// (Second Edition)", W3C Recommendation 10 November 2003 = ISO/IEC 15948:2003
+    /// (quoted from memory).
     pub(crate) fn png_header_only(width: u32, height: u32) -> Vec<u8> {
+        // IHDR (11.2.2): width and height as 4-byte big-endian integers, then bit depth 8,
+        // colour type 2 (truecolour), compression method 0, filter method 0, no interlace.
         let mut ihdr = Vec::new();
         ihdr.extend_from_slice(&width.to_be_bytes());
         ihdr.extend_from_slice(&height.to_be_bytes());
         ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
+        // The PNG signature (5.2): 137 80 78 71 13 10 26 10.
         let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
-        // zlib header 78 9c, an empty final stored block, and the Adler-32 of nothing (1).
+        // zlib header 78 9c (RFC 1950, 2.2: deflate with a 32 KiB window, default level),
+        // one final block with fixed Huffman codes holding only the end-of-block code
+        // (RFC 1951, 3.2.3 and 3.2.6: bits 1, 01, 0000000, then padding: bytes 03 00), and the
+        // Adler-32 of no bytes, 1 (RFC 1950, 8.2). Python's zlib.compress(b"") gives these bytes.
         let empty_zlib = [0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01];
+        // Each chunk (5.3): data length (4 bytes, big endian), type, data, CRC; IHDR first,
+        // then IDAT (11.2.4), IEND (11.2.5) last.
         for (kind, data) in [
             (&b"IHDR"[..], &ihdr[..]),
             (b"IDAT", &empty_zlib),
@@ -112,12 +125,14 @@ mod tests {
             chunk.extend_from_slice(data);
             png.extend_from_slice(&(data.len() as u32).to_be_bytes());
             png.extend_from_slice(&chunk);
-            // PNG chunk CRC (ISO 3309 / ITU-T V.42 CRC-32) over type and data.
+            // Chunk CRC over type and data (5.5; the CRC-32 of ISO 3309 / ITU-T V.42).
             png.extend_from_slice(&crc32(&chunk).to_be_bytes());
         }
         png
     }
 
+    /// CRC-32 bit by bit with the reflected polynomial 0xEDB88320, initial value and final
+    /// XOR all ones (PNG specification 5.5 and its sample code in Annex D).
     fn crc32(data: &[u8]) -> u32 {
         let mut crc = 0xFFFF_FFFFu32;
         for &byte in data {

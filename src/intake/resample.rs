@@ -11,7 +11,8 @@ use image::RgbImage;
 
 use crate::bundle::Filter;
 
-/// Fixed-point precision of Pillow's 8-bit resampling (`32 - 8 - 2`).
+/// Fixed-point precision of Pillow's 8-bit resampling: `PRECISION_BITS` in
+/// `libImaging/Resample.c`, defined there as `32 - 8 - 2` (from memory).
 const PRECISION_BITS: u32 = 22;
 
 fn support(filter: Filter) -> f64 {
@@ -35,7 +36,9 @@ fn kernel(filter: Filter, x: f64) -> f64 {
             }
         }
         Filter::Bicubic => {
-            // Keys' cubic convolution with a = -0.5, as Pillow's bicubic_filter.
+            // Cubic convolution with a = -0.5 (R. G. Keys, "Cubic convolution interpolation
+            // for digital image processing", IEEE Trans. ASSP 29(6), 1981: the a that makes it
+            // third-order accurate), the value Pillow's bicubic_filter uses (both from memory).
             const A: f64 = -0.5;
             let x = x.abs();
             if x < 1.0 {
