@@ -62,6 +62,7 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client
+	$(MAKE) --no-print-directory cluster-test
 
 # The policy-gradient example against a running `make serve`.
 rl: $(VENV)/.ready

@@ -164,6 +164,7 @@ class Cluster:
         self.bank: Optional[BefitProcess] = None
         self.proxy: Optional[Proxy] = None
         try:
+            workdir.mkdir(parents=True, exist_ok=True)
             reward_toml = workdir / "reward.toml"
             reward_toml.write_text(config_text("reward.toml"))
             bank_toml = workdir / "bank.toml"
