@@ -63,6 +63,7 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client
 	$(MAKE) --no-print-directory cluster-test
+	$(MAKE) --no-print-directory image-test
 
 # The policy-gradient example against a running `make serve`.
 rl: $(VENV)/.ready
@@ -109,6 +110,7 @@ cluster-test: build cluster-tools
 	$(VENV_PY) -m pytest -q tests/cluster/test_manifests.py tests/cluster/test_scale_out.py
 
 # Builds the image and runs the service from its filesystem (buildah run, chroot).
+# About 2 minutes on a fresh machine (debootstrap makes the base), seconds after.
 image-test: image cluster-tools
 	BEFIT_IMAGE=$(IMAGE) $(VENV_PY) -m pytest -q tests/cluster/test_image.py
 

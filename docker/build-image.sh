@@ -26,9 +26,15 @@ else
     if [[ "$base" == localhost/* ]]; then
         docker/base-image.sh "$base"
     fi
+    previous="$(podman image inspect --format '{{.Id}}' "$image" 2> /dev/null || true)"
     # docker format: OCI image configs have no HEALTHCHECK.
     buildah bud --isolation chroot --format docker --pull=never \
         -f docker/Dockerfile --build-arg "BASE=$base" \
         --build-arg "ORT_VERSION=$ORT_VERSION" -t "$image" .
+    # The image this name pointed at before, now untagged: not kept.
+    current="$(podman image inspect --format '{{.Id}}' "$image")"
+    if [[ -n "$previous" && "$previous" != "$current" ]]; then
+        podman rmi "$previous" > /dev/null 2>&1 || true
+    fi
 fi
 echo "image: $image"

@@ -19,6 +19,7 @@ from befit_client import (
     TransportError,
     content_id,
     rendezvous_order,
+    replica_urls,
 )
 from befit_client.sharding import rendezvous_weight
 
@@ -161,3 +162,8 @@ def test_server_paths_route_by_path_and_bank_calls_need_a_bank_url(befit):
         sc.bank_info()
     with pytest.raises(ValueError, match="list of one or more"):
         ShardedClient(befit.url)
+
+
+def test_replica_urls_are_one_per_resolved_address():
+    assert replica_urls("127.0.0.1", 7878) == ["http://127.0.0.1:7878"]
+    assert replica_urls("::1", 9000) == ["http://[::1]:9000"]

@@ -143,10 +143,15 @@ def test_a_replica_killed_mid_run_loses_no_request_and_changes_no_reward(cluster
     results: Dict[int, object] = {}
     errors: List[BaseException] = []
     halfway = threading.Event()
+    killed = threading.Event()
     lock = threading.Lock()
 
     def calls(worker: int) -> None:
         for k in range(worker, CALLS, 2):
+            # The last half waits for the kill, so it surely meets a dead
+            # replica; calls of the second third may be in flight when it dies.
+            if k >= CALLS // 2:
+                killed.wait(timeout=120)
             rows = [(k * PER_CALL + j) % GROUPS for j in range(PER_CALL)]
             try:
                 out = sc.rewards(
@@ -167,12 +172,15 @@ def test_a_replica_killed_mid_run_loses_no_request_and_changes_no_reward(cluster
     threads = [threading.Thread(target=calls, args=(w,)) for w in range(2)]
     for t in threads:
         t.start()
-    assert halfway.wait(timeout=120), "the run did not reach its first third"
-    victim.proc.kill()
-    victim.proc.wait(timeout=10)
-    for t in threads:
-        t.join(timeout=300)
-    sc.close()
+    try:
+        assert halfway.wait(timeout=120), "the run did not reach its first third"
+        victim.proc.kill()
+        victim.proc.wait(timeout=10)
+    finally:
+        killed.set()
+        for t in threads:
+            t.join(timeout=300)
+        sc.close()
     assert not errors, errors
     assert sorted(results) == list(range(CALLS))
     for rows, out in results.values():
@@ -180,7 +188,7 @@ def test_a_replica_killed_mid_run_loses_no_request_and_changes_no_reward(cluster
         assert_same(out, reference, rows)  # type: ignore[arg-type]
     assert sc.failovers >= 1
     # The victim's images were registered again on the replicas next in their
-    # ranking (every image is asked again in the last half of the run).
+    # ranking (the last half of the run asks every image again).
     asked = {r for rows, _ in results.values() for r in rows}
     moved = [i for i in owned if i in asked]
     assert moved

@@ -45,7 +45,7 @@ from .errors import (
 )
 from .images import ImageId, ServerPath, content_id, encode_png
 from .results import GroupRewards, ModelDetails, ModelInfo, Rewards, Vectors
-from .sharding import ShardedClient, rendezvous_order
+from .sharding import ShardedClient, rendezvous_order, replica_urls
 from .transport import NO_RETRY, RetryPolicy, parse_retry_after
 
 __version__ = "0.1.0"
@@ -94,5 +94,6 @@ __all__ = [
     "parse_retry_after",
     "ref_clip_s",
     "rendezvous_order",
+    "replica_urls",
     "scale_json",
 ]

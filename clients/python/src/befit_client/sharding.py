@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import hashlib
 import random
+import socket
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -70,6 +71,15 @@ def rendezvous_order(key: str, replicas: Sequence[str]) -> List[str]:
     """``replicas`` ranked for ``key``, highest weight first (ties, which
     sha256 makes vanishingly rare, broken by name)."""
     return sorted(replicas, key=lambda r: (-rendezvous_weight(r, key), r))
+
+
+def replica_urls(host: str, port: int = 7878, scheme: str = "http") -> List[str]:
+    """A URL for every address ``host`` resolves to, sorted: the name of a
+    headless Service (``befit-reward-replicas`` in deploy/kubernetes/)
+    resolves to each ready replica. Resolve again to follow scaling."""
+    infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
+    addresses = sorted({str(info[4][0]) for info in infos})
+    return [f"{scheme}://[{a}]:{port}" if ":" in a else f"{scheme}://{a}:{port}" for a in addresses]
 
 
 def image_key(source: Any) -> Tuple[str, Any]:
