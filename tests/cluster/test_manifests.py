@@ -13,7 +13,7 @@ from typing import Any, Dict, List
 import kubernetes_validate
 import pytest
 
-from .cluster_env import MANIFESTS, REPO, config_text, find, manifests
+from .cluster_env import REPO, config_text, find, manifests
 
 # A cluster a few releases behind, and the newest release the validator's
 # schema set knows (kubernetes-validate 1.37.0 ships 1.25 to 1.37).

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import json
 import threading
-from pathlib import Path
 from typing import Dict, Iterator, List, Tuple
 
 import numpy as np
