@@ -234,6 +234,21 @@ mod tests {
     /// Tests here read and set `BEFIT_*` variables, which are process-wide.
     static ENV: Mutex<()> = Mutex::new(());
 
+    /// Holds the variables for one test, cleared of whatever the shell set.
+    fn env_lock() -> std::sync::MutexGuard<'static, ()> {
+        let guard = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        for name in [
+            "BEFIT_CONFIG",
+            "BEFIT_LISTEN",
+            "BEFIT_DATA_DIR",
+            "BEFIT_IMAGE_ROOT",
+            "BEFIT_LOG_JSON",
+        ] {
+            std::env::remove_var(name);
+        }
+        guard
+    }
+
     fn write(dir: &tempfile::TempDir, text: &str) -> PathBuf {
         let path = dir.path().join("serve.toml");
         std::fs::write(&path, text).unwrap();
@@ -266,7 +281,7 @@ mod tests {
 
     #[test]
     fn file_values_become_the_flags_values() {
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let dir = tempfile::tempdir().unwrap();
         let path = write(
             &dir,
@@ -290,7 +305,7 @@ mod tests {
 
     #[test]
     fn flags_override_the_file() {
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let dir = tempfile::tempdir().unwrap();
         let path = write(
             &dir,
@@ -315,7 +330,7 @@ mod tests {
 
     #[test]
     fn environment_overrides_the_file_and_flags_override_the_environment() {
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let dir = tempfile::tempdir().unwrap();
         let path = write(
             &dir,
@@ -337,7 +352,7 @@ mod tests {
 
     #[test]
     fn unknown_keys_are_refused_by_name() {
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let dir = tempfile::tempdir().unwrap();
         let path = write(&dir, "bundle = [\"m\"]\nmax_groups = 7\n");
         let e = config_error(parse(&["serve", "--config", path.to_str().unwrap()]));
@@ -357,7 +372,7 @@ mod tests {
 
     #[test]
     fn bad_values_name_the_key_and_the_file() {
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let dir = tempfile::tempdir().unwrap();
         let cases = [
             ("max-groups = \"many\"", "max-groups", "invalid digit"),
@@ -431,7 +446,7 @@ mod tests {
             "docker/serve.toml must hold this block, generated from the flags:\n{want}"
         );
         // The file the image ships parses and names a bundle.
-        let _env = ENV.lock().unwrap_or_else(|e| e.into_inner());
+        let _env = env_lock();
         let a = serve_args(parse(&["serve", "--config", file]).unwrap());
         assert_eq!(a.bundles, [PathBuf::from("/models/blocks-v1")]);
         assert_eq!(a.data_dir, PathBuf::from("/data"));
