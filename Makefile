@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl
+.PHONY: all serve test bench ort venv build lint clean rl image image-tools image-test cluster-test cluster-tools cluster-throughput
 
 all: build
 
@@ -62,6 +62,8 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client
+	$(MAKE) --no-print-directory cluster-test
+	$(MAKE) --no-print-directory image-test
 
 # The policy-gradient example against a running `make serve`.
 rl: $(VENV)/.ready
@@ -76,6 +78,45 @@ $(CACHE)/.bench-ready: $(VENV)/.ready bench/requirements.txt
 BENCH_ARGS ?= --sizes 100000
 bench: build $(CACHE)/.bench-ready
 	$(VENV_PY) bench/run.py $(BENCH_ARGS)
+
+# --- Past one machine: the image, the manifests, the scale-out test ---
+# (README, "Running it for a cluster").
+IMAGE ?= localhost/befit:$(shell sed -n 's/^version = "\(.*\)"/\1/p' Cargo.toml | head -1)
+CLUSTER_READY := $(CACHE)/.cluster-ready
+
+# With no docker daemon, the image is built by buildah (chroot isolation) on a
+# base made by debootstrap; both come from Debian's archive.
+image-tools:
+	@if ! (command -v docker > /dev/null && docker info > /dev/null 2>&1); then \
+		missing=; for t in buildah podman debootstrap; do command -v $$t > /dev/null || missing="$$missing $$t"; done; \
+		if [ -n "$$missing" ]; then apt-get update -q && DEBIAN_FRONTEND=noninteractive apt-get install -y -q $$missing; fi; \
+	fi
+
+# The image, from the release binary built here (docker/Dockerfile).
+image: $(ORT_LIB) image-tools
+	cargo build --release --locked
+	IMAGE=$(IMAGE) ORT_VERSION=$(ORT_VERSION) docker/build-image.sh
+
+# Manifest validation (kubernetes-validate) and the reverse proxy of the scale-out test.
+$(CLUSTER_READY): $(VENV)/.ready tests/cluster/requirements.txt
+	$(VENV_PY) -m pip install --quiet -r tests/cluster/requirements.txt
+	touch $@
+
+cluster-tools: $(CLUSTER_READY)
+	@command -v nginx > /dev/null || { apt-get update -q && DEBIAN_FRONTEND=noninteractive apt-get install -y -q nginx; }
+
+# Manifests validated; three reward replicas, a bank replica and the proxy on loopback.
+cluster-test: build cluster-tools
+	$(VENV_PY) -m pytest -q tests/cluster/test_manifests.py tests/cluster/test_scale_out.py
+
+# Builds the image and runs the service from its filesystem (buildah run, chroot).
+# About 2 minutes on a fresh machine (debootstrap makes the base), seconds after.
+image-test: image cluster-tools
+	BEFIT_IMAGE=$(IMAGE) $(VENV_PY) -m pytest -q tests/cluster/test_image.py
+
+# Rewards per second through one replica and through three (a measurement, not a test).
+cluster-throughput: build cluster-tools
+	$(VENV_PY) tests/cluster/throughput.py
 
 clean:
 	cargo clean

@@ -17,7 +17,7 @@ use crate::store::memory::{DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
 #[command(name = "befit", version, about)]
 pub struct Cli {
     /// Log as JSON lines instead of text.
-    #[arg(long, global = true)]
+    #[arg(long, global = true, env = "BEFIT_LOG_JSON")]
     pub log_json: bool,
     #[command(subcommand)]
     pub command: Command,
@@ -50,17 +50,12 @@ pub enum BankCommand {
     EmbedMissing(BankEmbedMissingArgs),
 }
 
+/// What every command that writes the bank's vectors takes.
 #[derive(Debug, Args)]
-pub struct BankImportArgs {
+pub struct BankWriteArgs {
     /// Model bundle whose text encoder embeds the captions.
     #[arg(long, value_name = "DIR")]
     pub bundle: PathBuf,
-    /// Captions, one per line: {"text": "...", "tag": "..."} or a JSON string.
-    #[arg(long, value_name = "FILE.jsonl")]
-    pub from: PathBuf,
-    /// Tag for lines without their own.
-    #[arg(long)]
-    pub tag: Option<String>,
     /// Data folder holding the bank (the one `befit serve --data-dir` uses).
     #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,
@@ -74,20 +69,21 @@ pub struct BankImportArgs {
 }
 
 #[derive(Debug, Args)]
+pub struct BankImportArgs {
+    /// Captions, one per line: {"text": "...", "tag": "..."} or a JSON string.
+    #[arg(long, value_name = "FILE.jsonl")]
+    pub from: PathBuf,
+    /// Tag for lines without their own.
+    #[arg(long)]
+    pub tag: Option<String>,
+    #[command(flatten)]
+    pub write: BankWriteArgs,
+}
+
+#[derive(Debug, Args)]
 pub struct BankEmbedMissingArgs {
-    /// Model bundle whose text encoder embeds the captions.
-    #[arg(long, value_name = "DIR")]
-    pub bundle: PathBuf,
-    /// Data folder holding the bank (the one `befit serve --data-dir` uses).
-    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
-    pub data_dir: PathBuf,
-    /// Captions embedded and committed together.
-    #[arg(long, default_value_t = crate::bank::import::DEFAULT_IMPORT_BATCH)]
-    pub batch_size: usize,
     #[command(flatten)]
-    pub runtime: RuntimeArgs,
-    #[command(flatten)]
-    pub encoders: EncoderArgs,
+    pub write: BankWriteArgs,
 }
 
 #[derive(Debug, Args)]
@@ -227,19 +223,25 @@ pub struct EncoderArgs {
     pub max_pixels: u64,
 }
 
+/// `befit serve`'s flags. Each is also a key of the `--config` file
+/// (`config_file.rs`); a few a container sets also read `BEFIT_*` variables.
 #[derive(Debug, Args)]
 pub struct ServeArgs {
-    /// Model bundle folder; repeat for more; the first is the default model.
-    #[arg(long = "bundle", value_name = "DIR", required = true)]
+    /// A TOML file of flag values (keys are the flags' names); flags and
+    /// BEFIT_* variables override it.
+    #[arg(long, value_name = "FILE.toml", env = "BEFIT_CONFIG")]
+    pub config: Option<PathBuf>,
+    /// Model bundle folder; repeat for more; the first is the default model (at least one).
+    #[arg(long = "bundle", value_name = "DIR")]
     pub bundles: Vec<PathBuf>,
     /// Address to listen on (port 0 picks a free port, printed at start).
-    #[arg(long, default_value = "127.0.0.1:7878")]
+    #[arg(long, default_value = "127.0.0.1:7878", env = "BEFIT_LISTEN")]
     pub listen: SocketAddr,
     /// Folder for the image store and the caption bank (created if missing).
-    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
+    #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR, env = "BEFIT_DATA_DIR")]
     pub data_dir: PathBuf,
     /// Folder under which requests may name images by relative path.
-    #[arg(long, value_name = "DIR")]
+    #[arg(long, value_name = "DIR", env = "BEFIT_IMAGE_ROOT")]
     pub image_root: Option<PathBuf>,
     #[command(flatten)]
     pub runtime: RuntimeArgs,

@@ -21,10 +21,11 @@ pub fn import(a: BankImportArgs) -> anyhow::Result<ExitCode> {
     let total_bytes = std::fs::metadata(&a.from)
         .with_context(|| format!("reading {}", a.from.display()))?
         .len();
+    let w = &a.write;
     // A running server would never see what this writes: refuse its data folder.
-    let _lock = DataDir::new(&a.data_dir).lock("befit bank import", BANK_WRITE_ADVICE)?;
-    let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
-    let bank = open_bank(&a.data_dir)?;
+    let _lock = DataDir::new(&w.data_dir).lock("befit bank import", BANK_WRITE_ADVICE)?;
+    let model = OfflineModel::open(&w.bundle, &w.runtime, &w.encoders)?;
+    let bank = open_bank(&w.data_dir)?;
     let (model_bank, _) = bank.model(&model.model.bundle.digest, model.model.dimension())?;
     let embedder = model.embedder();
     let bar = ImportBar::new(total_bytes);
@@ -33,7 +34,7 @@ pub fn import(a: BankImportArgs) -> anyhow::Result<ExitCode> {
         &embedder,
         &a.from,
         a.tag.as_deref(),
-        a.batch_size,
+        w.batch_size,
         &mut |p| bar.update(p),
     );
     let report = match report {
@@ -104,16 +105,17 @@ pub fn query(a: BankQueryArgs) -> anyhow::Result<ExitCode> {
 }
 
 pub fn embed_missing(a: BankEmbedMissingArgs) -> anyhow::Result<ExitCode> {
-    let _lock = DataDir::new(&a.data_dir).lock("befit bank embed-missing", BANK_WRITE_ADVICE)?;
-    let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
-    let bank = open_bank(&a.data_dir)?;
+    let w = &a.write;
+    let _lock = DataDir::new(&w.data_dir).lock("befit bank embed-missing", BANK_WRITE_ADVICE)?;
+    let model = OfflineModel::open(&w.bundle, &w.runtime, &w.encoders)?;
+    let bank = open_bank(&w.data_dir)?;
     let digest = &model.model.bundle.digest;
     let (model_bank, _) = bank.model(digest, model.model.dimension())?;
     let missing = crate::service::backfill::missing_captions(&bank, digest)?;
     let bar = progress_bar("embedding");
     bar.set_length(missing);
     let embedded =
-        crate::bank::embed_missing(&model_bank, &model.embedder(), a.batch_size, &mut |n| {
+        crate::bank::embed_missing(&model_bank, &model.embedder(), w.batch_size, &mut |n| {
             bar.set_position(n)
         });
     bar.finish_and_clear();

@@ -1,9 +1,12 @@
-//! The command line: arguments parsed raw by clap, validated into typed
-//! settings here, and dispatched. This is the only module that reads
-//! environment variables (`ORT_DYLIB_PATH`, `RUST_LOG`).
+//! The command line: arguments parsed raw by clap (with `befit serve`'s
+//! config file, [`config_file`]), validated into typed settings here, and
+//! dispatched. This is the only module that reads environment variables
+//! (`ORT_DYLIB_PATH`, `RUST_LOG`, and the `BEFIT_*` ones `befit serve --help`
+//! lists).
 
 pub mod args;
 mod bank_commands;
+pub mod config_file;
 mod probe_commands;
 mod score_command;
 mod serve;
@@ -13,20 +16,21 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 
 use anyhow::Context;
-use clap::Parser;
 
 use crate::runtime::LibrarySearch;
-use args::{BankCommand, Cli, Command};
+use args::{BankCommand, Command};
+use config_file::ArgsError;
 
 /// Parses `argv` and runs the command; the error chain is for `main` to print.
 pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode> {
-    let cli = match Cli::try_parse_from(argv) {
+    let cli = match config_file::parse_args(argv.into_iter().collect()) {
         Ok(cli) => cli,
-        Err(e) => {
+        Err(ArgsError::Usage(e)) => {
             let code = if e.use_stderr() { 2 } else { 0 };
             let _ = e.print();
             return Ok(ExitCode::from(code));
         }
+        Err(ArgsError::Config(e)) => return Err(e.into()),
     };
     init_logging(cli.log_json);
     match cli.command {

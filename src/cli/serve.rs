@@ -51,6 +51,9 @@ pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
 
 /// The service's configuration from the flags, checked.
 fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
+    if a.bundles.is_empty() {
+        bail!("give at least one --bundle DIR (or `bundle = [\"DIR\"]` in the --config file)");
+    }
     if a.max_inflight == 0 || a.max_groups == 0 || a.max_captions == 0 || a.max_images == 0 {
         bail!("--max-inflight, --max-groups, --max-captions and --max-images must be at least 1");
     }

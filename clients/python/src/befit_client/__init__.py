@@ -11,7 +11,8 @@ Main calls::
     out.model.digest            # which reward model answered
 
 Modules: :mod:`.client` (the calls), :mod:`.transport` (HTTP, retries,
-backoff), :mod:`.chunking` (the server's limits and request splitting),
+backoff), :mod:`.sharding` (several replicas: rendezvous routing and
+failover; :class:`ShardedClient`), :mod:`.chunking` (the server's limits and request splitting),
 :mod:`.images` (image sources, content ids, PNG encoding), :mod:`.results`
 (answers as numpy arrays), :mod:`.errors` (typed errors).
 """
@@ -44,6 +45,7 @@ from .errors import (
 )
 from .images import ImageId, ServerPath, content_id, encode_png
 from .results import GroupRewards, ModelDetails, ModelInfo, Rewards, Vectors
+from .sharding import ShardedClient, rendezvous_order, replica_urls
 from .transport import NO_RETRY, RetryPolicy, parse_retry_after
 
 __version__ = "0.1.0"
@@ -77,6 +79,7 @@ __all__ = [
     "RetryPolicy",
     "Rewards",
     "ServerPath",
+    "ShardedClient",
     "TransportError",
     "UnknownImageError",
     "UnknownMapError",
@@ -90,5 +93,7 @@ __all__ = [
     "encode_png",
     "parse_retry_after",
     "ref_clip_s",
+    "rendezvous_order",
+    "replica_urls",
     "scale_json",
 ]

@@ -59,6 +59,29 @@ def scale_json(scale: ScaleSpec) -> Dict[str, Any]:
     raise TypeError(f"a scale is a kind name or a dict with 'kind', got {scale!r}")
 
 
+def check_reward_args(
+    images: Sequence[Any],
+    captions: Sequence[Sequence[str]],
+    baseline: str,
+    references: Optional[Sequence[Any]],
+    greedy: Optional[Sequence[Any]],
+) -> None:
+    """The local checks of a rewards call, before anything is sent."""
+    if baseline not in BASELINES:
+        raise ValueError(f"baseline is one of {BASELINES}, got {baseline!r}")
+    n = len(images)
+    if n == 0:
+        raise ValueError("rewards needs at least one group")
+    if len(captions) != n:
+        raise ValueError(f"{n} images but {len(captions)} caption groups; give one group per image")
+    for name, extra in (("references", references), ("greedy", greedy)):
+        if extra is not None and len(extra) != n:
+            raise ValueError(f"{n} images but {len(extra)} entries in {name}; give one per group (None to skip)")
+    for i, caps in enumerate(captions):
+        if isinstance(caps, str):
+            raise TypeError(f"captions[{i}] is a string; each group takes a list of captions")
+
+
 def _decode(body: bytes, what: str) -> Any:
     try:
         return json.loads(body.decode("utf-8"))
@@ -342,19 +365,8 @@ class Client:
         continuity map. Requests over the limits are split between groups and
         joined back in order.
         """
-        if baseline not in BASELINES:
-            raise ValueError(f"baseline is one of {BASELINES}, got {baseline!r}")
+        check_reward_args(images, captions, baseline, references, greedy)
         n = len(images)
-        if n == 0:
-            raise ValueError("rewards needs at least one group")
-        if len(captions) != n:
-            raise ValueError(f"{n} images but {len(captions)} caption groups; give one group per image")
-        for name, extra in (("references", references), ("greedy", greedy)):
-            if extra is not None and len(extra) != n:
-                raise ValueError(f"{n} images but {len(extra)} entries in {name}; give one per group (None to skip)")
-        for i, caps in enumerate(captions):
-            if isinstance(caps, str):
-                raise TypeError(f"captions[{i}] is a string; each group takes a list of captions")
         ids = self.register_images(images)
         groups: List[Dict[str, Any]] = []
         for i in range(n):
