@@ -2,7 +2,7 @@
 //! Pillow goldens that `tools/blocksworld/make_goldens.py` wrote from the
 //! models' training code (`fixtures/golden/<bundle>/golden.json`).
 
-use befit::intake::image_decode::{decode_rgb, DEFAULT_MAX_PIXELS};
+use befit::intake::image_decode::{decode_rgb, ImageLimits};
 use befit::intake::image_tensor::to_tensor;
 use serde::Deserialize;
 
@@ -52,7 +52,7 @@ fn check(bundle: &str, min_cosine: f64, max_tensor_diff: f32) -> (f64, f64, f32)
     let mut worst_diff = 0f32;
     let mut tensors = Vec::new();
     for image in &golden.images {
-        let rgb = decode_rgb(&read(dir.join(&image.file)), DEFAULT_MAX_PIXELS).unwrap();
+        let rgb = decode_rgb(&read(dir.join(&image.file)), &ImageLimits::default()).unwrap();
         let ours = to_tensor(&rgb, &spec);
         let theirs = f32s(&read(dir.join(&image.tensor)));
         assert_eq!(

@@ -271,3 +271,28 @@ pub fn b64(bytes: &[u8]) -> String {
 pub fn cosine(a: &[f32], b: &[f32]) -> f64 {
     befit::vectors::cosine(a, b) as f64
 }
+
+/// A PNG whose IHDR declares `w x h` RGB pixels of `bit_depth` bits per sample
+/// with an empty image stream: a few dozen bytes claiming any size (PNG
+/// specification, ISO/IEC 15948:2003, 11.2.2 IHDR; chunk CRC-32 of ISO 3309).
+pub fn png_declaring(w: u32, h: u32, bit_depth: u8) -> Vec<u8> {
+    let mut ihdr = w.to_be_bytes().to_vec();
+    ihdr.extend_from_slice(&h.to_be_bytes());
+    ihdr.extend_from_slice(&[bit_depth, 2, 0, 0, 0]);
+    let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
+    for (kind, data) in [
+        (&b"IHDR"[..], &ihdr[..]),
+        (
+            b"IDAT",
+            &[0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01][..],
+        ),
+        (b"IEND", &[][..]),
+    ] {
+        let mut chunk = kind.to_vec();
+        chunk.extend_from_slice(data);
+        png.extend_from_slice(&(data.len() as u32).to_be_bytes());
+        png.extend_from_slice(&chunk);
+        png.extend_from_slice(&crc32fast::hash(&chunk).to_be_bytes());
+    }
+    png
+}
