@@ -73,6 +73,8 @@ pub trait BatchRunner: Send + 'static {
 pub trait BatchObserver: Send + Sync + 'static {
     fn on_run(&self, size: usize, seconds: f64);
     fn on_depth(&self, depth: usize);
+    /// Jobs dropped unrun because nobody waits for their answer any more.
+    fn on_abandoned(&self, _jobs: usize) {}
 }
 
 struct Job<I, O> {
@@ -220,6 +222,16 @@ fn work<R: BatchRunner>(queue: Arc<Queue<R::Item, R::Output>>, mut runner: R) {
         let depth = state.jobs.len();
         drop(state);
         queue.observer.on_depth(depth);
+        // A job whose asker has gone (client disconnected, request timed out)
+        // is not worth an encoder run.
+        let before = taken.len();
+        let taken: Vec<_> = taken.into_iter().filter(|j| !j.reply.is_closed()).collect();
+        if taken.len() < before {
+            queue.observer.on_abandoned(before - taken.len());
+        }
+        if taken.is_empty() {
+            continue;
+        }
         for run in split_runs(taken, settings.group_by_cost) {
             execute(&mut runner, run, queue.observer.as_ref());
         }
@@ -315,6 +327,7 @@ mod tests {
     #[derive(Default)]
     struct Counting {
         runs: AtomicUsize,
+        abandoned: AtomicUsize,
     }
 
     impl BatchObserver for Counting {
@@ -322,6 +335,9 @@ mod tests {
             self.runs.fetch_add(1, Ordering::Relaxed);
         }
         fn on_depth(&self, _: usize) {}
+        fn on_abandoned(&self, jobs: usize) {
+            self.abandoned.fetch_add(jobs, Ordering::Relaxed);
+        }
     }
 
     fn start(
@@ -405,6 +421,55 @@ mod tests {
             batcher.submit_many(vec![(3, 1), (4, 1)]),
             Err(BatchError::Full(2))
         ));
+    }
+
+    /// Holds the worker inside its first run until released.
+    struct Gated {
+        entered: std::sync::mpsc::Sender<()>,
+        release: Arc<Mutex<std::sync::mpsc::Receiver<()>>>,
+        seen: Arc<Mutex<Vec<Vec<u64>>>>,
+    }
+
+    impl BatchRunner for Gated {
+        type Item = u64;
+        type Output = u64;
+        fn run(&mut self, items: &[u64]) -> Result<Vec<u64>, String> {
+            self.seen.lock().unwrap().push(items.to_vec());
+            if items == [0] {
+                let _ = self.entered.send(());
+                let _ = self.release.lock().unwrap().recv();
+            }
+            Ok(items.to_vec())
+        }
+    }
+
+    #[test]
+    fn jobs_whose_asker_is_gone_are_not_run() {
+        let (entered_tx, entered) = std::sync::mpsc::channel();
+        let (release, release_rx) = std::sync::mpsc::channel();
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let observer = Arc::new(Counting::default());
+        let runner = Gated {
+            entered: entered_tx,
+            release: Arc::new(Mutex::new(release_rx)),
+            seen: Arc::clone(&seen),
+        };
+        let settings = BatchSettings {
+            max_batch: 1,
+            ..Default::default()
+        };
+        let batcher = Batcher::start("gated", vec![runner], settings, observer.clone());
+        let gate = batcher.submit_many(vec![(0, 1)]).unwrap().remove(0);
+        entered.recv().unwrap();
+        // The worker is busy: these three wait; the askers of 1 and 2 then go away.
+        let mut replies = batcher.submit_many(vec![(1, 1), (2, 1), (3, 1)]).unwrap();
+        let kept = replies.pop().unwrap();
+        drop(replies);
+        release.send(()).unwrap();
+        assert_eq!(gate.blocking_recv().unwrap().unwrap(), 0);
+        assert_eq!(kept.blocking_recv().unwrap().unwrap(), 3);
+        assert_eq!(*seen.lock().unwrap(), vec![vec![0], vec![3]]);
+        assert_eq!(observer.abandoned.load(Ordering::Relaxed), 2);
     }
 
     #[test]

@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand};
 
 use crate::batching::{DEFAULT_MAX_BATCH, DEFAULT_MAX_WAIT_MICROS, DEFAULT_QUEUE_DEPTH};
-use crate::intake::image_decode::DEFAULT_MAX_PIXELS;
+use crate::intake::image_decode::{ImageLimits, DEFAULT_MAX_DECODED_BYTES, DEFAULT_MAX_PIXELS};
 use crate::intake::limits::*;
 use crate::service::data_dir::DEFAULT_DATA_DIR;
 use crate::store::memory::{DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
@@ -221,6 +221,20 @@ pub struct EncoderArgs {
     /// Largest image in pixels (width x height), checked from the header.
     #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
     pub max_pixels: u64,
+    /// Largest image in bytes once decoded (width x height x channels x bytes
+    /// per sample), checked from the header.
+    #[arg(long, default_value_t = DEFAULT_MAX_DECODED_BYTES)]
+    pub max_decoded_bytes: u64,
+}
+
+impl EncoderArgs {
+    /// The limits one image decode is held to.
+    pub fn image_limits(&self) -> ImageLimits {
+        ImageLimits {
+            max_pixels: self.max_pixels,
+            max_decoded_bytes: self.max_decoded_bytes,
+        }
+    }
 }
 
 /// `befit serve`'s flags. Each is also a key of the `--config` file
@@ -275,6 +289,8 @@ pub struct ServeArgs {
     /// as `remap`: NAME=FILE; repeatable. Maps saved by POST /v1/drift live in the data folder.
     #[arg(long = "map", value_name = "NAME=FILE")]
     pub maps: Vec<String>,
+    #[command(flatten)]
+    pub guards: ServeGuardArgs,
 }
 
 /// What a probe-set command does with bad rows and where its figures go.
@@ -357,4 +373,28 @@ pub struct CheckBundleArgs {
     pub bundle: PathBuf,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
+}
+
+/// How `befit serve` protects itself from slow, idle and memory-hungry clients.
+#[derive(Debug, Args)]
+pub struct ServeGuardArgs {
+    /// Bytes of images being decoded at once, server-wide; decodes over it wait briefly, then get 503.
+    #[arg(long, default_value_t = crate::intake::decode_budget::DEFAULT_DECODE_BUDGET_BYTES)]
+    pub decode_budget_bytes: u64,
+    /// Seconds a request body may take to arrive in full (it holds no request slot meanwhile).
+    #[arg(long, default_value_t = crate::intake::limits::DEFAULT_BODY_TIMEOUT_SECS)]
+    pub body_timeout_secs: u64,
+    /// Slowest body a client may send, in bytes a second, once the first seconds have passed.
+    #[arg(long, default_value_t = crate::intake::limits::DEFAULT_MIN_BODY_RATE)]
+    pub min_body_rate: u64,
+    /// Seconds a connection may take to send a request's headers, counted from its
+    /// opening or its previous answer: idle and slow-header connections are closed after it.
+    #[arg(long, default_value_t = crate::server::listen::DEFAULT_HEADER_TIMEOUT_SECS)]
+    pub header_timeout_secs: u64,
+    /// Connections open at once; more wait in the kernel's queue (kept below the descriptor limit).
+    #[arg(long, default_value_t = crate::server::listen::DEFAULT_MAX_CONNECTIONS)]
+    pub max_connections: usize,
+    /// Seconds to finish requests in flight at shutdown before closing what is left.
+    #[arg(long, default_value_t = crate::server::listen::DEFAULT_DRAIN_SECS)]
+    pub drain_secs: u64,
 }

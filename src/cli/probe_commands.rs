@@ -15,6 +15,7 @@ use super::serve::model_settings;
 use crate::encoders::load_bundles;
 use crate::encoders::offline::ModelEmbedder;
 use crate::encoders::Model;
+use crate::intake::image_decode::ImageLimits;
 use crate::metrics::Registry;
 use crate::probe::{embed_probe, EmbedOptions, ImageFiles, LoadOptions, ProbeSet};
 use crate::stats::{self, CalibrationOptions, DriftOptions, ProbeVectors};
@@ -23,7 +24,7 @@ use crate::stats::{self, CalibrationOptions, DriftOptions, ProbeVectors};
 pub(crate) struct OfflineModel {
     pub runtime: tokio::runtime::Runtime,
     pub model: Arc<Model>,
-    pub max_pixels: u64,
+    pub image_limits: ImageLimits,
 }
 
 impl OfflineModel {
@@ -42,7 +43,7 @@ impl OfflineModel {
         Ok(OfflineModel {
             runtime,
             model,
-            max_pixels: encoders.max_pixels,
+            image_limits: encoders.image_limits(),
         })
     }
 
@@ -58,7 +59,7 @@ impl OfflineModel {
         ModelEmbedder {
             model: Arc::clone(&self.model),
             runtime: self.runtime.handle().clone(),
-            max_pixels: self.max_pixels,
+            image_limits: self.image_limits,
         }
     }
 }

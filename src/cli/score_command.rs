@@ -88,8 +88,10 @@ pub fn score(a: ScoreArgs) -> anyhow::Result<ExitCode> {
     let offline = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
     let model = Arc::clone(&offline.model);
     let spec = spec(&a, &model)?;
+    let image_limits = a.encoders.image_limits();
     let limits = Limits {
-        max_pixels: a.encoders.max_pixels,
+        max_pixels: image_limits.max_pixels,
+        max_decoded_bytes: image_limits.max_decoded_bytes,
         ..Limits::default()
     };
     let store = Arc::new(ImageStore::in_memory()?);
@@ -97,7 +99,7 @@ pub fn score(a: ScoreArgs) -> anyhow::Result<ExitCode> {
         vec![Arc::clone(&model)],
         store,
         Some(root),
-        limits.max_pixels,
+        &limits,
         Arc::new(Registry::default()),
     );
     let mut out: Box<dyn Write> = match &a.output {

@@ -13,6 +13,7 @@ use crate::batching::BatchSettings;
 use crate::encoders::{load_bundles, ModelSettings};
 use crate::intake::limits::Limits;
 use crate::metrics::Registry;
+use crate::server::listen::{open_file_limit, ConnectionSettings};
 use crate::service::{Running, ServiceConfig, DEFAULT_BANK_DUMP_SECONDS};
 
 /// Encoder settings from the flags, checked.
@@ -64,10 +65,17 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
         max_caption_bytes: a.max_caption_bytes,
         max_images: a.max_images,
         max_pixels: a.encoders.max_pixels,
+        max_decoded_bytes: a.encoders.max_decoded_bytes,
         max_probe_rows: a.max_probe_rows,
         max_inflight: a.max_inflight,
         request_timeout: Duration::from_secs(a.request_timeout_secs.max(1)),
+        decode_budget_bytes: a.guards.decode_budget_bytes,
+        body_timeout: Duration::from_secs(a.guards.body_timeout_secs.max(1)),
+        min_body_rate: a.guards.min_body_rate,
     };
+    if limits.decode_budget_bytes < limits.max_decoded_bytes {
+        bail!("--decode-budget-bytes must be at least --max-decoded-bytes ({}), or no image of that size could ever be decoded", limits.max_decoded_bytes);
+    }
     let maps = a
         .maps
         .iter()
@@ -87,8 +95,20 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
     })
 }
 
+/// How the server accepts and closes connections, from the flags, checked.
+fn connection_settings(a: &ServeArgs) -> anyhow::Result<ConnectionSettings> {
+    let settings = ConnectionSettings {
+        header_timeout: Duration::from_secs(a.guards.header_timeout_secs.max(1)),
+        max_connections: a.guards.max_connections.max(1),
+        drain: Duration::from_secs(a.guards.drain_secs),
+    };
+    settings.check(open_file_limit())?;
+    Ok(settings)
+}
+
 pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     let config = service_config(&a)?;
+    let connections = connection_settings(&a)?;
     let env = ort_environment(a.runtime.ort_lib.clone())?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
@@ -107,6 +127,7 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         let server = tokio::spawn(crate::server::run(
             listener,
             running.service().clone(),
+            connections,
             async move {
                 let _ = stop_rx.await;
             },
@@ -115,6 +136,18 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             _ = shutdown_signal() => Ok(()),
             e = running.failed() => Err(anyhow::Error::new(e)),
         };
+        // The bank is dumped before draining, so an orchestrator's kill after
+        // its grace period cannot cost the dump; `stop` dumps again what the drain appended.
+        let service = running.service().clone();
+        match tokio::task::spawn_blocking(move || service.dump_bank()).await {
+            Ok(Ok(())) => {}
+            Ok(Err(e)) => tracing::error!(error = %e, "dumping the bank at shutdown failed"),
+            Err(e) => tracing::error!(error = %e, "dumping the bank at shutdown failed"),
+        }
+        tracing::info!(
+            drain_secs = connections.drain.as_secs(),
+            "stopping: draining requests in flight"
+        );
         let _ = stop_tx.send(());
         server.await.context("server task")?.context("serving")?;
         running.stop().await;

@@ -5,10 +5,12 @@
 use std::sync::Arc;
 
 use super::model::{EncodeError, Model};
-use crate::intake::image_decode::{decode_rgb, DecodeError};
+use crate::intake::decode_budget::{peak_bytes, BudgetSpent, DecodeBudget, DECODE_BUDGET_WAIT};
+use crate::intake::image_decode::{decode_rgb, read_header, DecodeError, ImageLimits};
 use crate::intake::image_root::{ImageRoot, PathError};
 pub use crate::intake::image_source::ImageSource;
 use crate::intake::image_tensor::tensor_from_bytes;
+use crate::intake::limits::Limits;
 use crate::metrics::Registry;
 use crate::store::image_index::{ImageHit, ImageIndex};
 use crate::store::images::{content_id, ImageStore, StoreError};
@@ -34,6 +36,8 @@ pub enum EngineError {
     #[error("{0}")]
     Path(#[from] PathError),
     #[error(transparent)]
+    Busy(#[from] BudgetSpent),
+    #[error(transparent)]
     Encode(#[from] EncodeError),
     #[error(transparent)]
     Store(#[from] StoreError),
@@ -46,7 +50,8 @@ pub struct Engine {
     models: Vec<Arc<Model>>,
     store: Arc<ImageStore>,
     root: Option<ImageRoot>,
-    max_pixels: u64,
+    image_limits: ImageLimits,
+    decode_budget: DecodeBudget,
     metrics: Arc<Registry>,
     image_index: ImageIndex,
 }
@@ -73,7 +78,7 @@ impl Engine {
         models: Vec<Arc<Model>>,
         store: Arc<ImageStore>,
         root: Option<ImageRoot>,
-        max_pixels: u64,
+        limits: &Limits,
         metrics: Arc<Registry>,
     ) -> Engine {
         assert!(!models.is_empty(), "an engine needs at least one model");
@@ -81,7 +86,8 @@ impl Engine {
             models,
             store,
             root,
-            max_pixels,
+            image_limits: limits.image(),
+            decode_budget: DecodeBudget::new(limits.decode_budget_bytes, DECODE_BUDGET_WAIT),
             metrics,
             image_index: ImageIndex::default(),
         }
@@ -250,17 +256,28 @@ impl Engine {
         bytes: Arc<Vec<u8>>,
         from_request: bool,
     ) -> Result<(Registered, Option<Arc<Vec<f32>>>), EngineError> {
-        let (store, max_pixels) = (Arc::clone(&self.store), self.max_pixels);
+        let (store, limits) = (Arc::clone(&self.store), self.image_limits);
+        // The header is checked and the decode's memory reserved before any pixel is decoded.
+        let header = read_header(&bytes)?;
+        header.check(&limits)?;
+        let _reserved = self
+            .decode_budget
+            .reserve(peak_bytes(
+                header.width,
+                header.height,
+                header.decoded_bytes,
+            ))
+            .await?;
         let spec = model.map(|m| m.bundle.manifest.image.clone());
         let key = id.clone();
         let (width, height, new, tensor) = blocking(move || -> Result<_, EngineError> {
             let (width, height, tensor) = match &spec {
                 Some(spec) => {
-                    let t = tensor_from_bytes(&bytes, max_pixels, spec)?;
+                    let t = tensor_from_bytes(&bytes, &limits, spec)?;
                     (t.width, t.height, Some(t.values))
                 }
                 None => {
-                    let (w, h) = decode_rgb(&bytes, max_pixels)?.dimensions();
+                    let (w, h) = decode_rgb(&bytes, &limits)?.dimensions();
                     (w, h, None)
                 }
             };

@@ -117,6 +117,11 @@ impl BatchObserver for TowerMetrics {
         self.registry
             .set("befit_encoder_queue_depth", &labels, depth as f64);
     }
+    fn on_abandoned(&self, jobs: usize) {
+        let labels = [("model", self.model.as_str()), ("tower", self.tower)];
+        self.registry
+            .add("befit_encoder_abandoned_total", &labels, jobs as u64);
+    }
 }
 
 impl Model {

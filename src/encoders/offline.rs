@@ -7,6 +7,7 @@ use std::sync::Arc;
 use ndarray::Array2;
 
 use super::model::Model;
+use crate::intake::image_decode::ImageLimits;
 use crate::intake::image_tensor::tensor_from_bytes;
 use crate::vectors::{EmbedError, Embedder};
 
@@ -14,7 +15,7 @@ use crate::vectors::{EmbedError, Embedder};
 pub struct ModelEmbedder {
     pub model: Arc<Model>,
     pub runtime: tokio::runtime::Handle,
-    pub max_pixels: u64,
+    pub image_limits: ImageLimits,
 }
 
 fn rows(vectors: Vec<Vec<f32>>, dimension: usize) -> Result<Array2<f32>, EmbedError> {
@@ -54,7 +55,7 @@ impl Embedder for ModelEmbedder {
         for path in paths {
             let bytes =
                 std::fs::read(path).map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
-            let tensor = tensor_from_bytes(&bytes, self.max_pixels, spec)
+            let tensor = tensor_from_bytes(&bytes, &self.image_limits, spec)
                 .map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
             tensors.push(tensor.values);
         }

@@ -1,5 +1,6 @@
-//! Image bytes to upright 8-bit RGB, with the pixel limit checked from the
-//! header so a small file declaring 50,000 x 50,000 pixels is refused cheaply.
+//! Image bytes to upright 8-bit RGB, with the pixel and decoded-size limits
+//! checked from the header, so a small file declaring 50,000 x 50,000 pixels,
+//! or 40 megapixels at 16 bits per sample, is refused before any decoding.
 
 use std::io::Cursor;
 
@@ -9,6 +10,68 @@ use image::{ImageDecoder, ImageFormat, ImageReader, RgbImage};
 /// above any camera frame a trainer feeds, 120 MB once decoded to 8-bit RGB,
 /// so a handful at once stays well inside a server's memory).
 pub const DEFAULT_MAX_PIXELS: u64 = 40_000_000;
+
+/// Default for the bytes one image may take once decoded, as its header
+/// declares them (width x height x channels x bytes per sample): 40
+/// megapixels of 8-bit RGBA. A 40-megapixel PNG of 16-bit RGB (240 MB
+/// decoded, from a file of a few hundred kilobytes) is over it.
+pub const DEFAULT_MAX_DECODED_BYTES: u64 = 4 * DEFAULT_MAX_PIXELS;
+
+/// The limits one decode is held to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ImageLimits {
+    /// Largest `width * height` (`--max-pixels`).
+    pub max_pixels: u64,
+    /// Largest decoded size in bytes, from the header (`--max-decoded-bytes`).
+    pub max_decoded_bytes: u64,
+}
+
+impl Default for ImageLimits {
+    fn default() -> Self {
+        ImageLimits {
+            max_pixels: DEFAULT_MAX_PIXELS,
+            max_decoded_bytes: DEFAULT_MAX_DECODED_BYTES,
+        }
+    }
+}
+
+/// What a header declares, read without decoding any pixel.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Header {
+    pub format: ImageFormat,
+    pub width: u32,
+    pub height: u32,
+    /// width x height x channels x bytes per sample, as the decoder would allocate.
+    pub decoded_bytes: u64,
+}
+
+impl Header {
+    /// Refuses an image over `limits`, or with no pixels.
+    pub fn check(&self, limits: &ImageLimits) -> Result<(), DecodeError> {
+        let (width, height) = (self.width, self.height);
+        let pixels = u64::from(width) * u64::from(height);
+        if pixels == 0 {
+            return Err(DecodeError::Empty { width, height });
+        }
+        if pixels > limits.max_pixels {
+            return Err(DecodeError::TooLarge {
+                width,
+                height,
+                pixels,
+                limit: limits.max_pixels,
+            });
+        }
+        if self.decoded_bytes > limits.max_decoded_bytes {
+            return Err(DecodeError::TooManyBytes {
+                width,
+                height,
+                bytes: self.decoded_bytes,
+                limit: limits.max_decoded_bytes,
+            });
+        }
+        Ok(())
+    }
+}
 
 /// Why bytes could not become an image.
 #[derive(Debug, thiserror::Error)]
@@ -27,41 +90,69 @@ pub enum DecodeError {
         pixels: u64,
         limit: u64,
     },
+    #[error("image declares {width} x {height} pixels that take {bytes} bytes decoded, over the limit of {limit} (--max-decoded-bytes)")]
+    TooManyBytes {
+        width: u32,
+        height: u32,
+        bytes: u64,
+        limit: u64,
+    },
     #[error("image has no pixels ({width} x {height})")]
     Empty { width: u32, height: u32 },
 }
 
-/// Width and height as the header declares them, before any decoding.
-pub fn peek_dimensions(bytes: &[u8]) -> Result<(ImageFormat, u32, u32), DecodeError> {
-    let format = sniff(bytes)?;
-    let reader = ImageReader::with_format(Cursor::new(bytes), format);
-    let (width, height) = reader.into_dimensions().map_err(|e| corrupt(format, e))?;
-    Ok((format, width, height))
+impl DecodeError {
+    /// Whether the image was refused for its size rather than its bytes.
+    pub fn is_too_large(&self) -> bool {
+        matches!(
+            self,
+            DecodeError::TooLarge { .. } | DecodeError::TooManyBytes { .. }
+        )
+    }
 }
 
-/// Decodes `bytes`, applies EXIF orientation, and converts to RGB
-/// (alpha dropped, greyscale replicated).
-pub fn decode_rgb(bytes: &[u8], max_pixels: u64) -> Result<RgbImage, DecodeError> {
-    let (format, width, height) = peek_dimensions(bytes)?;
-    let pixels = u64::from(width) * u64::from(height);
-    if pixels == 0 {
-        return Err(DecodeError::Empty { width, height });
-    }
-    if pixels > max_pixels {
-        return Err(DecodeError::TooLarge {
-            width,
-            height,
-            pixels,
-            limit: max_pixels,
-        });
-    }
+/// What the header declares, before any decoding. The header is read without
+/// the decoder's own allocation limits (only a few bytes are read), so an
+/// absurd size is reported as [`DecodeError::TooLarge`], not as a corrupt file.
+pub fn read_header(bytes: &[u8]) -> Result<Header, DecodeError> {
+    let format = sniff(bytes)?;
     let mut reader = ImageReader::with_format(Cursor::new(bytes), format);
-    let mut limits = image::Limits::default();
-    limits.max_image_width = Some(width);
-    limits.max_image_height = Some(height);
-    // Room for the decoded image at 16 bits per channel with alpha, plus slack.
-    limits.max_alloc = Some(pixels.saturating_mul(8).saturating_add(1 << 24));
-    reader.limits(limits);
+    reader.no_limits();
+    let decoder = reader.into_decoder().map_err(|e| corrupt(format, e))?;
+    let (width, height) = decoder.dimensions();
+    Ok(Header {
+        format,
+        width,
+        height,
+        decoded_bytes: decoder.total_bytes(),
+    })
+}
+
+/// Width and height as the header declares them, before any decoding.
+pub fn peek_dimensions(bytes: &[u8]) -> Result<(ImageFormat, u32, u32), DecodeError> {
+    let header = read_header(bytes)?;
+    Ok((header.format, header.width, header.height))
+}
+
+/// Decodes `bytes` within `limits`, applies EXIF orientation, and converts to
+/// RGB (alpha dropped, greyscale replicated).
+pub fn decode_rgb(bytes: &[u8], limits: &ImageLimits) -> Result<RgbImage, DecodeError> {
+    let header = read_header(bytes)?;
+    header.check(limits)?;
+    let (format, width, height) = (header.format, header.width, header.height);
+    let mut reader = ImageReader::with_format(Cursor::new(bytes), format);
+    let mut decode_limits = image::Limits::default();
+    decode_limits.max_image_width = Some(width);
+    decode_limits.max_image_height = Some(height);
+    // The declared size, the RGB copy made after it, plus slack for the decoder's own buffers.
+    let rgb_bytes = u64::from(width) * u64::from(height) * 3;
+    decode_limits.max_alloc = Some(
+        header
+            .decoded_bytes
+            .saturating_add(rgb_bytes)
+            .saturating_add(1 << 24),
+    );
+    reader.limits(decode_limits);
     let mut decoder = reader.into_decoder().map_err(|e| corrupt(format, e))?;
     let orientation = decoder
         .orientation()
@@ -94,87 +185,13 @@ fn corrupt(format: ImageFormat, e: image::ImageError) -> DecodeError {
 mod tests {
     use super::*;
 
-    /// A PNG whose IHDR declares `width x height` but whose one IDAT chunk holds
-    /// an empty zlib stream: a few dozen bytes claiming any size.
-    ///
-    /// Section numbers are those of "Portable Network Graphics (PNG) Specification
-    /// (Second Edition)", W3C Recommendation 10 November 2003 = ISO/IEC 15948:2003
-    /// (quoted from memory).
-    pub(crate) fn png_header_only(width: u32, height: u32) -> Vec<u8> {
-        // IHDR (11.2.2): width and height as 4-byte big-endian integers, then bit depth 8,
-        // colour type 2 (truecolour), compression method 0, filter method 0, no interlace.
-        let mut ihdr = Vec::new();
-        ihdr.extend_from_slice(&width.to_be_bytes());
-        ihdr.extend_from_slice(&height.to_be_bytes());
-        ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
-        // The PNG signature (5.2): 137 80 78 71 13 10 26 10.
-        let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
-        // zlib header 78 9c (RFC 1950, 2.2: deflate with a 32 KiB window, default level),
-        // one final block with fixed Huffman codes holding only the end-of-block code
-        // (RFC 1951, 3.2.3 and 3.2.6: bits 1, 01, 0000000, then padding: bytes 03 00), and the
-        // Adler-32 of no bytes, 1 (RFC 1950, 8.2). Python's zlib.compress(b"") gives these bytes.
-        let empty_zlib = [0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01];
-        // Each chunk (5.3): data length (4 bytes, big endian), type, data, CRC; IHDR first,
-        // then IDAT (11.2.4), IEND (11.2.5) last.
-        for (kind, data) in [
-            (&b"IHDR"[..], &ihdr[..]),
-            (b"IDAT", &empty_zlib),
-            (b"IEND", &[]),
-        ] {
-            let mut chunk = kind.to_vec();
-            chunk.extend_from_slice(data);
-            png.extend_from_slice(&(data.len() as u32).to_be_bytes());
-            png.extend_from_slice(&chunk);
-            // Chunk CRC over type and data (5.5; the CRC-32 of ISO 3309 / ITU-T V.42).
-            png.extend_from_slice(&crc32(&chunk).to_be_bytes());
-        }
-        png
-    }
-
-    /// CRC-32 bit by bit with the reflected polynomial 0xEDB88320, initial value and final
-    /// XOR all ones (PNG specification 5.5 and its sample code in Annex D).
-    fn crc32(data: &[u8]) -> u32 {
-        let mut crc = 0xFFFF_FFFFu32;
-        for &byte in data {
-            crc ^= u32::from(byte);
-            for _ in 0..8 {
-                crc = if crc & 1 == 1 {
-                    (crc >> 1) ^ 0xEDB8_8320
-                } else {
-                    crc >> 1
-                };
-            }
-        }
-        !crc
-    }
-
     #[test]
-    fn crc_matches_the_published_check_value() {
-        // CRC-32 check value for "123456789" is 0xCBF43926 (the catalogue of parametrised CRCs, CRC-32/ISO-HDLC).
-        assert_eq!(crc32(b"123456789"), 0xCBF4_3926);
-    }
-
-    #[test]
-    fn refuses_a_huge_declared_image_before_decoding() {
-        let bytes = png_header_only(50_000, 50_000);
-        assert_eq!(peek_dimensions(&bytes).unwrap().1, 50_000);
-        match decode_rgb(&bytes, DEFAULT_MAX_PIXELS) {
-            Err(DecodeError::TooLarge { pixels, .. }) => assert_eq!(pixels, 2_500_000_000),
-            other => panic!("expected TooLarge, got {other:?}"),
-        }
-    }
-
-    #[test]
-    fn garbage_and_truncated_images_are_errors() {
+    fn garbage_is_an_error() {
         assert!(matches!(
-            decode_rgb(b"hello world", DEFAULT_MAX_PIXELS),
+            decode_rgb(b"hello world", &ImageLimits::default()),
             Err(DecodeError::UnknownFormat)
         ));
-        let truncated = png_header_only(4, 4);
-        assert!(matches!(
-            decode_rgb(&truncated, DEFAULT_MAX_PIXELS),
-            Err(DecodeError::Corrupt { .. })
-        ));
+        // Limits read from headers are tested with hand-made headers in tests/integration/abuse.rs.
     }
 
     #[test]
@@ -184,7 +201,7 @@ mod tests {
         let mut bytes = Vec::new();
         rgba.write_to(&mut Cursor::new(&mut bytes), ImageFormat::Png)
             .unwrap();
-        let rgb = decode_rgb(&bytes, DEFAULT_MAX_PIXELS).unwrap();
+        let rgb = decode_rgb(&bytes, &ImageLimits::default()).unwrap();
         assert_eq!(rgb.dimensions(), (3, 2));
         assert_eq!(rgb.get_pixel(2, 1).0, [10, 20, 30]);
     }

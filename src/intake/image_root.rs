@@ -4,7 +4,10 @@
 //! of sending their bytes. A path must stay inside the root: `..`, absolute
 //! paths and symbolic links that lead out are refused.
 
+use std::io::Read;
 use std::path::{Component, Path, PathBuf};
+
+use super::limits::DEFAULT_MAX_BODY_BYTES;
 
 /// Why a requested path was not read.
 #[derive(Debug, thiserror::Error)]
@@ -17,20 +20,35 @@ pub enum PathError {
     Missing(String),
     #[error("image {path:?} could not be read: {message}")]
     Read { path: String, message: String },
+    #[error("image file {path:?} is {bytes} bytes, over the limit of {limit} (--max-body-bytes: a file may be as large as a request could carry)")]
+    FileTooLarge {
+        path: String,
+        bytes: u64,
+        limit: u64,
+    },
 }
 
 /// The folder that path-named images must live in.
 #[derive(Debug, Clone)]
 pub struct ImageRoot {
     root: PathBuf,
+    max_file_bytes: u64,
 }
 
 impl ImageRoot {
-    /// Canonicalises `root` so later checks compare real paths.
+    /// Canonicalises `root` so later checks compare real paths. Files are
+    /// limited to [`DEFAULT_MAX_BODY_BYTES`] until [`ImageRoot::max_file_bytes`] says otherwise.
     pub fn new(root: &Path) -> std::io::Result<ImageRoot> {
         Ok(ImageRoot {
             root: root.canonicalize()?,
+            max_file_bytes: DEFAULT_MAX_BODY_BYTES as u64,
         })
+    }
+
+    /// Files larger than `bytes` are refused before they are read.
+    pub fn max_file_bytes(mut self, bytes: u64) -> ImageRoot {
+        self.max_file_bytes = bytes;
+        self
     }
 
     /// The real file `relative` names, when it is inside the root.
@@ -65,13 +83,33 @@ impl ImageRoot {
         Ok(real)
     }
 
-    /// Reads the file `relative` names.
+    /// Reads the file `relative` names, refusing one over the size limit
+    /// from its metadata, and reading no more than the limit should it grow meanwhile.
     pub fn read(&self, relative: &Path) -> Result<Vec<u8>, PathError> {
         let real = self.resolve(relative)?;
-        std::fs::read(&real).map_err(|e| PathError::Read {
-            path: relative.display().to_string(),
+        let path = relative.display().to_string();
+        let read_error = |e: std::io::Error| PathError::Read {
+            path: path.clone(),
             message: e.to_string(),
-        })
+        };
+        let too_large = |bytes| PathError::FileTooLarge {
+            path: path.clone(),
+            bytes,
+            limit: self.max_file_bytes,
+        };
+        let file = std::fs::File::open(&real).map_err(read_error)?;
+        let declared = file.metadata().map_err(read_error)?.len();
+        if declared > self.max_file_bytes {
+            return Err(too_large(declared));
+        }
+        let mut bytes = Vec::with_capacity(declared as usize);
+        file.take(self.max_file_bytes + 1)
+            .read_to_end(&mut bytes)
+            .map_err(read_error)?;
+        if bytes.len() as u64 > self.max_file_bytes {
+            return Err(too_large(bytes.len() as u64));
+        }
+        Ok(bytes)
     }
 }
 
@@ -92,6 +130,13 @@ mod tests {
         )
         .unwrap();
         let root = ImageRoot::new(dir.path()).unwrap();
+        let small = ImageRoot::new(dir.path()).unwrap().max_file_bytes(2);
+        match small.read(Path::new("scenes/a.png")) {
+            Err(PathError::FileTooLarge { bytes, limit, .. }) => assert_eq!((bytes, limit), (3, 2)),
+            other => panic!("expected FileTooLarge, got {other:?}"),
+        }
+        let exact = ImageRoot::new(dir.path()).unwrap().max_file_bytes(3);
+        assert_eq!(exact.read(Path::new("scenes/a.png")).unwrap(), b"png");
 
         assert_eq!(root.read(Path::new("scenes/a.png")).unwrap(), b"png");
         assert_eq!(root.read(Path::new("./scenes/a.png")).unwrap(), b"png");

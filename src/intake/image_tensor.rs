@@ -3,19 +3,19 @@
 
 use image::RgbImage;
 
-use super::image_decode::{decode_rgb, DecodeError};
+use super::image_decode::{decode_rgb, DecodeError, ImageLimits};
 use super::resample;
 use crate::bundle::{ImageSpec, ResizeRule};
 
-/// An image file's bytes as the encoder's input: decoded (pixel limit checked
-/// from the header), resized and normalised. The one way bytes become a tensor,
+/// An image file's bytes as the encoder's input: decoded (pixel and decoded-size
+/// limits checked from the header), resized and normalised. The one way bytes become a tensor,
 /// for the server, the offline commands and the parity tests alike.
 pub fn tensor_from_bytes(
     bytes: &[u8],
-    max_pixels: u64,
+    limits: &ImageLimits,
     spec: &ImageSpec,
 ) -> Result<ImageTensor, DecodeError> {
-    let rgb = decode_rgb(bytes, max_pixels)?;
+    let rgb = decode_rgb(bytes, limits)?;
     let (width, height) = rgb.dimensions();
     Ok(ImageTensor {
         width,

@@ -4,7 +4,8 @@
 
 use std::time::Duration;
 
-use super::image_decode::DEFAULT_MAX_PIXELS;
+use super::decode_budget::DEFAULT_DECODE_BUDGET_BYTES;
+use super::image_decode::{ImageLimits, DEFAULT_MAX_DECODED_BYTES, DEFAULT_MAX_PIXELS};
 use super::validation::{Invalid, Problem};
 
 /// 32 MiB: room for a few hundred base64 images or tens of thousands of captions
@@ -25,6 +26,13 @@ pub const DEFAULT_MAX_PROBE_ROWS: usize = 20_000;
 pub const DEFAULT_MAX_INFLIGHT: usize = 512;
 /// Wall-clock bound of one request.
 pub const DEFAULT_REQUEST_TIMEOUT_SECS: u64 = 120;
+/// Time for a whole body to arrive: a 32 MiB body needs about 1 MiB/s.
+pub const DEFAULT_BODY_TIMEOUT_SECS: u64 = 30;
+/// Slowest body accepted after [`BODY_RATE_GRACE`]: 4 KiB a second, far
+/// below any real network, far above a client trickling bytes to hold a connection.
+pub const DEFAULT_MIN_BODY_RATE: u64 = 4096;
+/// The first seconds of a body are not rate-checked (slow starts, small bodies).
+pub const BODY_RATE_GRACE: Duration = Duration::from_secs(3);
 
 /// One limit: what it counts and the flag that raises it, so every refusal says both.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -35,6 +43,7 @@ pub enum Limit {
     CaptionBytes,
     Images,
     Pixels,
+    DecodedBytes,
     ProbeRows,
 }
 
@@ -48,6 +57,7 @@ impl Limit {
             Limit::CaptionBytes => "caption length in bytes",
             Limit::Images => "number of images",
             Limit::Pixels => "image size in pixels",
+            Limit::DecodedBytes => "decoded image size in bytes",
             Limit::ProbeRows => "number of probe rows",
         }
     }
@@ -61,6 +71,7 @@ impl Limit {
             Limit::CaptionBytes => "--max-caption-bytes",
             Limit::Images => "--max-images",
             Limit::Pixels => "--max-pixels",
+            Limit::DecodedBytes => "--max-decoded-bytes",
             Limit::ProbeRows => "--max-probe-rows",
         }
     }
@@ -75,9 +86,16 @@ pub struct Limits {
     pub max_caption_bytes: usize,
     pub max_images: usize,
     pub max_pixels: u64,
+    pub max_decoded_bytes: u64,
+    /// Bytes of images being decoded at once, server-wide.
+    pub decode_budget_bytes: u64,
     pub max_probe_rows: usize,
     pub max_inflight: usize,
     pub request_timeout: Duration,
+    /// Time for a whole body to arrive.
+    pub body_timeout: Duration,
+    /// Bytes a second a body must keep up after [`BODY_RATE_GRACE`].
+    pub min_body_rate: u64,
 }
 
 impl Default for Limits {
@@ -89,9 +107,13 @@ impl Default for Limits {
             max_caption_bytes: DEFAULT_MAX_CAPTION_BYTES,
             max_images: DEFAULT_MAX_IMAGES,
             max_pixels: DEFAULT_MAX_PIXELS,
+            max_decoded_bytes: DEFAULT_MAX_DECODED_BYTES,
+            decode_budget_bytes: DEFAULT_DECODE_BUDGET_BYTES,
             max_probe_rows: DEFAULT_MAX_PROBE_ROWS,
             max_inflight: DEFAULT_MAX_INFLIGHT,
             request_timeout: Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
+            body_timeout: Duration::from_secs(DEFAULT_BODY_TIMEOUT_SECS),
+            min_body_rate: DEFAULT_MIN_BODY_RATE,
         }
     }
 }
@@ -106,7 +128,16 @@ impl Limits {
             Limit::CaptionBytes => self.max_caption_bytes as u64,
             Limit::Images => self.max_images as u64,
             Limit::Pixels => self.max_pixels,
+            Limit::DecodedBytes => self.max_decoded_bytes,
             Limit::ProbeRows => self.max_probe_rows as u64,
+        }
+    }
+
+    /// The limits one image decode is held to.
+    pub fn image(&self) -> ImageLimits {
+        ImageLimits {
+            max_pixels: self.max_pixels,
+            max_decoded_bytes: self.max_decoded_bytes,
         }
     }
 

@@ -2,6 +2,7 @@
 //!
 //! - [`image_decode`]: PNG/JPEG/WebP bytes to upright RGB pixels, refusing
 //!   oversized images from their header before decoding.
+//! - [`decode_budget`]: the server-wide memory budget for decodes in flight.
 //! - [`resample`]: Pillow-compatible resampling, so preprocessing matches the
 //!   Python side that trained and exported the encoders.
 //! - [`image_tensor`]: the bundle's resize rule and normalisation, to NCHW floats.
@@ -12,6 +13,7 @@
 //! - [`validation`]: typed faults of a request's fields.
 
 pub mod captions;
+pub mod decode_budget;
 pub mod image_decode;
 pub mod image_root;
 pub mod image_source;

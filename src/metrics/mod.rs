@@ -65,6 +65,21 @@ pub const FAMILIES: &[(&str, Kind, &str)] = &[
         Kind::Counter,
         "Captions cut at the bundle's token limit, by model.",
     ),
+    (
+        "befit_http_bodies_refused_total",
+        Kind::Counter,
+        "Request bodies refused while being read (too large, too slow), by error code.",
+    ),
+    (
+        "befit_http_bodies_reading",
+        Kind::Gauge,
+        "Request bodies being read now; they hold no request slot.",
+    ),
+    (
+        "befit_encoder_abandoned_total",
+        Kind::Counter,
+        "Encode jobs dropped unrun because their requester had gone, by model and tower.",
+    ),
 ];
 
 type Labels = Vec<(&'static str, String)>;

@@ -12,7 +12,6 @@ use serde::Serialize;
 
 use crate::bank::BankError;
 use crate::encoders::{EncodeError, EngineError};
-use crate::intake::image_decode::DecodeError;
 use crate::intake::image_root::PathError;
 use crate::intake::validation::{Invalid, Problem};
 use crate::probe::ProbeError;
@@ -38,6 +37,7 @@ pub enum ErrorCode {
     NotFound,
     MethodNotAllowed,
     MapMismatch,
+    SlowBody,
     BodyTooLarge,
     UnsupportedMediaType,
     BadImage,
@@ -49,7 +49,7 @@ pub enum ErrorCode {
 
 impl ErrorCode {
     /// Every code, in the order of the API doc's table.
-    pub const ALL: [ErrorCode; 17] = [
+    pub const ALL: [ErrorCode; 18] = [
         ErrorCode::BadJson,
         ErrorCode::InvalidField,
         ErrorCode::OverLimit,
@@ -60,6 +60,7 @@ impl ErrorCode {
         ErrorCode::NotFound,
         ErrorCode::MethodNotAllowed,
         ErrorCode::MapMismatch,
+        ErrorCode::SlowBody,
         ErrorCode::BodyTooLarge,
         ErrorCode::UnsupportedMediaType,
         ErrorCode::BadImage,
@@ -82,6 +83,7 @@ impl ErrorCode {
             | ErrorCode::NotFound => StatusCode::NOT_FOUND,
             ErrorCode::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ErrorCode::MapMismatch => StatusCode::CONFLICT,
+            ErrorCode::SlowBody => StatusCode::REQUEST_TIMEOUT,
             ErrorCode::BodyTooLarge => StatusCode::PAYLOAD_TOO_LARGE,
             ErrorCode::UnsupportedMediaType => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ErrorCode::BadImage | ErrorCode::ImageTooLarge => StatusCode::UNPROCESSABLE_ENTITY,
@@ -103,6 +105,7 @@ impl ErrorCode {
             ErrorCode::NotFound => "not_found",
             ErrorCode::MethodNotAllowed => "method_not_allowed",
             ErrorCode::MapMismatch => "map_mismatch",
+            ErrorCode::SlowBody => "slow_body",
             ErrorCode::BodyTooLarge => "body_too_large",
             ErrorCode::UnsupportedMediaType => "unsupported_media_type",
             ErrorCode::BadImage => "bad_image",
@@ -233,11 +236,14 @@ impl From<EngineError> for ApiError {
                 return ApiError::new(ErrorCode::UnknownModel, message).at("model")
             }
             EngineError::UnknownImage(_) => ErrorCode::UnknownImage,
-            EngineError::Decode(DecodeError::TooLarge { .. }) => ErrorCode::ImageTooLarge,
+            EngineError::Decode(ref d) if d.is_too_large() => ErrorCode::ImageTooLarge,
             EngineError::Decode(_) => ErrorCode::BadImage,
             EngineError::Path(PathError::NoRoot | PathError::Escapes(_)) => ErrorCode::PathRefused,
+            EngineError::Path(PathError::FileTooLarge { .. }) => ErrorCode::ImageTooLarge,
             EngineError::Path(_) => ErrorCode::BadImage,
-            EngineError::Encode(EncodeError::Overloaded { .. }) => ErrorCode::Overloaded,
+            EngineError::Encode(EncodeError::Overloaded { .. }) | EngineError::Busy(_) => {
+                ErrorCode::Overloaded
+            }
             EngineError::Encode(EncodeError::Caption { .. }) => ErrorCode::InvalidField,
             EngineError::Encode(EncodeError::Failed { .. })
             | EngineError::Store(_)

@@ -1,16 +1,21 @@
 //! The HTTP service.
 //!
-//! [`app`] builds the router over a [`Service`] (routes, the body limit
-//! `--max-body-bytes` for every route, the layer stack of panic catching,
-//! tracing, load shedding, a concurrency limit and a timeout) so tests can
-//! drive it with `oneshot`; [`run`] serves it on a bound listener until
-//! `shutdown` resolves. Handlers parse, check, call the domain and shape the
-//! answer; [`error`] maps every domain error to the API's codes. The API is
+//! [`app`] builds the router over a [`Service`] so tests can drive it with
+//! `oneshot`: the probes (`/healthz`, `/readyz`, `/metrics`) answer outside
+//! every limit; the API routes first have their body read in full ([`body`]:
+//! size, deadline and rate, holding no slot), then pass load shedding, the
+//! concurrency limit and the timeout. [`run`] serves it on a bound listener
+//! ([`listen`]: header timeout, connection cap, drain) until `shutdown`
+//! resolves. Handlers parse, check, call the domain and shape the answer;
+//! [`error`] maps every domain error to the API's codes. The API is
 //! documented in `proto-free-api.md`.
 
+pub mod body;
 pub mod error;
 pub mod json;
+pub mod listen;
 pub mod routes;
+mod shed_log;
 
 use std::future::Future;
 use std::time::Instant;
@@ -33,10 +38,12 @@ use error::{ApiError, ErrorCode};
 /// The router with every route and layer.
 pub fn app(state: Service) -> Router {
     let limits = state.limits().clone();
-    let routes = Router::new()
+    let probes = Router::new()
         .route("/healthz", get(routes::health::healthz))
         .route("/readyz", get(routes::health::readyz))
         .route("/metrics", get(routes::health::metrics))
+        .with_state(state.clone());
+    let api = Router::new()
         .route("/v1/models", get(routes::models::list))
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
@@ -51,8 +58,6 @@ pub fn app(state: Service) -> Router {
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(limits.max_body_bytes))
-        .with_state(state.clone());
-    routes
         .layer(
             ServiceBuilder::new()
                 .layer(HandleErrorLayer::new(shed_or_timeout))
@@ -60,22 +65,31 @@ pub fn app(state: Service) -> Router {
                 .layer(GlobalConcurrencyLimitLayer::new(limits.max_inflight))
                 .timeout(limits.request_timeout),
         )
+        // Outside the limit: a body still arriving holds no slot.
+        .layer(middleware::from_fn_with_state(
+            state.clone(),
+            body::read_first,
+        ))
+        .with_state(state.clone());
+    probes
+        .merge(api)
         .layer(middleware::from_fn_with_state(state, record))
-        .layer(TraceLayer::new_for_http())
+        // Failures are counted and summarised by `record`; internal errors log themselves once.
+        .layer(TraceLayer::new_for_http().on_failure(()))
         .layer(CatchPanicLayer::custom(|_| {
             ApiError::internal("a request handler panicked").into_response()
         }))
 }
 
-/// Serves `app(state)` on `listener` until `shutdown` resolves, then drains.
+/// Serves `app(state)` on `listener` until `shutdown` resolves, then drains
+/// for at most `settings.drain`.
 pub async fn run(
     listener: tokio::net::TcpListener,
     state: Service,
+    settings: listen::ConnectionSettings,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, app(state))
-        .with_graceful_shutdown(shutdown)
-        .await
+    listen::serve(listener, app(state), settings, shutdown).await
 }
 
 async fn not_found() -> ApiError {
@@ -110,20 +124,53 @@ async fn record(State(state): State<Service>, request: Request, next: Next) -> R
         .extensions()
         .get::<MatchedPath>()
         .map_or_else(|| "unmatched".to_string(), |p| p.as_str().to_string());
-    let method = request.method().as_str().to_string();
+    let method = method_label(request.method());
     let started = Instant::now();
     let response = next.run(request).await;
     let status = response.status().as_u16().to_string();
     let metrics = state.metrics();
+    if response.status() == axum::http::StatusCode::SERVICE_UNAVAILABLE {
+        shed_log::count_refusal(&route);
+    }
     metrics.add(
         "befit_http_requests_total",
-        &[("route", &route), ("method", &method), ("status", &status)],
+        &[("route", &route), ("method", method), ("status", &status)],
         1,
     );
     metrics.observe(
         "befit_http_request_seconds",
-        &[("route", &route), ("method", &method)],
+        &[("route", &route), ("method", method)],
         started.elapsed().as_secs_f64(),
     );
     response
+}
+
+/// A method as a metric label: the standard ones by name, anything else as
+/// `other`, so random methods cannot grow `/metrics` without bound.
+fn method_label(method: &axum::http::Method) -> &'static str {
+    use axum::http::Method;
+    match *method {
+        Method::GET => "GET",
+        Method::POST => "POST",
+        Method::PUT => "PUT",
+        Method::DELETE => "DELETE",
+        Method::HEAD => "HEAD",
+        Method::OPTIONS => "OPTIONS",
+        Method::PATCH => "PATCH",
+        Method::TRACE => "TRACE",
+        Method::CONNECT => "CONNECT",
+        _ => "other",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn unknown_methods_share_one_label() {
+        let odd = axum::http::Method::from_bytes(b"XYZZY").unwrap();
+        assert_eq!(method_label(&odd), "other");
+        assert_eq!(method_label(&axum::http::Method::POST), "POST");
+    }
 }

@@ -15,6 +15,7 @@ use crate::bank::import::{embed_missing, DEFAULT_IMPORT_BATCH};
 use crate::bank::{BankError, CaptionBank};
 use crate::encoders::offline::ModelEmbedder;
 use crate::encoders::Model;
+use crate::intake::image_decode::ImageLimits;
 use crate::vectors::{EmbedError, Embedder};
 
 /// Where one bundle's backfill is.
@@ -78,7 +79,7 @@ impl Backfills {
         bank: &CaptionBank,
         model: &Arc<Model>,
         runtime: tokio::runtime::Handle,
-        max_pixels: u64,
+        image_limits: ImageLimits,
     ) -> Result<(), BankError> {
         let digest = model.bundle.digest.clone();
         let missing = missing_captions(bank, &digest)?;
@@ -102,7 +103,7 @@ impl Backfills {
             inner: ModelEmbedder {
                 model: Arc::clone(model),
                 runtime,
-                max_pixels,
+                image_limits,
             },
             stop: &self.stop,
         };

@@ -119,10 +119,14 @@ impl Service {
             "stop that server, or give this one another --data-dir",
         )?;
         let image_root = match &config.image_root {
-            Some(dir) => Some(ImageRoot::new(dir).map_err(|source| StartError::ImageRoot {
-                path: dir.clone(),
-                source,
-            })?),
+            Some(dir) => Some(
+                ImageRoot::new(dir)
+                    .map_err(|source| StartError::ImageRoot {
+                        path: dir.clone(),
+                        source,
+                    })?
+                    .max_file_bytes(config.limits.max_body_bytes as u64),
+            ),
             None => None,
         };
         let store = Arc::new(ImageStore::open(&data_dir.images())?);
@@ -158,7 +162,7 @@ impl Service {
             models,
             Arc::clone(&shared.store),
             shared.image_root.clone(),
-            shared.limits.max_pixels,
+            &shared.limits,
             Arc::clone(&shared.metrics),
         );
         let engine = Arc::new(engine);
@@ -212,12 +216,9 @@ impl Service {
             return Ok(());
         };
         for model in engine.models() {
-            self.shared.backfills.run(
-                bank,
-                model,
-                runtime.clone(),
-                self.shared.limits.max_pixels,
-            )?;
+            self.shared
+                .backfills
+                .run(bank, model, runtime.clone(), self.shared.limits.image())?;
         }
         Ok(())
     }

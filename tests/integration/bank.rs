@@ -35,7 +35,7 @@ fn probe_bank() -> (Arc<befit::bank::ModelBank>, Vec<ProbeRow>, Vec<Vec<f32>>) {
     let embedder = befit::encoders::offline::ModelEmbedder {
         model: Arc::clone(&model),
         runtime: runtime.handle().clone(),
-        max_pixels: 40_000_000,
+        image_limits: Default::default(),
     };
     let image_vectors = befit::vectors::Embedder::embed_image_files(&embedder, &images).unwrap();
     let image_vectors = image_vectors

@@ -320,7 +320,7 @@ async fn every_error_row_has_its_status_and_a_useful_message() {
         "not a PNG, JPEG or WebP",
     )
     .await;
-    let huge = huge_png(50_000, 50_000);
+    let huge = png_declaring(50_000, 50_000, 8);
     expect(
         s,
         "POST",
@@ -418,41 +418,4 @@ async fn not_ready_until_the_engine_is_set() {
     .await;
     let (status, _, _) = call(&state, "GET", "/healthz", "", vec![]).await;
     assert_eq!(status, 200);
-}
-
-/// A PNG declaring `w x h` pixels with an empty image stream (see intake::image_decode's tests).
-fn huge_png(w: u32, h: u32) -> Vec<u8> {
-    fn crc32(data: &[u8]) -> u32 {
-        let mut crc = 0xFFFF_FFFFu32;
-        for &byte in data {
-            crc ^= u32::from(byte);
-            for _ in 0..8 {
-                crc = if crc & 1 == 1 {
-                    (crc >> 1) ^ 0xEDB8_8320
-                } else {
-                    crc >> 1
-                };
-            }
-        }
-        !crc
-    }
-    let mut ihdr = w.to_be_bytes().to_vec();
-    ihdr.extend_from_slice(&h.to_be_bytes());
-    ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
-    let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
-    for (kind, data) in [
-        (&b"IHDR"[..], &ihdr[..]),
-        (
-            b"IDAT",
-            &[0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01][..],
-        ),
-        (b"IEND", &[][..]),
-    ] {
-        let mut chunk = kind.to_vec();
-        chunk.extend_from_slice(data);
-        png.extend_from_slice(&(data.len() as u32).to_be_bytes());
-        png.extend_from_slice(&chunk);
-        png.extend_from_slice(&crc32(&chunk).to_be_bytes());
-    }
-    png
 }

@@ -4,6 +4,7 @@
 
 mod util;
 
+mod abuse;
 mod bank;
 mod binary;
 mod concurrency;

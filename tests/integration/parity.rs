@@ -2,7 +2,7 @@
 //! Pillow goldens that `tools/blocksworld/make_goldens.py` wrote from the
 //! models' training code (`fixtures/golden/<bundle>/golden.json`).
 
-use befit::intake::image_decode::{decode_rgb, DEFAULT_MAX_PIXELS};
+use befit::intake::image_decode::{decode_rgb, ImageLimits};
 use befit::intake::image_tensor::to_tensor;
 use serde::Deserialize;
 
@@ -85,7 +85,7 @@ fn check(bundle: &str, min_cosine: f64) {
     let mut worst_levels_seen = 0f64;
     let mut tensors = Vec::new();
     for image in &golden.images {
-        let rgb = decode_rgb(&read(dir.join(&image.file)), DEFAULT_MAX_PIXELS).unwrap();
+        let rgb = decode_rgb(&read(dir.join(&image.file)), &ImageLimits::default()).unwrap();
         let ours = to_tensor(&rgb, &spec);
         let theirs = f32s(&read(dir.join(&image.tensor)));
         assert_eq!(

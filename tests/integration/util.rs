@@ -281,3 +281,37 @@ pub fn cosine(a: &[f32], b: &[f32]) -> f64 {
     }
     ab / (aa.sqrt() * bb.sqrt())
 }
+
+/// A PNG whose IHDR declares `w x h` RGB pixels of `bit_depth` bits per sample
+/// with an empty image stream: a few dozen bytes claiming any size.
+///
+/// Section numbers are those of "Portable Network Graphics (PNG) Specification
+/// (Second Edition)", W3C Recommendation 10 November 2003 = ISO/IEC 15948:2003
+/// (quoted from memory): the signature (5.2); chunks of length, type, data and
+/// CRC (5.3), the CRC-32 of ISO 3309 over type and data (5.5); IHDR (11.2.2):
+/// width, height, bit depth, colour type 2 (truecolour), compression 0, filter
+/// 0, no interlace. The IDAT holds zlib header 78 9c (RFC 1950, 2.2), one final
+/// fixed-Huffman block with only the end-of-block code (RFC 1951, 3.2.3 and
+/// 3.2.6: bytes 03 00) and the Adler-32 of no bytes, 1 (RFC 1950, 8.2); Python's
+/// `zlib.compress(b"")` gives these bytes.
+pub fn png_declaring(w: u32, h: u32, bit_depth: u8) -> Vec<u8> {
+    let mut ihdr = w.to_be_bytes().to_vec();
+    ihdr.extend_from_slice(&h.to_be_bytes());
+    ihdr.extend_from_slice(&[bit_depth, 2, 0, 0, 0]);
+    let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
+    for (kind, data) in [
+        (&b"IHDR"[..], &ihdr[..]),
+        (
+            b"IDAT",
+            &[0x78, 0x9c, 0x03, 0x00, 0x00, 0x00, 0x00, 0x01][..],
+        ),
+        (b"IEND", &[][..]),
+    ] {
+        let mut chunk = kind.to_vec();
+        chunk.extend_from_slice(data);
+        png.extend_from_slice(&(data.len() as u32).to_be_bytes());
+        png.extend_from_slice(&chunk);
+        png.extend_from_slice(&crc32fast::hash(&chunk).to_be_bytes());
+    }
+    png
+}

@@ -1,0 +1,185 @@
+//! Accepting connections: the serving loop under [`super::run`].
+//!
+//! It does what `axum::serve` leaves open: a connection must deliver each
+//! request's headers within [`ConnectionSettings::header_timeout`] (so idle
+//! and slow-header sockets are closed), at most
+//! [`ConnectionSettings::max_connections`] are open at once (the rest wait in
+//! the kernel's accept queue, so descriptors never run out), and shutdown
+//! drains for at most [`ConnectionSettings::drain`] before closing what is left.
+
+use std::future::Future;
+use std::sync::Arc;
+use std::time::Duration;
+
+use axum::body::Body;
+use axum::extract::Request;
+use axum::Router;
+use hyper::body::Incoming;
+use hyper_util::rt::{TokioIo, TokioTimer};
+use hyper_util::service::TowerToHyperService;
+use tokio::net::TcpListener;
+use tokio::sync::{watch, Semaphore};
+use tokio::task::JoinSet;
+use tower::ServiceExt;
+
+/// Default time to send a request's headers, from a connection's opening or its previous answer.
+pub const DEFAULT_HEADER_TIMEOUT_SECS: u64 = 10;
+/// Default cap on open connections: far above what trainer nodes hold open,
+/// below the usual descriptor limit of 65,536 with room for files and sockets of our own.
+pub const DEFAULT_MAX_CONNECTIONS: usize = 16_384;
+/// Default drain time at shutdown; below an orchestrator's usual 30 s grace period.
+pub const DEFAULT_DRAIN_SECS: u64 = 20;
+/// Descriptors kept for the store, the bank, the encoders' libraries and logs.
+const RESERVED_DESCRIPTORS: u64 = 256;
+
+/// How connections are accepted and closed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ConnectionSettings {
+    pub header_timeout: Duration,
+    pub max_connections: usize,
+    pub drain: Duration,
+}
+
+impl Default for ConnectionSettings {
+    fn default() -> Self {
+        ConnectionSettings {
+            header_timeout: Duration::from_secs(DEFAULT_HEADER_TIMEOUT_SECS),
+            max_connections: DEFAULT_MAX_CONNECTIONS,
+            drain: Duration::from_secs(DEFAULT_DRAIN_SECS),
+        }
+    }
+}
+
+/// The connection cap can not be kept under the process's descriptor limit.
+#[derive(Debug, thiserror::Error)]
+#[error("--max-connections {asked} does not fit under this process's open-file limit of {limit} (with {RESERVED_DESCRIPTORS} kept for befit's own files); lower --max-connections or raise the limit (ulimit -n)")]
+pub struct TooManyConnections {
+    pub asked: usize,
+    pub limit: u64,
+}
+
+impl ConnectionSettings {
+    /// Refuses a connection cap the descriptor limit `open_files` could not hold.
+    pub fn check(&self, open_files: Option<u64>) -> Result<(), TooManyConnections> {
+        match open_files {
+            Some(limit) if self.max_connections as u64 + RESERVED_DESCRIPTORS > limit => {
+                Err(TooManyConnections {
+                    asked: self.max_connections,
+                    limit,
+                })
+            }
+            _ => Ok(()),
+        }
+    }
+}
+
+/// Serves `app` on `listener` until `shutdown` resolves, then drains.
+pub async fn serve(
+    listener: TcpListener,
+    app: Router,
+    settings: ConnectionSettings,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
+    let slots = Arc::new(Semaphore::new(settings.max_connections.max(1)));
+    let (stop_tx, stop_rx) = watch::channel(false);
+    let mut connections = JoinSet::new();
+    let mut shutdown = std::pin::pin!(shutdown);
+    loop {
+        let slot = tokio::select! {
+            slot = Arc::clone(&slots).acquire_owned() => slot.expect("the slot semaphore is never closed"),
+            () = &mut shutdown => break,
+        };
+        let stream = tokio::select! {
+            accepted = listener.accept() => match accepted {
+                Ok((stream, _)) => stream,
+                Err(e) => {
+                    // Out of descriptors or a connection reset before accept: pause, go on.
+                    tracing::warn!(error = %e, "accept failed");
+                    tokio::time::sleep(Duration::from_millis(50)).await;
+                    continue;
+                }
+            },
+            () = &mut shutdown => break,
+        };
+        let _ = stream.set_nodelay(true);
+        let app = app.clone();
+        let mut stop = stop_rx.clone();
+        let header_timeout = settings.header_timeout;
+        connections.spawn(async move {
+            let service = app.map_request(|r: Request<Incoming>| r.map(Body::new));
+            let service = TowerToHyperService::new(service);
+            let mut builder = hyper::server::conn::http1::Builder::new();
+            builder
+                .timer(TokioTimer::new())
+                .header_read_timeout(header_timeout);
+            let connection = builder.serve_connection(TokioIo::new(stream), service);
+            let mut connection = std::pin::pin!(connection);
+            loop {
+                tokio::select! {
+                    _ = connection.as_mut() => break,
+                    changed = stop.changed() => {
+                        connection.as_mut().graceful_shutdown();
+                        if changed.is_err() {
+                            // The loop is gone; finish this connection as it is.
+                            let _ = connection.as_mut().await;
+                            break;
+                        }
+                    }
+                }
+            }
+            drop(slot);
+        });
+        // Finished connections are reaped as we go, so the set stays small.
+        while connections.try_join_next().is_some() {}
+    }
+    drop(listener);
+    let _ = stop_tx.send(true);
+    let drained = tokio::time::timeout(settings.drain, async {
+        while connections.join_next().await.is_some() {}
+    })
+    .await;
+    if drained.is_err() {
+        tracing::warn!(
+            left = connections.len(),
+            "connections still open after the drain time (--drain-secs); closing them"
+        );
+        connections.shutdown().await;
+    }
+    Ok(())
+}
+
+/// The soft limit on open files, where the platform says.
+pub fn open_file_limit() -> Option<u64> {
+    let text = std::fs::read_to_string("/proc/self/limits").ok()?;
+    let line = text.lines().find(|l| l.starts_with("Max open files"))?;
+    line.split_whitespace().nth(3)?.parse().ok()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_cap_over_the_descriptor_limit_is_refused() {
+        let settings = ConnectionSettings {
+            max_connections: 1000,
+            ..ConnectionSettings::default()
+        };
+        assert!(settings.check(Some(1256)).is_ok());
+        let e = settings.check(Some(1255)).unwrap_err();
+        assert!(e.to_string().contains("ulimit -n"), "{e}");
+        assert!(settings.check(None).is_ok());
+    }
+
+    #[test]
+    fn reads_this_process_open_file_limit() {
+        // /proc/self/limits is Linux's (proc(5)); the soft limit is a positive number or "unlimited".
+        if std::path::Path::new("/proc/self/limits").exists() {
+            let text = std::fs::read_to_string("/proc/self/limits").unwrap();
+            let unlimited = text
+                .lines()
+                .any(|l| l.starts_with("Max open files") && l.contains("unlimited"));
+            assert_eq!(open_file_limit().is_some(), !unlimited);
+        }
+    }
+}
