@@ -5,6 +5,7 @@
 mod util;
 
 mod bank;
+mod bank_limits;
 mod binary;
 mod concurrency;
 mod contrast;
