@@ -16,6 +16,7 @@ use std::time::Instant;
 use serde::Serialize;
 
 use super::index::IndexError;
+use super::progress::{EmbedReporter, ImportProgress, ImportReporter};
 use super::validation::EntryProblem;
 use super::{check_tag, BankError, ModelBank, RowId};
 use crate::vectors::{EmbedError, Embedder};
@@ -85,23 +86,6 @@ pub enum ImportError {
     /// The tag given for the whole import is invalid.
     #[error("the import tag is invalid: {0}")]
     Tag(EntryProblem),
-}
-
-/// Where an import is, passed to the progress callback after each batch.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
-pub struct ImportProgress {
-    /// Bytes of the file consumed.
-    pub bytes_read: u64,
-    /// Size of the file (0 when unknown).
-    pub total_bytes: u64,
-    /// Lines read.
-    pub lines: u64,
-    /// Captions embedded and stored.
-    pub added: u64,
-    /// Captions skipped because the bank already had them for this bundle.
-    pub present: u64,
-    /// Lines that could not be used.
-    pub bad: u64,
 }
 
 /// One line that could not be used.
@@ -221,7 +205,7 @@ pub fn import_jsonl(
     path: &Path,
     tag: Option<&str>,
     batch_size: usize,
-    progress: &mut dyn FnMut(&ImportProgress),
+    progress: &mut ImportReporter<'_>,
 ) -> Result<ImportReport, ImportError> {
     let start = Instant::now();
     if batch_size == 0 {
@@ -390,7 +374,7 @@ pub fn embed_missing(
     bank: &ModelBank,
     embedder: &dyn Embedder,
     batch_size: usize,
-    progress: &mut dyn FnMut(u64),
+    progress: &mut EmbedReporter<'_>,
 ) -> Result<u64, ImportError> {
     if batch_size == 0 {
         return Err(ImportError::BatchSize);

@@ -42,12 +42,13 @@ use serde::Serialize;
 pub use caption_bank::{BankStats, CaptionBank};
 pub use errors::BankError;
 pub use exact::Neighbour;
-pub use import::{embed_missing, import_jsonl, ImportError, ImportProgress, ImportReport};
+pub use import::{embed_missing, import_jsonl, ImportError, ImportReport};
 pub use index::{
     Answered, DumpReport, IndexError, IndexParams, IndexStats, LoadReport, RowSource, Search,
     SearchMode, VectorIndex,
 };
 pub use model_bank::{Appended, BankAnswer, BankHit, BankQuery, ModelBank, NewCaption};
+pub use progress::ImportProgress;
 pub use store::{Caption, CaptionStore, StoreError};
 pub use validation::{check_caption, check_tag, EntryProblem, MAX_TAG_BYTES};
 

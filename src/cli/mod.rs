@@ -5,6 +5,7 @@
 pub mod args;
 mod bank_commands;
 mod probe_commands;
+pub mod progress;
 mod score_command;
 mod serve;
 
