@@ -5,9 +5,9 @@
 use std::io::Write;
 
 use befit::bank::index::GraphOrigin;
-use befit::bank::progress::ImportBar;
 use befit::bank::synthetic::SceneEmbedder;
 use befit::bank::{import_jsonl, BankConfig, BankQuery, CaptionBank, SearchMode};
+use befit::cli::progress::ImportBar;
 
 const DIGEST: &str = "1111111111111111111111111111111111111111111111111111111111111111";
 const DIM: usize = 48;

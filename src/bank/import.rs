@@ -15,6 +15,9 @@ use std::time::Instant;
 
 use serde::Serialize;
 
+use super::index::IndexError;
+use super::progress::{EmbedReporter, ImportProgress, ImportReporter};
+use super::validation::EntryProblem;
 use super::{check_tag, BankError, ModelBank, RowId};
 use crate::vectors::{EmbedError, Embedder};
 
@@ -69,26 +72,20 @@ pub enum ImportError {
     /// Batch size 0.
     #[error("batch size must be at least 1")]
     BatchSize,
+    /// The encoder returned an unusable vector (NaN, all zeros).
+    #[error(
+        "the encoder's vector for line {line} is unusable: {source}; the encoder output is broken"
+    )]
+    Vector {
+        /// Line of the caption.
+        line: u64,
+        /// What is wrong with the vector.
+        #[source]
+        source: IndexError,
+    },
     /// The tag given for the whole import is invalid.
     #[error("the import tag is invalid: {0}")]
-    Tag(String),
-}
-
-/// Where an import is, passed to the progress callback after each batch.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
-pub struct ImportProgress {
-    /// Bytes of the file consumed.
-    pub bytes_read: u64,
-    /// Size of the file (0 when unknown).
-    pub total_bytes: u64,
-    /// Lines read.
-    pub lines: u64,
-    /// Captions embedded and stored.
-    pub added: u64,
-    /// Captions skipped because the bank already had them for this bundle.
-    pub present: u64,
-    /// Lines that could not be used.
-    pub bad: u64,
+    Tag(EntryProblem),
 }
 
 /// One line that could not be used.
@@ -161,12 +158,9 @@ fn parse_line(
         Line::Object(o) => (o.text, o.tag),
     };
     let tag = tag.or_else(|| default_tag.map(str::to_string));
-    bank.core.check_text(0, &caption).map_err(|e| match e {
-        BankError::Invalid { problem, .. } => problem,
-        other => other.to_string(),
-    })?;
+    bank.check_text(&caption).map_err(|p| p.to_string())?;
     if let Some(t) = &tag {
-        check_tag(t)?;
+        check_tag(t).map_err(|p| p.to_string())?;
     }
     Ok(Some((caption, tag)))
 }
@@ -211,7 +205,7 @@ pub fn import_jsonl(
     path: &Path,
     tag: Option<&str>,
     batch_size: usize,
-    progress: &mut dyn FnMut(&ImportProgress),
+    progress: &mut ImportReporter<'_>,
 ) -> Result<ImportReport, ImportError> {
     let start = Instant::now();
     if batch_size == 0 {
@@ -335,13 +329,10 @@ fn run_batch(
         let mut units = Vec::with_capacity(texts.len());
         for (n, row) in vectors.outer_iter().enumerate() {
             let row: Vec<f32> = row.iter().copied().collect();
-            let unit = super::index::unit_vector(&row, dim, bank.digest()).map_err(|e| {
-                BankError::Invalid {
-                    position: n,
-                    problem: format!(
-                        "line {}: the encoder's vector is unusable: {e}",
-                        batch[to_embed[n]].line
-                    ),
+            let unit = super::index::unit_vector(&row, dim, bank.digest()).map_err(|source| {
+                ImportError::Vector {
+                    line: batch[to_embed[n]].line,
+                    source,
                 }
             })?;
             units.push(unit);
@@ -383,7 +374,7 @@ pub fn embed_missing(
     bank: &ModelBank,
     embedder: &dyn Embedder,
     batch_size: usize,
-    progress: &mut dyn FnMut(u64),
+    progress: &mut EmbedReporter<'_>,
 ) -> Result<u64, ImportError> {
     if batch_size == 0 {
         return Err(ImportError::BatchSize);

@@ -1,51 +1,31 @@
-//! The progress bar `befit bank import` draws: bytes of the file read, with
-//! captions per second and time left.
+//! How the bank's long jobs report where they are: a callback after each
+//! committed batch. The bank draws nothing; `befit bank import` and
+//! `befit bank embed-missing` draw a bar from it (`cli::progress`), and the
+//! server's backfill keeps the counts that `GET /v1/bank` shows.
 
-use indicatif::{ProgressBar, ProgressStyle};
+use serde::Serialize;
 
-use super::import::{ImportProgress, ImportReport};
-
-/// How often the bar redraws at most, per second.
-const REDRAWS_PER_SECOND: u8 = 8;
-
-/// A bar over the bytes of the file being imported.
-pub struct ImportBar {
-    bar: ProgressBar,
+/// Where an import is, passed to its [`ImportReporter`] after each batch.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize)]
+pub struct ImportProgress {
+    /// Bytes of the file consumed.
+    pub bytes_read: u64,
+    /// Size of the file (0 when unknown).
+    pub total_bytes: u64,
+    /// Lines read.
+    pub lines: u64,
+    /// Captions embedded and stored.
+    pub added: u64,
+    /// Captions skipped because the bank already had them for this bundle.
+    pub present: u64,
+    /// Lines that could not be used.
+    pub bad: u64,
 }
 
-impl ImportBar {
-    /// A bar for a file of `total_bytes` bytes, drawn on standard error.
-    pub fn new(total_bytes: u64) -> Self {
-        let bar = ProgressBar::with_draw_target(
-            Some(total_bytes),
-            indicatif::ProgressDrawTarget::stderr_with_hz(REDRAWS_PER_SECOND),
-        );
-        let style = ProgressStyle::with_template(
-            "{wide_bar} {percent:>3}% {msg} [{elapsed_precise}, {eta_precise} left]",
-        )
-        .unwrap_or_else(|_| ProgressStyle::default_bar());
-        bar.set_style(style);
-        Self { bar }
-    }
+/// Told where [`super::import_jsonl`] is after every committed batch, and
+/// once more at the end of the file.
+pub type ImportReporter<'a> = dyn FnMut(&ImportProgress) + 'a;
 
-    /// Moves the bar to where the import is.
-    pub fn update(&self, p: &ImportProgress) {
-        self.bar.set_position(p.bytes_read);
-        let secs = self.bar.elapsed().as_secs_f64().max(1e-3);
-        self.bar.set_message(format!(
-            "{} added, {} present, {} bad, {:.0} captions/s",
-            p.added,
-            p.present,
-            p.bad,
-            (p.added + p.present) as f64 / secs
-        ));
-    }
-
-    /// Leaves the bar at its end with a summary.
-    pub fn finish(&self, report: &ImportReport) {
-        self.bar.finish_with_message(format!(
-            "{} added, {} present, {} bad lines",
-            report.added, report.present, report.bad
-        ));
-    }
-}
+/// Told how many captions [`super::embed_missing`] has embedded so far,
+/// after every committed batch.
+pub type EmbedReporter<'a> = dyn FnMut(u64) + 'a;

@@ -1,5 +1,7 @@
 use std::io::Write;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Arc;
 
 use super::import::DEFAULT_IMPORT_BATCH;
 use super::synthetic::SceneEmbedder;

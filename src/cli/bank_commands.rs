@@ -6,8 +6,8 @@ use anyhow::{bail, Context};
 
 use super::args::{BankEmbedMissingArgs, BankImportArgs, BankQueryArgs};
 use super::probe_commands::{progress_bar, OfflineModel};
+use super::progress::ImportBar;
 use crate::bank::import::import_jsonl;
-use crate::bank::progress::ImportBar;
 use crate::bank::{BankConfig, BankQuery, CaptionBank, SearchMode};
 use crate::service::data_dir::{DataDir, BANK_WRITE_ADVICE};
 use crate::vectors::Embedder;

@@ -8,6 +8,7 @@ pub mod args;
 mod bank_commands;
 pub mod config_file;
 mod probe_commands;
+pub mod progress;
 mod score_command;
 mod serve;
 

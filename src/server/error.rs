@@ -10,7 +10,7 @@ use axum::http::{header, HeaderValue, StatusCode};
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
 
-use crate::bank::BankError;
+use crate::bank::{BankError, EntryProblem, IndexError};
 use crate::encoders::{EncodeError, EngineError};
 use crate::intake::image_root::PathError;
 use crate::intake::validation::{Invalid, Problem};
@@ -285,12 +285,47 @@ impl From<MapError> for ApiError {
     }
 }
 
+impl From<IndexError> for ApiError {
+    fn from(e: IndexError) -> ApiError {
+        match e {
+            // Search bounds: `name` is the request field (`k`, `ef_search`).
+            IndexError::Setting { name, min, max, .. } => Invalid::new(
+                name,
+                Problem::OutOfRange {
+                    what: name,
+                    min: min as u64,
+                    max: max as u64,
+                },
+            )
+            .into(),
+            IndexError::Dimension { got, expected, .. } => Invalid::new(
+                "vector",
+                Problem::VectorLength {
+                    got,
+                    want: expected,
+                },
+            )
+            .into(),
+            IndexError::NotFinite { .. } | IndexError::Zero => {
+                Invalid::new("vector", Problem::VectorValues).into()
+            }
+            other => ApiError::internal(other),
+        }
+    }
+}
+
 impl From<BankError> for ApiError {
     fn from(e: BankError) -> ApiError {
         match e {
-            BankError::Invalid { position, problem } => {
-                ApiError::new(ErrorCode::InvalidField, problem).at(format!("captions[{position}]"))
+            BankError::Invalid { ref problem, .. } => {
+                let code = match problem {
+                    EntryProblem::CaptionTooLong { .. } => ErrorCode::OverLimit,
+                    _ => ErrorCode::InvalidField,
+                };
+                let field = e.field().unwrap_or_else(|| "captions".into());
+                ApiError::new(code, e.to_string()).at(field)
             }
+            BankError::Index(index) => index.into(),
             BankError::TooMany { .. } => {
                 ApiError::new(ErrorCode::OverLimit, e.to_string()).at("captions")
             }

@@ -12,6 +12,7 @@ use ndarray::Array2;
 use serde::Serialize;
 
 use crate::bank::import::{embed_missing, DEFAULT_IMPORT_BATCH};
+use crate::bank::progress::EmbedReporter;
 use crate::bank::{BankError, CaptionBank};
 use crate::encoders::offline::ModelEmbedder;
 use crate::encoders::Model;
@@ -107,9 +108,10 @@ impl Backfills {
             },
             stop: &self.stop,
         };
-        let outcome = embed_missing(&model_bank, &embedder, DEFAULT_IMPORT_BATCH, &mut |done| {
-            self.update(&digest, |p| p.embedded = done);
-        });
+        // The bank's progress hook, as the command line's bar uses it.
+        let report: &mut EmbedReporter<'_> =
+            &mut |done| self.update(&digest, |p| p.embedded = done);
+        let outcome = embed_missing(&model_bank, &embedder, DEFAULT_IMPORT_BATCH, report);
         let stopped = self.stop.load(Ordering::SeqCst);
         self.update(&digest, |p| match &outcome {
             Ok(n) => {

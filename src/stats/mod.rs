@@ -17,7 +17,7 @@
 //! - [`continuity`]: maps from a new bundle's cosine to an old one's.
 //! - [`reward_map`]: such a map tied to the two bundles it was fitted between.
 //! - [`drift`](mod@drift): all of the above between two bundles.
-//! - [`html`]: self-contained HTML reports, drawn with `svg`.
+//! - [`report`]: self-contained HTML reports (page frame, calibration, drift), drawn with `svg`.
 //! - [`export`]: the JSON export the numpy/scipy cross-check reads.
 
 use std::path::PathBuf;
@@ -29,8 +29,8 @@ pub mod contrast;
 pub mod drift;
 pub mod export;
 pub mod hinge;
-pub mod html;
 pub mod pairs;
+pub mod report;
 pub mod retrieval;
 pub mod reward_map;
 pub mod spaces;
@@ -42,8 +42,8 @@ pub use calibration::{calibrate, CalibrationOptions, CalibrationReport};
 pub use continuity::{ContinuityError, ContinuityMap, FittedMap};
 pub use drift::{drift, DriftOptions, DriftReport};
 pub use export::{calibration_export, drift_export, write_json, CalibrationExport, DriftExport};
-pub use html::{calibration_html, drift_html};
 pub use pairs::ProbeVectors;
+pub use report::{calibration_html, drift_html};
 pub use reward_map::{MapBundle, RewardMap, RewardMapError};
 
 /// Why a statistic could not be computed; each message says what to change.

@@ -6,6 +6,7 @@ mod util;
 
 mod abuse;
 mod bank;
+mod bank_limits;
 mod binary;
 mod concurrency;
 mod contrast;

@@ -1,4 +1,7 @@
+use std::collections::HashSet;
+
 use super::*;
+use crate::bank::exact::Neighbour;
 use crate::bank::recall::index_recall;
 use crate::bank::synthetic::{blocks_like, uniform_sphere};
 

@@ -9,6 +9,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::{json, Value};
 
 use super::ModelRef;
+use crate::bank::index::unit_vector;
 use crate::bank::{check_tag, BankAnswer, BankQuery, ModelBank, NewCaption, SearchMode};
 use crate::encoders::Model;
 use crate::intake::image_source::ImageRef;
@@ -17,11 +18,7 @@ use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::ApiJson;
 use crate::service::Service;
 
-/// Most neighbours one query may ask for.
-pub const MAX_K: usize = 1000;
-/// Widest search breadth one query may ask for.
-pub const MAX_EF_SEARCH: usize = 10_000;
-
+/// A tag of the request, checked by the bank's rule before any embedding.
 fn tag_ok(tag: &str, field: &str) -> Result<(), Invalid> {
     check_tag(tag).map_err(|_| {
         Invalid::new(
@@ -31,25 +28,6 @@ fn tag_ok(tag: &str, field: &str) -> Result<(), Invalid> {
             },
         )
     })
-}
-
-/// A query vector: the model's length, finite, not zero; scaled to unit length.
-fn query_vector(vector: &[f32], dimension: usize) -> Result<Vec<f32>, Invalid> {
-    if vector.len() != dimension {
-        return Err(Invalid::new(
-            "vector",
-            Problem::VectorLength {
-                got: vector.len(),
-                want: dimension,
-            },
-        ));
-    }
-    if vector.iter().any(|x| !x.is_finite()) || vector.iter().all(|x| *x == 0.0) {
-        return Err(Invalid::new("vector", Problem::VectorValues));
-    }
-    let mut v = vector.to_vec();
-    crate::vectors::normalise(&mut v);
-    Ok(v)
 }
 
 #[derive(Deserialize)]
@@ -214,30 +192,19 @@ pub async fn neighbors(
 ) -> Result<Json<Value>, ApiError> {
     let engine = service.engine()?;
     let model = engine.model(request.model.as_deref())?;
-    if request.k == 0 || request.k > MAX_K {
-        return Err(Invalid::new(
-            "k",
-            Problem::OutOfRange {
-                what: "k",
-                min: 1,
-                max: MAX_K as u64,
-            },
-        )
-        .into());
-    }
-    if let Some(ef) = request.ef_search {
-        if ef == 0 || ef > MAX_EF_SEARCH {
-            return Err(Invalid::new(
-                "ef_search",
-                Problem::OutOfRange {
-                    what: "ef_search",
-                    min: 1,
-                    max: MAX_EF_SEARCH as u64,
-                },
-            )
-            .into());
-        }
-    }
+    let mode = if request.exact {
+        SearchMode::Exact
+    } else {
+        SearchMode::Auto
+    };
+    let q = BankQuery {
+        k: request.k,
+        ef_search: request.ef_search,
+        tag: request.tag.clone(),
+        mode,
+    };
+    // The bank's bounds on k and ef_search, before any embedding.
+    q.check()?;
     let query: Vec<f32> = match (&request.text, &request.image, &request.vector) {
         (Some(text), None, None) => {
             service.limits().check_caption(text, "text")?;
@@ -254,7 +221,7 @@ pub async fn neighbors(
                 .1
                 .to_vec()
         }
-        (None, None, Some(vector)) => query_vector(vector, model.dimension())?,
+        (None, None, Some(vector)) => unit_vector(vector, model.dimension(), &model.bundle.digest)?,
         _ => {
             return Err(Invalid::new("text", Problem::OneOf("`text`, `image` or `vector`")).into())
         }
@@ -270,17 +237,6 @@ pub async fn neighbors(
         ));
     }
     let bank = model_bank(&service, model)?;
-    let mode = if request.exact {
-        SearchMode::Exact
-    } else {
-        SearchMode::Auto
-    };
-    let q = BankQuery {
-        k: request.k,
-        ef_search: request.ef_search,
-        tag: request.tag.clone(),
-        mode,
-    };
     let answer: BankAnswer =
         blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?;
     Ok(Json(json!({

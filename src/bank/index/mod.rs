@@ -1,0 +1,187 @@
+//! A nearest-neighbour index over "row id -> unit vector" for one bundle
+//! digest: an HNSW graph for speed, the exact matrix beside it for small
+//! banks, narrow filters and ground truth, and a dump on disk so a restart
+//! does not rebuild the graph.
+//!
+//! The index knows nothing about captions: the caption bank uses it with
+//! caption ids, and the same type serves registered images (image row ids).
+//! Whatever owns the rows is the source of truth; it hands them over through
+//! [`RowSource`] at open, and [`VectorIndex::insert`] after each commit.
+//!
+//! - [`parameters`]: settings, their defaults and bounds ([`MAX_K`],
+//!   [`MAX_EF_SEARCH`]), one search's request, vector and digest checks.
+//! - [`errors`]: [`IndexError`], caller faults apart from the index's own.
+//! - `build`: opening (load the dump or build the graph) and inserting.
+//! - `search`: graph, exact and tag-filtered search.
+//! - `persistence`: writing the dump and checking one before it is used.
+//! - `hnsw`: the graph itself, the one file that calls hnsw_rs.
+//!
+//! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
+//! Inserts run in parallel with each other and with searches; a dump holds
+//! back inserts (not searches) while hnsw_rs writes its files, because
+//! hnsw_rs's dump holds its point table locked for reading, and an insert
+//! waiting on that lock would in turn stall every search (parking_lot locks
+//! are fair).
+
+mod build;
+pub mod errors;
+mod hnsw;
+pub mod parameters;
+mod persistence;
+mod search;
+
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::{Mutex, RwLock, RwLockReadGuard, RwLockWriteGuard};
+
+use serde::Serialize;
+
+pub use build::{GraphOrigin, LoadReport, RowSource};
+pub use errors::IndexError;
+pub use parameters::{
+    check_search_bounds, unit_vector, validate_digest, IndexParams, Search, SearchMode,
+    DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH, DEFAULT_EXACT_BELOW,
+    DEFAULT_MAX_CONNECTIONS, MAX_EF_SEARCH, MAX_K,
+};
+pub use persistence::DumpReport;
+pub use search::{Answered, SearchAnswer};
+
+use super::exact::ExactRows;
+use super::RowId;
+use hnsw::HnswGraph;
+use persistence::DumpState;
+
+/// Numbers for `GET /v1/bank`.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct IndexStats {
+    /// Bundle digest.
+    pub digest: String,
+    /// Vector length.
+    pub dimension: usize,
+    /// Rows searchable exactly.
+    pub rows: usize,
+    /// Rows in the graph.
+    pub indexed: usize,
+    /// Rows in the last dump on disk.
+    pub dumped_rows: usize,
+    /// When the last dump was written, milliseconds since the Unix epoch.
+    pub last_dump_unix_ms: Option<u64>,
+    /// Settings.
+    pub params: IndexParams,
+}
+
+fn read<T>(l: &RwLock<T>) -> RwLockReadGuard<'_, T> {
+    l.read().unwrap_or_else(|e| e.into_inner())
+}
+
+fn write<T>(l: &RwLock<T>) -> RwLockWriteGuard<'_, T> {
+    l.write().unwrap_or_else(|e| e.into_inner())
+}
+
+/// The index of one digest. See the module docs.
+pub struct VectorIndex {
+    digest: String,
+    dim: usize,
+    params: IndexParams,
+    /// `<root>/<digest>`, or `None` in memory.
+    dir: Option<PathBuf>,
+    graph: HnswGraph,
+    rows: RwLock<ExactRows>,
+    /// Inserts share it, a dump takes it alone (see the module docs).
+    gate: RwLock<()>,
+    indexed: AtomicUsize,
+    max_indexed: AtomicU64,
+    any_indexed: AtomicBool,
+    /// Bumped by every insert; a dump records the value it saw.
+    generation: AtomicU64,
+    dumped: Mutex<DumpState>,
+}
+
+impl std::fmt::Debug for VectorIndex {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("VectorIndex")
+            .field("digest", &self.digest)
+            .field("dim", &self.dim)
+            .field("rows", &read(&self.rows).len())
+            .finish()
+    }
+}
+
+impl VectorIndex {
+    /// An empty index kept only in memory ([`Self::dump`] writes nothing).
+    pub fn in_memory(
+        digest: &str,
+        dimension: usize,
+        params: IndexParams,
+    ) -> Result<Self, IndexError> {
+        validate_digest(digest)?;
+        params.validate()?;
+        parameters::check_dimension(dimension)?;
+        Ok(Self {
+            digest: digest.to_string(),
+            dim: dimension,
+            params,
+            dir: None,
+            graph: HnswGraph::new(&params, 1),
+            rows: RwLock::new(ExactRows::new(dimension)),
+            gate: RwLock::new(()),
+            indexed: AtomicUsize::new(0),
+            max_indexed: AtomicU64::new(0),
+            any_indexed: AtomicBool::new(false),
+            generation: AtomicU64::new(0),
+            dumped: Mutex::new(DumpState::default()),
+        })
+    }
+
+    /// Bundle digest.
+    pub fn digest(&self) -> &str {
+        &self.digest
+    }
+
+    /// Vector length.
+    pub fn dimension(&self) -> usize {
+        self.dim
+    }
+
+    /// Settings.
+    pub fn params(&self) -> &IndexParams {
+        &self.params
+    }
+
+    /// Rows searchable (exactly; the graph has them once their insert returns).
+    pub fn len(&self) -> usize {
+        read(&self.rows).len()
+    }
+
+    /// True when there are no rows.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Whether row `id` is in the index.
+    pub fn contains(&self, id: RowId) -> bool {
+        read(&self.rows).contains(id)
+    }
+
+    /// The stored (unit) vector of row `id`.
+    pub fn vector(&self, id: RowId) -> Option<Vec<f32>> {
+        read(&self.rows).vector(id).map(<[f32]>::to_vec)
+    }
+
+    /// Numbers for the stats route.
+    pub fn stats(&self) -> IndexStats {
+        let dumped = *self.dumped.lock().unwrap_or_else(|e| e.into_inner());
+        IndexStats {
+            digest: self.digest.clone(),
+            dimension: self.dim,
+            rows: self.len(),
+            indexed: self.indexed.load(Ordering::SeqCst),
+            dumped_rows: dumped.rows,
+            last_dump_unix_ms: dumped.at_unix_ms,
+            params: self.params,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests;

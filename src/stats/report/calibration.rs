@@ -1,0 +1,253 @@
+//! The calibration page: suggested scale, cosine distributions, hinge
+//! losses, retrieval and contrast figures of one bundle.
+
+use std::fmt::Write as _;
+
+use super::page::{maybe, number, page, table, td, td_text};
+use crate::stats::calibration::CalibrationReport;
+use crate::stats::hinge::HingeFigures;
+use crate::stats::summary::Distribution;
+use crate::stats::svg::{self, escape, HistogramSeries, PALETTE};
+
+fn distribution_row(name: &str, d: &Distribution) -> Vec<String> {
+    let q = &d.quantiles;
+    let mut row = vec![td_text(name), td(d.count.to_string())];
+    for v in [
+        d.mean, d.std, d.min, q.p01, q.p05, q.p25, q.p50, q.p75, q.p95, q.p99, d.max,
+    ] {
+        row.push(td(number(v)));
+    }
+    row
+}
+
+const DISTRIBUTION_HEADERS: [&str; 13] = [
+    "cosines", "count", "mean", "std", "min", "1%", "5%", "25%", "50%", "75%", "95%", "99%", "max",
+];
+
+fn hinge_rows(name: &str, f: &HingeFigures) -> Vec<String> {
+    vec![
+        td_text(name),
+        td(f.positives.to_string()),
+        td(number(f.sum_of_hinges)),
+        td(number(f.sum_of_hinges_caption_negatives)),
+        td(number(f.sum_of_hinges_image_negatives)),
+        td(number(f.max_of_hinges)),
+        td(number(f.max_of_hinges_caption_negatives)),
+        td(number(f.max_of_hinges_image_negatives)),
+        td(number(100.0 * f.violation_rate)),
+    ]
+}
+
+const HINGE_HEADERS: [&str; 9] = [
+    "evaluated as",
+    "positives",
+    "SH",
+    "SH captions",
+    "SH images",
+    "MH",
+    "MH captions",
+    "MH images",
+    "violating %",
+];
+
+fn cosine_histograms(title: &str, r: &CalibrationReport) -> String {
+    let c = &r.cosines;
+    let mut series = vec![
+        ("true pairs", &c.true_pairs),
+        ("hardest negatives", &c.hardest_negatives),
+        ("all negatives", &c.all_negatives),
+    ];
+    if let Some(contrasts) = &c.contrasts {
+        series.push(("contrast pairs", contrasts));
+    }
+    let series: Vec<HistogramSeries> = series
+        .into_iter()
+        .zip(PALETTE)
+        .map(|((label, d), colour)| HistogramSeries {
+            label,
+            low: d.histogram.low,
+            high: d.histogram.high,
+            counts: &d.histogram.counts,
+            colour,
+        })
+        .collect();
+    svg::histograms(title, &series)
+}
+
+/// The sections of one bundle's calibration, shared with the drift page.
+pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
+    let s = &r.suggested;
+    out.push_str("<h2>Suggested reward scale</h2>");
+    out.push_str(&table(
+        &["scale", "value", "meaning"],
+        &[
+            vec![
+                td_text("affine a, b"),
+                td(s.affine.as_ref().map_or_else(
+                    || "n/a".into(),
+                    |a| format!("a = {}, b = {}", number(a.a), number(a.b)),
+                )),
+                td_text(
+                    "a c + b sends the median hardest negative to 0 and the median true pair to 1",
+                ),
+            ],
+            vec![
+                td_text("CLIP-S weight w"),
+                td(maybe(s.clip_s_weight)),
+                td_text("w max(c, 0) puts the median true pair at 1 (CLIPScore uses 2.5)"),
+            ],
+            vec![
+                td_text("median true cosine"),
+                td(number(s.median_true)),
+                td_text(""),
+            ],
+            vec![
+                td_text("median hardest negative"),
+                td(number(s.median_hardest_negative)),
+                td_text(""),
+            ],
+        ],
+    ));
+
+    out.push_str("<h2>Cosines</h2>");
+    out.push_str(&cosine_histograms("cosine histograms", r));
+    let c = &r.cosines;
+    let mut rows = vec![
+        distribution_row("true pairs", &c.true_pairs),
+        distribution_row("hardest negatives", &c.hardest_negatives),
+        distribution_row("all negatives", &c.all_negatives),
+    ];
+    if let Some(d) = &c.contrasts {
+        rows.push(distribution_row("contrast pairs", d));
+    }
+    out.push_str(&table(&DISTRIBUTION_HEADERS, &rows));
+    out.push_str("<p class=\"note\">std is the population standard deviation; quantiles interpolate linearly (numpy's default).</p>");
+
+    out.push_str("<h2>Retrieval</h2>");
+    let (i2t, t2i) = (&r.retrieval.image_to_text, &r.retrieval.text_to_image);
+    out.push_str(&svg::bars(
+        "recall at K",
+        &[
+            ("R@1".into(), vec![i2t.r_at_1, t2i.r_at_1]),
+            ("R@5".into(), vec![i2t.r_at_5, t2i.r_at_5]),
+            ("R@10".into(), vec![i2t.r_at_10, t2i.r_at_10]),
+        ],
+        &[("image to text", PALETTE[0]), ("text to image", PALETTE[1])],
+        100.0,
+        "recall %",
+    ));
+    let retrieval_row = |name: &str, f: &crate::stats::retrieval::RetrievalFigures| {
+        vec![
+            td_text(name),
+            td(f.queries.to_string()),
+            td(number(f.r_at_1)),
+            td(number(f.r_at_5)),
+            td(number(f.r_at_10)),
+            td(number(f.median_rank)),
+            td(number(f.mean_rank)),
+        ]
+    };
+    out.push_str(&table(
+        &[
+            "direction",
+            "queries",
+            "R@1 %",
+            "R@5 %",
+            "R@10 %",
+            "median rank",
+            "mean rank",
+        ],
+        &[
+            retrieval_row("image to text", i2t),
+            retrieval_row("text to image", t2i),
+        ],
+    ));
+    let _ = write!(
+        out,
+        "<p>rsum (sum of the six recalls, percentage points): <b>{}</b>. A caption or image ranks above the true one only with a strictly greater cosine.</p>",
+        number(r.retrieval.rsum)
+    );
+
+    let h = &r.hinge;
+    let _ = write!(
+        out,
+        "<h2>Hinge losses (VSE++, margin {})</h2>",
+        number(h.margin)
+    );
+    out.push_str(&table(
+        &HINGE_HEADERS,
+        &[
+            hinge_rows("whole probe set as one batch", &h.whole_set),
+            hinge_rows(
+                &format!(
+                    "mean over {} batches of {} images",
+                    h.batched.batches, h.batched.batch_images
+                ),
+                &h.batched.mean,
+            ),
+        ],
+    ));
+    out.push_str("<p class=\"note\">Means per positive pair. SH: sum of hinges; MH: max of hinges (hardest negative); captions/images: the caption-negative and image-negative terms.</p>");
+
+    out.push_str("<h2>Contrast captions</h2>");
+    let ct = &r.contrast;
+    if ct.overall.count == 0 {
+        out.push_str("<p>The probe set has no contrast captions.</p>");
+    } else {
+        let groups: Vec<(String, Vec<f64>)> = ct
+            .by_label
+            .iter()
+            .map(|(label, f)| (label.clone(), vec![100.0 * f.rate.unwrap_or(0.0)]))
+            .collect();
+        out.push_str(&svg::bars(
+            "true caption beats contrast, per changed fact",
+            &groups,
+            &[("true caption strictly above contrast", PALETTE[2])],
+            100.0,
+            "rate %",
+        ));
+        let mut rows: Vec<Vec<String>> = ct
+            .by_label
+            .iter()
+            .map(|(label, f)| {
+                vec![
+                    td_text(label),
+                    td(f.count.to_string()),
+                    td(f.wins.to_string()),
+                    td(f.ties.to_string()),
+                    td(maybe(f.rate.map(|v| 100.0 * v))),
+                    td(maybe(f.mean_gap)),
+                ]
+            })
+            .collect();
+        let o = &ct.overall;
+        rows.push(vec![
+            "<td><b>all</b></td>".into(),
+            td(o.count.to_string()),
+            td(o.wins.to_string()),
+            td(o.ties.to_string()),
+            td(maybe(o.rate.map(|v| 100.0 * v))),
+            td(maybe(o.mean_gap)),
+        ]);
+        out.push_str(&table(
+            &["changed", "pairs", "wins", "ties", "rate %", "mean gap"],
+            &rows,
+        ));
+    }
+}
+
+/// The calibration report as one self-contained HTML page.
+pub fn calibration_html(report: &CalibrationReport) -> String {
+    let mut body = String::new();
+    let _ = write!(
+        body,
+        "<h1>Calibration of {}</h1><p>{} images, {} true captions, {} contrast captions, dimension {}.</p>",
+        escape(&report.bundle),
+        report.counts.images,
+        report.counts.captions,
+        report.counts.contrasts,
+        report.counts.dimension
+    );
+    calibration_sections(report, &mut body);
+    page(&format!("befit calibration: {}", report.bundle), &body)
+}

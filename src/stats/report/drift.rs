@@ -1,0 +1,349 @@
+//! The drift page: agreement between two bundles, the continuity maps,
+//! figures before and after, the pairs that moved most, and both bundles'
+//! calibrations.
+
+use std::fmt::Write as _;
+
+use super::calibration::calibration_sections;
+use super::page::{maybe, number, page, table, td, td_text};
+use crate::stats::continuity::ContinuityMap;
+use crate::stats::drift::{DriftReport, PairKind};
+use crate::stats::svg::{self, escape, Curve, HistogramSeries, PALETTE};
+
+/// Points along a continuity map over [lo, hi], for drawing.
+fn curve(map: &ContinuityMap, lo: f64, hi: f64) -> Vec<(f64, f64)> {
+    match map {
+        ContinuityMap::Affine { .. } => vec![(lo, map.apply_f64(lo)), (hi, map.apply_f64(hi))],
+        ContinuityMap::Monotone { knots } => {
+            let mut pts = vec![(lo, map.apply_f64(lo))];
+            pts.extend(
+                knots
+                    .iter()
+                    .filter(|k| k[0] > lo && k[0] < hi)
+                    .map(|k| (k[0], k[1])),
+            );
+            pts.push((hi, map.apply_f64(hi)));
+            pts
+        }
+    }
+}
+
+/// The drift report as one self-contained HTML page.
+pub fn drift_html(report: &DriftReport) -> String {
+    let r = report;
+    let (from, to) = (escape(&r.from_bundle), escape(&r.to_bundle));
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<h1>Drift from {from} to {to}</h1><p>{} images, {} true captions, {} contrast captions ({} pairs); dimension {} to {}.</p>",
+        r.counts.images, r.counts.captions, r.counts.contrasts, r.counts.pairs, r.counts.dimension_from, r.counts.dimension_to
+    );
+
+    agreement(r, &mut b);
+    continuity(r, &mut b);
+    before_and_after(r, &mut b);
+    moved_pairs_and_figures(r, &mut b);
+    let _ = write!(b, "<h2>Calibration of {from}</h2>");
+    calibration_sections(&r.from, &mut b);
+    let _ = write!(b, "<h2>Calibration of {to}</h2>");
+    calibration_sections(&r.to, &mut b);
+    page(
+        &format!("befit drift: {} to {}", r.from_bundle, r.to_bundle),
+        &b,
+    )
+}
+
+/// Agreement between the two bundles: rank correlations, CKA, Procrustes, neighbours.
+fn agreement(r: &DriftReport, b: &mut String) {
+    b.push_str("<h2>Agreement</h2>");
+    let procrustes = |p: &Option<crate::stats::spaces::ProcrustesFit>| {
+        p.as_ref().map_or_else(
+            || "n/a (dimensions differ)".to_string(),
+            |p| {
+                format!(
+                    "{} (normalised {})",
+                    number(p.residual),
+                    number(p.normalised_residual)
+                )
+            },
+        )
+    };
+    let ag = &r.agreement;
+    b.push_str(&table(
+        &["figure", "value"],
+        &[
+            vec![
+                td_text("Spearman rho, all pairs"),
+                td(maybe(ag.all_pairs.spearman_rho)),
+            ],
+            vec![
+                td_text("Kendall tau-b, all pairs"),
+                td(maybe(ag.all_pairs.kendall_tau_b)),
+            ],
+            vec![
+                td_text("Spearman rho, true pairs"),
+                td(maybe(ag.true_pairs.spearman_rho)),
+            ],
+            vec![
+                td_text("Kendall tau-b, true pairs"),
+                td(maybe(ag.true_pairs.kendall_tau_b)),
+            ],
+            vec![
+                td_text("KS D, true-pair cosines"),
+                td(format!(
+                    "{} (asymptotic p {})",
+                    number(r.true_cosine_ks.statistic),
+                    number(r.true_cosine_ks.p_value_asymptotic)
+                )),
+            ],
+            vec![td_text("linear CKA, images"), td(maybe(r.cka.images))],
+            vec![td_text("linear CKA, captions"), td(maybe(r.cka.texts))],
+            vec![
+                td_text("Procrustes residual, images"),
+                td(procrustes(&r.procrustes.images)),
+            ],
+            vec![
+                td_text("Procrustes residual, captions"),
+                td(procrustes(&r.procrustes.texts)),
+            ],
+            vec![
+                td_text(&format!(
+                    "nearest {} captions per image, mean Jaccard",
+                    r.neighbour_overlap.k
+                )),
+                td(number(r.neighbour_overlap.mean_jaccard)),
+            ],
+        ],
+    ));
+}
+
+/// The continuity maps over the scatter of old against new cosines.
+fn continuity(r: &DriftReport, b: &mut String) {
+    let (from, to) = (escape(&r.from_bundle), escape(&r.to_bundle));
+    b.push_str("<h2>Reward continuity</h2>");
+    let (lo, hi) = r
+        .scatter
+        .points
+        .iter()
+        .map(|p| p[0])
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, z), v| {
+            (a.min(v), z.max(v))
+        });
+    let (lo, hi) = if lo < hi { (lo, hi) } else { (-1.0, 1.0) };
+    b.push_str(&svg::scatter(
+        "old cosine against new cosine, with the fitted maps",
+        &r.scatter.points,
+        &[
+            Curve {
+                label: "affine map",
+                points: curve(&r.continuity.affine.map, lo, hi),
+                colour: PALETTE[1],
+            },
+            Curve {
+                label: "monotone map",
+                points: curve(&r.continuity.monotone.map, lo, hi),
+                colour: PALETTE[2],
+            },
+        ],
+        &format!("cosine under {}", r.to_bundle),
+        &format!("cosine under {}", r.from_bundle),
+    ));
+    let shown = match r.scatter.stride {
+        0 | 1 => "All pairs shown.".to_string(),
+        n => format!("One pair in {n} shown."),
+    };
+    let _ = write!(
+        b,
+        "<p class=\"note\">{shown} The maps take a cosine of {to} to the scale of {from}.</p>"
+    );
+    let fit_row = |name: &str, f: &crate::stats::continuity::FittedMap| {
+        let json = serde_json::to_string(&f.map).unwrap_or_default();
+        let shown = if json.len() > 300 {
+            format!(
+                "{}... ({} knots)",
+                &json[..json.char_indices().nth(300).map_or(json.len(), |(i, _)| i)],
+                knot_count(&f.map)
+            )
+        } else {
+            json
+        };
+        vec![
+            td_text(name),
+            td(f.pairs.to_string()),
+            td(number(f.rmse)),
+            td(number(f.max_error)),
+            format!("<td class=\"text\"><code>{}</code></td>", escape(&shown)),
+        ]
+    };
+    b.push_str(&table(
+        &["map", "pairs", "RMSE", "max error", "map (JSON)"],
+        &[
+            fit_row("affine (least squares)", &r.continuity.affine),
+            fit_row("monotone (isotonic)", &r.continuity.monotone),
+        ],
+    ));
+}
+
+/// Cosines, retrieval and contrast rates of both bundles side by side.
+fn before_and_after(r: &DriftReport, b: &mut String) {
+    b.push_str("<h2>Cosines before and after</h2>");
+    let series = [
+        (
+            format!("true pairs, {}", r.from_bundle),
+            &r.from.cosines.true_pairs,
+        ),
+        (
+            format!("true pairs, {}", r.to_bundle),
+            &r.to.cosines.true_pairs,
+        ),
+        (
+            format!("hardest negatives, {}", r.from_bundle),
+            &r.from.cosines.hardest_negatives,
+        ),
+        (
+            format!("hardest negatives, {}", r.to_bundle),
+            &r.to.cosines.hardest_negatives,
+        ),
+    ];
+    let hs: Vec<HistogramSeries> = series
+        .iter()
+        .zip(PALETTE)
+        .map(|((label, d), colour)| HistogramSeries {
+            label,
+            low: d.histogram.low,
+            high: d.histogram.high,
+            counts: &d.histogram.counts,
+            colour,
+        })
+        .collect();
+    b.push_str(&svg::histograms(
+        "true and hardest-negative cosines under both bundles",
+        &hs,
+    ));
+
+    b.push_str("<h2>Retrieval before and after</h2>");
+    let (fa, fb) = (&r.from.retrieval, &r.to.retrieval);
+    b.push_str(&svg::bars(
+        "recall at K under both bundles",
+        &[
+            (
+                "i2t R@1".into(),
+                vec![fa.image_to_text.r_at_1, fb.image_to_text.r_at_1],
+            ),
+            (
+                "i2t R@5".into(),
+                vec![fa.image_to_text.r_at_5, fb.image_to_text.r_at_5],
+            ),
+            (
+                "i2t R@10".into(),
+                vec![fa.image_to_text.r_at_10, fb.image_to_text.r_at_10],
+            ),
+            (
+                "t2i R@1".into(),
+                vec![fa.text_to_image.r_at_1, fb.text_to_image.r_at_1],
+            ),
+            (
+                "t2i R@5".into(),
+                vec![fa.text_to_image.r_at_5, fb.text_to_image.r_at_5],
+            ),
+            (
+                "t2i R@10".into(),
+                vec![fa.text_to_image.r_at_10, fb.text_to_image.r_at_10],
+            ),
+        ],
+        &[(&r.from_bundle, PALETTE[0]), (&r.to_bundle, PALETTE[1])],
+        100.0,
+        "recall %",
+    ));
+
+    if r.counts.contrasts > 0 {
+        b.push_str("<h2>Contrast rates before and after</h2>");
+        let groups: Vec<(String, Vec<f64>)> = r
+            .from
+            .contrast
+            .by_label
+            .iter()
+            .map(|(label, f)| {
+                let after = r.to.contrast.by_label.get(label).and_then(|g| g.rate);
+                (
+                    label.clone(),
+                    vec![100.0 * f.rate.unwrap_or(0.0), 100.0 * after.unwrap_or(0.0)],
+                )
+            })
+            .collect();
+        b.push_str(&svg::bars(
+            "true caption beats contrast, per changed fact",
+            &groups,
+            &[(&r.from_bundle, PALETTE[0]), (&r.to_bundle, PALETTE[1])],
+            100.0,
+            "rate %",
+        ));
+    }
+}
+
+/// The pairs whose reward moved most, and every calibration figure old and new.
+fn moved_pairs_and_figures(r: &DriftReport, b: &mut String) {
+    b.push_str("<h2>Pairs whose reward moved most</h2>");
+    let rows: Vec<Vec<String>> = r
+        .moved
+        .iter()
+        .map(|p| {
+            let kind = match p.kind {
+                PairKind::True => "true".to_string(),
+                PairKind::Contrast => format!("contrast ({})", p.changed.as_deref().unwrap_or("")),
+            };
+            let caption = match &p.true_caption {
+                Some(t) => format!(
+                    "{}<br><span class=\"note\">alters: {}</span>",
+                    escape(&p.caption),
+                    escape(t)
+                ),
+                None => escape(&p.caption),
+            };
+            vec![
+                td_text(&format!("{} (line {})", p.image, p.image_line)),
+                td_text(&kind),
+                format!("<td class=\"text\">{caption}</td>"),
+                td(number(p.cos_from)),
+                td(number(p.cos_to)),
+                td(number(p.raw_delta)),
+                td(number(p.mapped_delta)),
+            ]
+        })
+        .collect();
+    b.push_str(&table(
+        &[
+            "image",
+            "pair",
+            "caption",
+            "old cos",
+            "new cos",
+            "new - old",
+            "affine(new) - old",
+        ],
+        &rows,
+    ));
+    b.push_str("<p class=\"note\">Ranked by |affine(new) - old|: the move that remains once the new scale is mapped onto the old one.</p>");
+
+    b.push_str("<h2>Every calibration figure</h2>");
+    let rows: Vec<Vec<String>> = r
+        .changes
+        .iter()
+        .map(|(name, c)| {
+            vec![
+                td_text(name),
+                td(maybe(c.from)),
+                td(maybe(c.to)),
+                td(maybe(c.delta)),
+            ]
+        })
+        .collect();
+    b.push_str(&table(&["figure", "old", "new", "new - old"], &rows));
+}
+
+fn knot_count(map: &ContinuityMap) -> usize {
+    match map {
+        ContinuityMap::Affine { .. } => 0,
+        ContinuityMap::Monotone { knots } => knots.len(),
+    }
+}

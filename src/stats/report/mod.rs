@@ -1,0 +1,70 @@
+//! Calibration and drift reports as single self-contained HTML files: inline
+//! CSS and SVG, no scripts, no external fonts or styles, every caption and
+//! name escaped. Tables carry the numbers, plots the shapes.
+//!
+//! - `page`: the frame, style sheet, tables, number formatting, escaping.
+//! - `calibration`: one bundle's page, and its sections the drift page reuses.
+//! - `drift`: two bundles compared.
+
+mod calibration;
+mod drift;
+mod page;
+
+pub use calibration::calibration_html;
+pub use drift::drift_html;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::drift::{drift, DriftOptions};
+    use crate::stats::pairs::tests::from_similarity;
+    use crate::stats::{calibrate, CalibrationOptions};
+    use ndarray::array;
+
+    fn hostile() -> crate::stats::ProbeVectors {
+        let mut v = from_similarity(&array![[0.8, 0.1], [0.2, 0.7]], vec![0, 1]);
+        v.bundle = "<b>evil</b>".into();
+        v.caption_texts[0] = "<script>alert('x')</script> & co".into();
+        v.image_names[1] = "a\"b.png".into();
+        v.contrasts = v.captions.slice(ndarray::s![1..2, ..]).to_owned();
+        v.contrast_texts = vec!["<img src=x onerror=y>".into()];
+        v.contrast_labels = vec!["<colour>".into()];
+        v.contrast_from = vec![0];
+        v
+    }
+
+    fn assert_clean(html: &str) {
+        assert!(html.starts_with("<!DOCTYPE html>"));
+        assert!(!html.contains("<script"), "unescaped script");
+        assert!(!html.contains("<img"), "unescaped img");
+        assert!(!html.contains("<b>evil"), "unescaped bundle name");
+        // Nothing fetched from anywhere: no URLs, no external resources.
+        assert!(!html.contains("http"), "a URL in a self-contained report");
+        assert!(!html.contains("<link") && !html.contains("@import") && !html.contains("src=\""));
+    }
+
+    #[test]
+    fn calibration_page_escapes_text_and_stays_offline() {
+        let r = calibrate(&hostile(), &CalibrationOptions::default()).unwrap();
+        let html = calibration_html(&r);
+        assert_clean(&html);
+        assert!(html.contains("&lt;b&gt;evil&lt;/b&gt;"));
+        assert!(html.contains("&lt;colour&gt;"));
+        assert!(
+            html.matches("<svg").count() >= 3,
+            "histogram, recall and contrast plots"
+        );
+    }
+
+    #[test]
+    fn drift_page_escapes_captions_and_draws_the_scatter() {
+        let v = hostile();
+        let r = drift(&v, &v, &DriftOptions::default()).unwrap();
+        let html = drift_html(&r);
+        assert_clean(&html);
+        assert!(html.contains("&lt;script&gt;alert(&#39;x&#39;)&lt;/script&gt; &amp; co"));
+        assert!(html.contains("a&quot;b.png"));
+        assert!(html.contains("<circle"));
+        assert!(html.contains("affine map"));
+    }
+}
