@@ -423,7 +423,11 @@ fn write_reference_exports() {
     );
     // Linear CKA is defined across dimensions and lies in [0, 1] (Kornblith et al. 2019, eq. 5,
     // a normalised HSIC); a projection of the same texts keeps much of their similarity structure.
-    let cka = projected.report.cka.texts.expect("CKA across 48 and 32 dimensions");
+    let cka = projected
+        .report
+        .cka
+        .texts
+        .expect("CKA across 48 and 32 dimensions");
     assert!(cka > 0.0 && cka <= 1.0 + 1e-9, "linear CKA {cka}");
     let l = &lattice.report;
     assert!(
