@@ -1,8 +1,10 @@
 //! The HTTP service.
 //!
 //! [`app`] builds the router over a [`Service`] (routes, the body limit
-//! `--max-body-bytes` for every route, the layer stack of panic catching,
-//! tracing, load shedding, a concurrency limit and a timeout) so tests can
+//! `--max-body-bytes` for every route, the layer stack of panic catching and
+//! tracing, and, for the routes that do work, load shedding, a concurrency
+//! limit and a timeout; the live page, `/v1/pulse`, health and metrics skip
+//! those three so the service can be watched while overloaded) so tests can
 //! drive it with `oneshot`; [`run`] serves it on a bound listener until
 //! `shutdown` resolves. Handlers parse, check, call the domain and shape the
 //! answer; [`error`] maps every domain error to the API's codes. The API is
@@ -33,10 +35,18 @@ use error::{ApiError, ErrorCode};
 /// The router with every route and layer.
 pub fn app(state: Service) -> Router {
     let limits = state.limits().clone();
-    let routes = Router::new()
+    // Watching the service must work while it is overloaded: these routes are
+    // cheap, and skip the load shedding, concurrency limit and timeout.
+    let watch = Router::new()
+        .route("/", get(routes::live::page))
+        .route("/page/live.js", get(routes::live::script))
+        .route("/page/live.css", get(routes::live::style))
+        .route("/page/icon.svg", get(routes::live::icon))
+        .route("/v1/pulse", get(routes::live::pulse))
         .route("/healthz", get(routes::health::healthz))
         .route("/readyz", get(routes::health::readyz))
-        .route("/metrics", get(routes::health::metrics))
+        .route("/metrics", get(routes::health::metrics));
+    let work = Router::new()
         .route("/v1/models", get(routes::models::list))
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
@@ -48,18 +58,19 @@ pub fn app(state: Service) -> Router {
         .route("/v1/neighbors", post(routes::bank::neighbors))
         .route("/v1/calibration", post(routes::statistics::calibration))
         .route("/v1/drift", post(routes::statistics::drift))
-        .fallback(not_found)
-        .method_not_allowed_fallback(method_not_allowed)
-        .layer(DefaultBodyLimit::max(limits.max_body_bytes))
-        .with_state(state.clone());
-    routes
         .layer(
             ServiceBuilder::new()
                 .layer(HandleErrorLayer::new(shed_or_timeout))
                 .load_shed()
                 .layer(GlobalConcurrencyLimitLayer::new(limits.max_inflight))
                 .timeout(limits.request_timeout),
-        )
+        );
+    watch
+        .merge(work)
+        .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
+        .layer(DefaultBodyLimit::max(limits.max_body_bytes))
+        .with_state(state.clone())
         .layer(middleware::from_fn_with_state(state, record))
         .layer(TraceLayer::new_for_http())
         .layer(CatchPanicLayer::custom(|_| {
