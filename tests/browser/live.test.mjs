@@ -103,7 +103,7 @@ async function post(route, body) {
 async function settleCharts() {
   // Charts are drawn at the container's width; wait for the redraw after a resize.
   await page.waitForFunction(() => {
-    const svg = document.querySelector("#chart-throughput svg");
+    const svg = document.querySelector("#plot-throughput svg");
     return svg && Math.abs(Number(svg.getAttribute("width")) - Math.max(240, svg.parentElement.clientWidth)) < 2;
   }, null, { timeout: SHOW_LIMIT_MS });
 }

@@ -12,6 +12,22 @@ async fn get(state: &befit::service::Service, uri: &str) -> (u16, axum::http::He
     (status.as_u16(), headers, json)
 }
 
+/// A blocks-world scene of this test's own: an orange square on a pale table.
+fn orange_square_png() -> Vec<u8> {
+    let scene = image::RgbImage::from_fn(64, 64, |x, y| {
+        if (20..44).contains(&x) && (20..44).contains(&y) {
+            image::Rgb([213, 94, 0])
+        } else {
+            image::Rgb([236, 231, 220])
+        }
+    });
+    let mut png = std::io::Cursor::new(Vec::new());
+    scene
+        .write_to(&mut png, image::ImageFormat::Png)
+        .expect("encode a PNG in memory");
+    png.into_inner()
+}
+
 fn f(v: &Value) -> f64 {
     v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
 }
@@ -90,7 +106,9 @@ async fn the_pulse_names_the_models_and_counts_reward_requests() {
     );
 
     let row = &probe_json(1)[0];
-    let body = json!({"groups": [{"image": {"path": row["image"]}, "captions": [row["captions"][0], row["captions"][1]]}]});
+    let image = json!({"base64": b64(&orange_square_png())});
+    let body =
+        json!({"groups": [{"image": image, "captions": [row["captions"][0], row["captions"][1]]}]});
     for _ in 0..3 {
         let (status, answer) = post_json(&state, "/v1/rewards", &body).await;
         assert_eq!(status, 200, "{answer}");
@@ -101,7 +119,8 @@ async fn the_pulse_names_the_models_and_counts_reward_requests() {
     assert_eq!(f(&rewards["requests"]), 3.0);
     assert!(f(&rewards["requests_per_s"]) > 0.0);
     assert!(f(&rewards["p50_ms"]) > 0.0 && f(&rewards["p50_ms"]) <= f(&rewards["p99_ms"]));
-    // One image, three times: the first lookup misses memory and the store
+    // One image no other test sends (the model's memory cache is shared by
+    // the tests), three times: the first lookup misses memory and the store
     // and is encoded; the next two hit memory.
     assert_eq!(
         since["caches"]["image_memory"],
@@ -120,7 +139,11 @@ async fn the_pulse_names_the_models_and_counts_reward_requests() {
 #[tokio::test(flavor = "multi_thread")]
 async fn the_pulse_refuses_a_history_it_does_not_keep() {
     let state = state();
-    for uri in ["/v1/pulse?seconds=0", "/v1/pulse?seconds=601"] {
+    for uri in [
+        "/v1/pulse?seconds=0",
+        "/v1/pulse?seconds=601",
+        "/v1/pulse?seconds=ten",
+    ] {
         let (status, _, answer) = get(&state, uri).await;
         assert_eq!(status, 400, "{uri}: {answer}");
         assert_eq!(answer["error"]["code"], "invalid_field");

@@ -72,8 +72,7 @@ function niceMax(v) {
 }
 
 // series: [{name, values: [number|null], colour: 0..5, dash: 0..3}]; times in ms.
-function chart(id, title, unit, times, series) {
-  const box = $(id);
+function chart(box, title, unit, times, series) {
   const width = Math.max(240, box.clientWidth || 600);
   const svg = svgEl("svg", { width, height: CHART_HEIGHT, viewBox: `0 0 ${width} ${CHART_HEIGHT}`, role: "img" });
   const label = `${title}: ` + series.map((s) => {
@@ -114,8 +113,7 @@ function chart(id, title, unit, times, series) {
   box.replaceChildren(svg);
 }
 
-function legend(id, series) {
-  const box = $(id);
+function legend(box, series) {
   box.replaceChildren(...series.map((s) => {
     const span = el("span");
     span.appendChild(el("i", null, `c${s.colour}` + (s.dash ? ` d${s.dash}` : "")));
@@ -124,9 +122,17 @@ function legend(id, series) {
   }));
 }
 
-function plot(chartId, legendId, title, unit, times, series) {
-  chart(chartId, title, unit, times, series);
-  legend(legendId, series);
+// A figure `plot-NAME` in the page holds its title; the chart and legend are added here.
+function part(figure, tag, cls) {
+  let e = figure.querySelector(`.${cls}`);
+  if (!e) { e = el(tag, null, cls); figure.appendChild(e); }
+  return e;
+}
+
+function plot(name, title, unit, times, series) {
+  const figure = $(`plot-${name}`);
+  chart(part(figure, "div", "chart"), title, unit, times, series);
+  legend(part(figure, "figcaption", "legend"), series);
 }
 
 function towerKey(t) { return `${t.model} ${t.tower}`; }
@@ -155,11 +161,11 @@ function renderThroughput(p) {
     `${count(s.images_per_s)} images, ${count(s.requests_per_s)} requests, ${count(s.overloaded_per_s)} answered 503.`;
   const h = p.history;
   const times = h.map((w) => w.end_unix_ms);
-  plot("chart-throughput", "legend-throughput", "Throughput", "per s", times, [
+  plot("throughput", "Throughput", "per s", times, [
     { name: "captions/s", values: h.map((w) => w.captions_per_s), colour: 0, dash: 0 },
     { name: "images/s", values: h.map((w) => w.images_per_s), colour: 2, dash: 1 },
   ]);
-  plot("chart-requests", "legend-requests", "Requests", "per s", times, [
+  plot("requests", "Requests", "per s", times, [
     { name: "reward requests/s", values: h.map((w) => (w.routes["/v1/rewards"] || { requests_per_s: 0 }).requests_per_s), colour: 0, dash: 0 },
     { name: "503 answers/s (all routes)", values: h.map((w) => w.overloaded_per_s), colour: 1, dash: 1 },
   ]);
@@ -178,8 +184,8 @@ function renderLatency(p) {
   if (state.route !== null) select.value = state.route;
   const h = p.history;
   const pick = (w) => w.routes[state.route] || {};
-  $("title-latency").textContent = `Latency of ${state.route || "no route yet"}, ms`;
-  plot("chart-latency", "legend-latency", `Latency of ${state.route || "no route"}`, "ms", h.map((w) => w.end_unix_ms), [
+  $("plot-latency").querySelector("h3").textContent = `Latency of ${state.route || "no route yet"}, ms`;
+  plot("latency", `Latency of ${state.route || "no route"}`, "ms", h.map((w) => w.end_unix_ms), [
     { name: "p50", values: h.map((w) => pick(w).p50_ms ?? null), colour: 0, dash: 0 },
     { name: "p99", values: h.map((w) => pick(w).p99_ms ?? null), colour: 1, dash: 1 },
   ]);
@@ -204,8 +210,8 @@ function renderEncoders(p) {
     dash: i % 4,
   }));
   const times = h.map((w) => w.end_unix_ms);
-  plot("chart-batch", "legend-batch", "Mean batch size", "items", times, series("batch_mean"));
-  plot("chart-queue", "legend-queue", "Queue depth", "jobs", times, series("queue_depth"));
+  plot("batch", "Mean batch size", "items", times, series("batch_mean"));
+  plot("queue", "Queue depth", "jobs", times, series("queue_depth"));
 }
 
 function renderCaches(p) {

@@ -6,6 +6,7 @@
 
 use std::sync::LazyLock;
 
+use axum::extract::rejection::QueryRejection;
 use axum::extract::{Query, State};
 use axum::http::header;
 use axum::response::{IntoResponse, Response};
@@ -83,8 +84,8 @@ pub async fn icon() -> Response {
     asset("image/svg+xml", ICON_WITH_PALETTE.as_str())
 }
 
+/// Other query parameters are ignored, as GET routes commonly do.
 #[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
 pub struct PulseQuery {
     /// Seconds of history, one point per second.
     seconds: Option<u64>,
@@ -92,10 +93,14 @@ pub struct PulseQuery {
 
 pub async fn pulse(
     State(service): State<Service>,
-    Query(query): Query<PulseQuery>,
+    query: Result<Query<PulseQuery>, QueryRejection>,
 ) -> Result<Response, ApiError> {
     let max = HISTORY_SAMPLES as u64 - 1;
-    let seconds = query.seconds.unwrap_or(DEFAULT_PULSE_SECONDS);
+    let seconds = match query {
+        Ok(Query(q)) => q.seconds.unwrap_or(DEFAULT_PULSE_SECONDS),
+        // Only `seconds` is read, so only it can fail to parse.
+        Err(_) => 0,
+    };
     if !(1..=max).contains(&seconds) {
         return Err(Invalid::new(
             "seconds",
