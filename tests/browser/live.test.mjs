@@ -70,7 +70,7 @@ async function startServer() {
   return { child, address };
 }
 
-// Reward requests from the bundled probe set (40 requests of 4 groups each),
+// Reward requests from the bundled probe set (40 requests of 4 groups each, in waves of 5),
 // then the first 20 rows' captions into the caption bank.
 async function burst() {
   const rows = readFileSync(join(repo, "fixtures/probe/probe.jsonl"), "utf8")
@@ -82,7 +82,12 @@ async function burst() {
       return { image: { path: row.image }, captions: row.captions };
     }),
   }));
-  const statuses = await Promise.all(bodies.map((body) => post("/v1/rewards", body)));
+  // In waves with pauses between them, so the charts have several seconds to draw.
+  const statuses = [];
+  for (let w = 0; w < bodies.length; w += 5) {
+    statuses.push(...await Promise.all(bodies.slice(w, w + 5).map((body) => post("/v1/rewards", body))));
+    await new Promise((r) => setTimeout(r, 500));
+  }
   // Some captions in the bank too, so its section has something to show.
   const captions = rows.slice(0, 20).flatMap((r) => r.captions);
   distinctBankCaptions = new Set(captions).size;

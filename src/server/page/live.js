@@ -100,15 +100,24 @@ function chart(box, title, unit, times, series) {
     svg.appendChild(svgEl("text", { x: PAD.left + innerW / 2, y: PAD.top + innerH / 2, "text-anchor": "middle", class: "empty" }, "no data yet"));
   }
   for (const s of series) {
-    // A gap (null) ends a segment: no line is drawn through missing data.
-    let d = "";
-    let pen = "M";
+    // A gap (null) ends a segment: no line is drawn through missing data, and
+    // a point with no neighbour is drawn as a dot.
+    const segments = [];
+    let open = null;
     s.values.forEach((v, i) => {
-      if (v === null || v === undefined) { pen = "M"; return; }
-      d += `${pen}${x(times[i]).toFixed(1)},${y(v).toFixed(1)}`;
-      pen = "L";
+      if (v === null || v === undefined) { open = null; return; }
+      if (open === null) { open = []; segments.push(open); }
+      open.push([x(times[i]), y(v)]);
     });
-    if (d) svg.appendChild(svgEl("path", { d, class: `line s${s.colour}` + (s.dash ? ` dash${s.dash}` : "") }));
+    const cls = `s${s.colour}` + (s.dash ? ` dash${s.dash}` : "");
+    for (const seg of segments) {
+      if (seg.length === 1) {
+        svg.appendChild(svgEl("circle", { cx: seg[0][0].toFixed(1), cy: seg[0][1].toFixed(1), r: 3, class: `dot s${s.colour}` }));
+      } else {
+        const d = seg.map(([px, py], i) => `${i ? "L" : "M"}${px.toFixed(1)},${py.toFixed(1)}`).join("");
+        svg.appendChild(svgEl("path", { d, class: `line ${cls}` }));
+      }
+    }
   }
   box.replaceChildren(svg);
 }
