@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl image image-tools image-test cluster-test cluster-tools cluster-throughput
+.PHONY: all serve test bench ort venv build lint clean rl image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -62,8 +62,19 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client
+	$(MAKE) --no-print-directory browser
 	$(MAKE) --no-print-directory cluster-test
 	$(MAKE) --no-print-directory image-test
+
+# The live page in headless Chromium from Debian's archive, driven by playwright-core from npm;
+# screenshots land in target/browser/.
+BROWSER_DIR := tests/browser
+browser-deps:
+	command -v chromium >/dev/null || (apt-get update && DEBIAN_FRONTEND=noninteractive apt-get install -y chromium chromium-driver)
+	cd $(BROWSER_DIR) && npm ci --no-audit --no-fund
+
+browser: build browser-deps
+	cd $(BROWSER_DIR) && BEFIT_BIN=$(abspath $(BIN)) node --test live.test.mjs
 
 # The policy-gradient example against a running `make serve`.
 rl: $(VENV)/.ready

@@ -3,6 +3,14 @@
 //!
 //! Families are declared once in [`FAMILIES`] with their help text and, for
 //! histograms, their buckets; series are created on first use per label set.
+//!
+//! - [`quantile`]: quantiles from cumulative buckets, as Prometheus estimates them.
+//! - [`history`]: a short in-memory history, sampled from the registry every second.
+//! - [`window`]: rates and percentiles between two samples, for the live page.
+
+pub mod history;
+pub mod quantile;
+pub mod window;
 
 use std::collections::BTreeMap;
 use std::fmt::Write;
@@ -83,6 +91,41 @@ pub const FAMILIES: &[(&str, Kind, &str)] = &[
 ];
 
 type Labels = Vec<(&'static str, String)>;
+
+/// Label values of `befit_cache_hits_total` / `befit_cache_misses_total` that
+/// the live page reads as throughput: every caption scored or embedded is
+/// looked up in the caption cache, every image in the in-memory image cache.
+pub const CAPTION_CACHE: &str = "caption";
+/// See [`CAPTION_CACHE`].
+pub const IMAGE_CACHE: &str = "image_memory";
+
+/// One histogram series as [`Registry::read`] shows it.
+#[derive(Debug, Clone, Copy)]
+pub struct HistogramRead<'a> {
+    /// Upper bounds of the finite buckets, ascending.
+    pub bounds: &'static [f64],
+    /// Observations at or below each bound (cumulative, as exported).
+    pub cumulative: &'a [u64],
+    /// All observations (the `+Inf` bucket).
+    pub count: u64,
+    pub sum: f64,
+}
+
+/// One series' state as [`Registry::read`] shows it.
+#[derive(Debug, Clone, Copy)]
+pub enum Reading<'a> {
+    /// A counter or a gauge.
+    Value(f64),
+    Histogram(HistogramRead<'a>),
+}
+
+/// The value of label `key` in a series' labels ("" when absent).
+pub fn label<'a>(labels: &'a [(&'static str, String)], key: &str) -> &'a str {
+    labels
+        .iter()
+        .find(|(k, _)| *k == key)
+        .map_or("", |(_, v)| v.as_str())
+}
 
 #[derive(Debug, Clone)]
 struct Histogram {
@@ -169,6 +212,29 @@ impl Registry {
             .get(&(family(name).0, labels(pairs)))
             .copied()
             .unwrap_or(0.0)
+    }
+
+    /// Shows every series to `visit`, under one lock, so all of them are one moment.
+    pub fn read(
+        &self,
+        mut visit: impl FnMut(&'static str, &[(&'static str, String)], Reading<'_>),
+    ) {
+        let series = self.lock();
+        for ((name, labels), v) in &series.values {
+            visit(name, labels, Reading::Value(*v));
+        }
+        for ((name, labels), h) in &series.histograms {
+            let Kind::Histogram(bounds) = family(name).1 else {
+                continue;
+            };
+            let read = HistogramRead {
+                bounds,
+                cumulative: &h.counts,
+                count: h.count,
+                sum: h.sum,
+            };
+            visit(name, labels, Reading::Histogram(read));
+        }
     }
 
     /// The text exposition format.

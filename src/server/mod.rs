@@ -1,13 +1,14 @@
 //! The HTTP service.
 //!
 //! [`app`] builds the router over a [`Service`] so tests can drive it with
-//! `oneshot`: the probes (`/healthz`, `/readyz`, `/metrics`) answer outside
-//! every limit; the API routes first have their body read in full ([`body`]:
-//! size, deadline and rate, holding no slot), then pass load shedding, the
-//! concurrency limit and the timeout. [`run`] serves it on a bound listener
-//! ([`listen`]: header timeout, connection cap, drain) until `shutdown`
-//! resolves. Handlers parse, check, call the domain and shape the answer;
-//! [`error`] maps every domain error to the API's codes. The API is
+//! `oneshot`. The routes that watch the service (the live page, `/v1/pulse`,
+//! `/healthz`, `/readyz`, `/metrics`) answer outside every limit, so it can be
+//! watched while overloaded; the routes that do work first have their body
+//! read in full ([`body`]: size, deadline and rate, holding no slot), then
+//! pass load shedding, the concurrency limit and the timeout. [`run`] serves
+//! it on a bound listener ([`listen`]: header timeout, connection cap, drain)
+//! until `shutdown` resolves. Handlers parse, check, call the domain and shape
+//! the answer; [`error`] maps every domain error to the API's codes. The API is
 //! documented in `proto-free-api.md`.
 
 pub mod body;
@@ -38,12 +39,18 @@ use error::{ApiError, ErrorCode};
 /// The router with every route and layer.
 pub fn app(state: Service) -> Router {
     let limits = state.limits().clone();
-    let probes = Router::new()
+    // Watching the service must work while it is overloaded: these routes are
+    // cheap, and skip the load shedding, concurrency limit and timeout.
+    let watch = Router::new()
+        .route("/", get(routes::live::page))
+        .route("/page/live.js", get(routes::live::script))
+        .route("/page/live.css", get(routes::live::style))
+        .route("/page/icon.svg", get(routes::live::icon))
+        .route("/v1/pulse", get(routes::live::pulse))
         .route("/healthz", get(routes::health::healthz))
         .route("/readyz", get(routes::health::readyz))
-        .route("/metrics", get(routes::health::metrics))
-        .with_state(state.clone());
-    let api = Router::new()
+        .route("/metrics", get(routes::health::metrics));
+    let work = Router::new()
         .route("/v1/models", get(routes::models::list))
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
@@ -55,9 +62,6 @@ pub fn app(state: Service) -> Router {
         .route("/v1/neighbors", post(routes::bank::neighbors))
         .route("/v1/calibration", post(routes::statistics::calibration))
         .route("/v1/drift", post(routes::statistics::drift))
-        .fallback(not_found)
-        .method_not_allowed_fallback(method_not_allowed)
-        .layer(DefaultBodyLimit::max(limits.max_body_bytes))
         .layer(
             ServiceBuilder::new()
                 .layer(HandleErrorLayer::new(shed_or_timeout))
@@ -69,10 +73,13 @@ pub fn app(state: Service) -> Router {
         .layer(middleware::from_fn_with_state(
             state.clone(),
             body::read_first,
-        ))
-        .with_state(state.clone());
-    probes
-        .merge(api)
+        ));
+    watch
+        .merge(work)
+        .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
+        .layer(DefaultBodyLimit::max(limits.max_body_bytes))
+        .with_state(state.clone())
         .layer(middleware::from_fn_with_state(state, record))
         // Failures are counted and summarised by `record`; internal errors log themselves once.
         .layer(TraceLayer::new_for_http().on_failure(()))

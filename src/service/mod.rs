@@ -9,7 +9,8 @@
 //! the caption bank and the maps; [`Service::ready_with`] (or, in
 //! [`Running`], a background load of the configured bundles) makes it ready.
 //! [`Running`] owns the background work, the bank's dump timer and the
-//! final dump, and stops it when stopped or dropped.
+//! final dump, and stops it when stopped or dropped. The service itself owns
+//! the metrics history's sampler, which stops when the last handle is dropped.
 
 pub mod backfill;
 pub mod data_dir;
@@ -23,6 +24,7 @@ use crate::bank::{BankConfig, BankError, CaptionBank};
 use crate::encoders::{load_bundles, Engine, LoadBundlesError, Model, ModelSettings};
 use crate::intake::image_root::ImageRoot;
 use crate::intake::limits::Limits;
+use crate::metrics::history::{History, Sampler, SAMPLE_EVERY};
 use crate::metrics::Registry;
 use crate::store::images::{ImageStore, StoreError};
 use data_dir::{DataDir, DataDirError, DataDirLock};
@@ -83,6 +85,8 @@ pub enum StartError {
     Bundles(#[from] LoadBundlesError),
     #[error("the loading task failed: {0}")]
     Task(String),
+    #[error("starting the metrics history thread: {0}")]
+    Sampler(std::io::Error),
 }
 
 /// A route asked for what is still loading.
@@ -104,6 +108,8 @@ struct Shared {
     image_root: Option<ImageRoot>,
     limits: Limits,
     metrics: Arc<Registry>,
+    /// The live page's history of `metrics`; its thread stops with the service.
+    sampler: Sampler,
     maps: MapRegistry,
     backfills: backfill::Backfills,
     data_dir: DataDir,
@@ -132,6 +138,8 @@ impl Service {
         let store = Arc::new(ImageStore::open(&data_dir.images())?);
         let bank = CaptionBank::open(data_dir.root(), bank_config(&config.limits))?;
         let maps = MapRegistry::load(Some(data_dir.maps()), &config.maps)?;
+        let sampler =
+            Sampler::start(Arc::clone(&metrics), SAMPLE_EVERY).map_err(StartError::Sampler)?;
         let shared = Shared {
             engine: OnceLock::new(),
             bank: OnceLock::new(),
@@ -140,6 +148,7 @@ impl Service {
             image_root,
             limits: config.limits.clone(),
             metrics,
+            sampler,
             maps,
             backfills: backfill::Backfills::default(),
             data_dir,
@@ -194,6 +203,11 @@ impl Service {
 
     pub fn metrics(&self) -> &Arc<Registry> {
         &self.shared.metrics
+    }
+
+    /// The metrics' recent history, sampled every second while the service lives.
+    pub fn history(&self) -> &History {
+        self.shared.sampler.history()
     }
 
     pub fn maps(&self) -> &MapRegistry {

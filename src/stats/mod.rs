@@ -36,7 +36,7 @@ pub mod reward_map;
 pub mod spaces;
 pub mod summary;
 pub mod svd;
-mod svg;
+pub(crate) mod svg;
 
 pub use calibration::{calibrate, CalibrationOptions, CalibrationReport};
 pub use continuity::{ContinuityError, ContinuityMap, FittedMap};

@@ -13,5 +13,6 @@ mod contrast;
 mod http_errors;
 mod http_rewards;
 mod http_statistics;
+mod live;
 mod parity;
 mod seams;

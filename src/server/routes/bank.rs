@@ -123,21 +123,27 @@ pub async fn stats(
     State(service): State<Service>,
     Query(query): Query<StatsQuery>,
 ) -> Result<Json<Value>, ApiError> {
+    let Some(id) = query.id else {
+        return Ok(Json(summary(&service).await?));
+    };
+    let bank = service.bank()?.clone();
+    let caption = blocking(move || bank.caption(id).map_err(ApiError::from)).await?;
+    match caption {
+        Some(c) => Ok(Json(
+            json!({"id": c.id, "text": c.text, "tags": c.tags, "added_unix_ms": c.added_unix_ms}),
+        )),
+        None => Err(ApiError::new(
+            ErrorCode::NotFound,
+            format!("no caption with id {id} in the bank"),
+        )),
+    }
+}
+
+/// The bank's numbers as `GET /v1/bank` answers them (also the live page's bank section).
+pub async fn summary(service: &Service) -> Result<Value, ApiError> {
     let engine = Arc::clone(service.engine()?);
     let bank = service.bank()?.clone();
     let backfills = service.backfills();
-    if let Some(id) = query.id {
-        let caption = blocking(move || bank.caption(id).map_err(ApiError::from)).await?;
-        return match caption {
-            Some(c) => Ok(Json(
-                json!({"id": c.id, "text": c.text, "tags": c.tags, "added_unix_ms": c.added_unix_ms}),
-            )),
-            None => Err(ApiError::new(
-                ErrorCode::NotFound,
-                format!("no caption with id {id} in the bank"),
-            )),
-        };
-    }
     let stats = blocking(move || bank.stats().map_err(ApiError::from)).await?;
     let models: Vec<Value> = stats
         .models
@@ -156,9 +162,9 @@ pub async fn stats(
         .iter()
         .map(|(t, n)| (t.clone(), json!(n)))
         .collect();
-    Ok(Json(
+    Ok(
         json!({"captions": stats.captions, "file_bytes": stats.file_bytes, "tags": tags, "models": models}),
-    ))
+    )
 }
 
 #[derive(Deserialize)]
