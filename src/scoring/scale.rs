@@ -9,12 +9,17 @@ fn default_weight() -> f32 {
     DEFAULT_CLIP_S_WEIGHT
 }
 
+/// Largest magnitude of a scale parameter (`weight`, `a`, `b`): far above any
+/// calibration, and small enough that every reward and advantage of cosines
+/// in [-1, 1] stays a finite f32 (f32 reaches 3.4e38).
+pub const MAX_SCALE_PARAMETER: f32 = 1.0e6;
+
 /// Why a scale's parameters cannot be used.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum ScaleError {
-    #[error("weight must be a positive number, got {0}")]
+    #[error("weight must be a positive number of at most {MAX_SCALE_PARAMETER}, got {0}")]
     Weight(f32),
-    #[error("a and b must be finite numbers")]
+    #[error("a and b must be numbers of magnitude at most {MAX_SCALE_PARAMETER}")]
     Affine,
     #[error("the ref-clip-s scale needs reference captions in each group")]
     NoReferences,
@@ -51,11 +56,15 @@ impl Scale {
     pub fn check(&self) -> Result<(), ScaleError> {
         match self {
             Scale::ClipS { weight } | Scale::RefClipS { weight }
-                if !(weight.is_finite() && *weight > 0.0) =>
+                if !(*weight > 0.0 && *weight <= MAX_SCALE_PARAMETER) =>
             {
                 Err(ScaleError::Weight(*weight))
             }
-            Scale::Affine { a, b } if !(a.is_finite() && b.is_finite()) => Err(ScaleError::Affine),
+            Scale::Affine { a, b }
+                if !(a.abs() <= MAX_SCALE_PARAMETER && b.abs() <= MAX_SCALE_PARAMETER) =>
+            {
+                Err(ScaleError::Affine)
+            }
             _ => Ok(()),
         }
     }
@@ -107,6 +116,33 @@ mod tests {
         // A negative reference cosine is clipped to 0, so the harmonic mean is 0.
         assert_eq!(s.reward(0.3, Some(-0.5)), 0.0);
         assert_eq!(s.reward(-0.3, Some(-0.5)), 0.0);
+    }
+
+    #[test]
+    fn parameters_that_could_overflow_are_refused() {
+        // a = b = 3e38 gave a reward of inf, sent as null in a 200.
+        assert_eq!(
+            Scale::Affine { a: 3e38, b: 3e38 }.check(),
+            Err(ScaleError::Affine)
+        );
+        assert_eq!(
+            Scale::Affine {
+                a: f32::NAN,
+                b: 0.0
+            }
+            .check(),
+            Err(ScaleError::Affine)
+        );
+        assert!(Scale::ClipS { weight: 2e6 }.check().is_err());
+        // At the bound every reward of a cosine in [-1, 1] is finite, and so is
+        // a difference of two of them (an advantage).
+        let edge = Scale::Affine {
+            a: MAX_SCALE_PARAMETER,
+            b: -MAX_SCALE_PARAMETER,
+        };
+        assert!(edge.check().is_ok());
+        let (hi, lo) = (edge.reward(1.0, None), edge.reward(-1.0, None));
+        assert!(hi.is_finite() && lo.is_finite() && (hi - lo).is_finite());
     }
 
     #[test]

@@ -37,6 +37,7 @@ pub enum ErrorCode {
     NotFound,
     MethodNotAllowed,
     MapMismatch,
+    MapExists,
     SlowBody,
     BodyTooLarge,
     UnsupportedMediaType,
@@ -49,7 +50,7 @@ pub enum ErrorCode {
 
 impl ErrorCode {
     /// Every code, in the order of the API doc's table.
-    pub const ALL: [ErrorCode; 18] = [
+    pub const ALL: [ErrorCode; 19] = [
         ErrorCode::BadJson,
         ErrorCode::InvalidField,
         ErrorCode::OverLimit,
@@ -60,6 +61,7 @@ impl ErrorCode {
         ErrorCode::NotFound,
         ErrorCode::MethodNotAllowed,
         ErrorCode::MapMismatch,
+        ErrorCode::MapExists,
         ErrorCode::SlowBody,
         ErrorCode::BodyTooLarge,
         ErrorCode::UnsupportedMediaType,
@@ -82,7 +84,7 @@ impl ErrorCode {
             | ErrorCode::UnknownMap
             | ErrorCode::NotFound => StatusCode::NOT_FOUND,
             ErrorCode::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
-            ErrorCode::MapMismatch => StatusCode::CONFLICT,
+            ErrorCode::MapMismatch | ErrorCode::MapExists => StatusCode::CONFLICT,
             ErrorCode::SlowBody => StatusCode::REQUEST_TIMEOUT,
             ErrorCode::BodyTooLarge => StatusCode::PAYLOAD_TOO_LARGE,
             ErrorCode::UnsupportedMediaType => StatusCode::UNSUPPORTED_MEDIA_TYPE,
@@ -105,6 +107,7 @@ impl ErrorCode {
             ErrorCode::NotFound => "not_found",
             ErrorCode::MethodNotAllowed => "method_not_allowed",
             ErrorCode::MapMismatch => "map_mismatch",
+            ErrorCode::MapExists => "map_exists",
             ErrorCode::SlowBody => "slow_body",
             ErrorCode::BodyTooLarge => "body_too_large",
             ErrorCode::UnsupportedMediaType => "unsupported_media_type",
@@ -278,6 +281,8 @@ impl From<MapError> for ApiError {
                 ApiError::new(ErrorCode::MapMismatch, message).at("remap")
             }
             MapError::BadName { .. } => ApiError::new(ErrorCode::InvalidField, message),
+            MapError::Unusable { .. } => ApiError::new(ErrorCode::UnknownMap, message).at("remap"),
+            MapError::Exists { .. } => ApiError::new(ErrorCode::MapExists, message),
             MapError::Write { .. } | MapError::Read { .. } | MapError::NoDigests { .. } => {
                 ApiError::internal(message)
             }

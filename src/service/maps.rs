@@ -1,6 +1,9 @@
 //! The reward maps a server knows: saved ones under the data folder, those
 //! given with `--map NAME=FILE`, and those saved by `POST /v1/drift`. A map is
-//! handed out only for the bundle it was fitted for.
+//! handed out only for the bundle it was fitted for. A file under the data
+//! folder that cannot be read does not stop the server: that one map is
+//! unusable (said in `/readyz` and the log); a `--map` file that cannot be
+//! read does, since the operator asked for it by name.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -24,6 +27,10 @@ pub enum MapError {
         asked: String,
         asked_digest: String,
     },
+    #[error("reward map {name:?} could not be loaded at start ({reason}); fix or remove its file, or save it again with \"replace\": true")]
+    Unusable { name: String, reason: String },
+    #[error("a reward map named {name:?} exists already; send \"replace\": true to overwrite it")]
+    Exists { name: String },
     #[error("map name {name:?} must match [A-Za-z0-9._-]+ (at most {MAX_MAP_NAME} characters)")]
     BadName { name: String },
     #[error("cannot write map file {path}: {source}")]
@@ -82,6 +89,8 @@ pub fn read_map(path: &Path) -> Result<RewardMap, MapError> {
 #[derive(Debug, Default)]
 pub struct MapRegistry {
     maps: RwLock<BTreeMap<String, Arc<RewardMap>>>,
+    /// Files under the folder that could not be read, by map name: why.
+    unusable: RwLock<BTreeMap<String, String>>,
     dir: Option<PathBuf>,
 }
 
@@ -93,6 +102,7 @@ impl MapRegistry {
         flags: &[(String, PathBuf)],
     ) -> Result<MapRegistry, MapError> {
         let mut maps = BTreeMap::new();
+        let mut unusable = BTreeMap::new();
         if let Some(dir) = dir.as_ref().filter(|d| d.is_dir()) {
             let entries = std::fs::read_dir(dir).map_err(|e| MapError::Read {
                 path: dir.clone(),
@@ -105,7 +115,15 @@ impl MapRegistry {
                     .and_then(|n| n.to_str())
                     .and_then(|n| n.strip_suffix(".json"));
                 if let Some(name) = name.filter(|n| valid_map_name(n)) {
-                    maps.insert(name.to_string(), Arc::new(read_map(&path)?));
+                    match read_map(&path) {
+                        Ok(map) => {
+                            maps.insert(name.to_string(), Arc::new(map));
+                        }
+                        Err(e) => {
+                            tracing::warn!(map = name, error = %e, "reward map unusable; the other maps are loaded");
+                            unusable.insert(name.to_string(), e.to_string());
+                        }
+                    }
                 }
             }
         }
@@ -114,11 +132,21 @@ impl MapRegistry {
                 return Err(MapError::BadName { name: name.clone() });
             }
             maps.insert(name.clone(), Arc::new(read_map(file)?));
+            unusable.remove(name);
         }
         Ok(MapRegistry {
             maps: RwLock::new(maps),
+            unusable: RwLock::new(unusable),
             dir,
         })
+    }
+
+    /// Maps whose files could not be read at start, with why.
+    pub fn unusable(&self) -> BTreeMap<String, String> {
+        self.unusable
+            .read()
+            .unwrap_or_else(|p| p.into_inner())
+            .clone()
     }
 
     /// Names of the registered maps.
@@ -145,9 +173,15 @@ impl MapRegistry {
             .unwrap_or_else(|p| p.into_inner())
             .get(name)
             .cloned()
-            .ok_or_else(|| MapError::Unknown {
-                name: name.to_string(),
-                known: self.names(),
+            .ok_or_else(|| match self.unusable().remove(name) {
+                Some(reason) => MapError::Unusable {
+                    name: name.to_string(),
+                    reason,
+                },
+                None => MapError::Unknown {
+                    name: name.to_string(),
+                    known: self.names(),
+                },
             })?;
         if map.applies_to.digest != digest {
             return Err(MapError::WrongModel {
@@ -161,13 +195,37 @@ impl MapRegistry {
         Ok(map)
     }
 
-    /// Registers a map, writing it first (when there is a folder) so it survives restarts.
-    pub fn save(&self, name: &str, map: RewardMap) -> Result<(), MapError> {
+    /// Refuses a bad name, or one taken when `replace` is not said; a caller
+    /// asks before fitting a map, so a long drift is not run for nothing.
+    pub fn check_free(&self, name: &str, replace: bool) -> Result<(), MapError> {
         if !valid_map_name(name) {
             return Err(MapError::BadName {
                 name: name.to_string(),
             });
         }
+        let taken = self
+            .maps
+            .read()
+            .unwrap_or_else(|p| p.into_inner())
+            .contains_key(name)
+            || self.unusable().contains_key(name)
+            || self
+                .dir
+                .as_ref()
+                .is_some_and(|d| d.join(format!("{name}.json")).exists());
+        if taken && !replace {
+            return Err(MapError::Exists {
+                name: name.to_string(),
+            });
+        }
+        Ok(())
+    }
+
+    /// Registers a map, writing it first (when there is a folder) so it
+    /// survives restarts. A map of that name, usable or not, is overwritten
+    /// only when `replace` says so: a map changes every later run's rewards.
+    pub fn save(&self, name: &str, map: RewardMap, replace: bool) -> Result<(), MapError> {
+        self.check_free(name, replace)?;
         if let Some(dir) = &self.dir {
             let path = dir.join(format!("{name}.json"));
             let write = |source| MapError::Write {
@@ -184,6 +242,10 @@ impl MapRegistry {
             .write()
             .unwrap_or_else(|p| p.into_inner())
             .insert(name.to_string(), Arc::new(map));
+        self.unusable
+            .write()
+            .unwrap_or_else(|p| p.into_inner())
+            .remove(name);
         Ok(())
     }
 }
@@ -211,7 +273,7 @@ mod tests {
     fn a_map_serves_only_the_bundle_it_was_fitted_for_and_survives_restarts() {
         let dir = tempfile::tempdir().unwrap();
         let maps = MapRegistry::load(Some(dir.path().to_path_buf()), &[]).unwrap();
-        maps.save("v2-on-v1", map()).unwrap();
+        maps.save("v2-on-v1", map(), false).unwrap();
         assert!(maps
             .for_model("v2-on-v1", "blocks@v2", &"2".repeat(64))
             .is_ok());
@@ -230,17 +292,43 @@ mod tests {
         ));
         let again = MapRegistry::load(Some(dir.path().to_path_buf()), &[]).unwrap();
         assert_eq!(again.names(), ["v2-on-v1"]);
-        // A map file of the old form (no bundles) stops the start with how to refit it.
+        // A map file of the old form (no bundles) and a damaged one are unusable,
+        // with how to refit them; the others load.
         std::fs::write(
             dir.path().join("old.json"),
             r#"{"kind": "affine", "a": 1, "b": 0}"#,
         )
         .unwrap();
-        let e = MapRegistry::load(Some(dir.path().to_path_buf()), &[]).unwrap_err();
-        assert!(matches!(e, MapError::NoDigests { .. }), "{e}");
+        std::fs::write(dir.path().join("torn.json"), r#"{"applies_to": {"#).unwrap();
+        let loaded = MapRegistry::load(Some(dir.path().to_path_buf()), &[]).unwrap();
+        assert_eq!(loaded.names(), ["v2-on-v1"]);
+        let unusable = loaded.unusable();
+        assert_eq!(unusable.keys().collect::<Vec<_>>(), ["old", "torn"]);
         assert!(
-            e.to_string().contains("old.json") && e.to_string().contains("refit"),
-            "{e}"
+            unusable["old"].contains("old.json") && unusable["old"].contains("refit"),
+            "{unusable:?}"
         );
+        let e = loaded
+            .for_model("torn", "blocks@v2", &"2".repeat(64))
+            .unwrap_err();
+        assert!(matches!(e, MapError::Unusable { .. }), "{e}");
+        // Given by flag, the same file stops the start: the operator asked for it.
+        let e =
+            MapRegistry::load(None, &[("old".into(), dir.path().join("old.json"))]).unwrap_err();
+        assert!(matches!(e, MapError::NoDigests { .. }), "{e}");
+        // Saving over an existing or unusable map needs `replace`.
+        assert!(matches!(
+            loaded.save("v2-on-v1", map(), false).unwrap_err(),
+            MapError::Exists { .. }
+        ));
+        assert!(matches!(
+            loaded.save("torn", map(), false).unwrap_err(),
+            MapError::Exists { .. }
+        ));
+        loaded.save("torn", map(), true).unwrap();
+        assert!(!loaded.unusable().contains_key("torn"));
+        assert!(loaded
+            .for_model("torn", "blocks@v2", &"2".repeat(64))
+            .is_ok());
     }
 }

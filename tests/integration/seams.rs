@@ -40,6 +40,31 @@ async fn a_map_is_refused_on_a_model_it_was_not_fitted_for() {
     let v2 = model("blocks-v2");
     assert_eq!(saved["applies_to"]["digest"], v2.bundle.digest.as_str());
     assert_eq!(saved["lands_on"]["id"], "blocks@v1");
+    // Saving again under the name is refused before the drift is run, unless replaced.
+    let (status, e) = post_json(&state, "/v1/drift", &body).await;
+    assert_eq!(status, 409, "{e}");
+    assert_eq!(e["error"]["code"], "map_exists");
+    assert_eq!(e["error"]["field"], "save_map.name");
+    let mut replace = body.clone();
+    replace["save_map"]["replace"] = json!(true);
+    let (status, r) = post_json(&state, "/v1/drift", &replace).await;
+    assert_eq!(status, 200, "{r}");
+    // A damaged map file does not stop a restart on the same folder: it is unusable, said in /readyz.
+    std::fs::write(state.data_dir().maps().join("torn.json"), "{").unwrap();
+    let config = state.data_dir().root().to_path_buf();
+    drop(state);
+    let again = ready(
+        &befit::service::ServiceConfig {
+            image_root: Some(probe_dir()),
+            ..befit::service::ServiceConfig::new(Vec::new(), config)
+        },
+        &["blocks-v1", "blocks-v2"],
+    );
+    let (status, _, ready) = call(&again, "GET", "/readyz", "", vec![]).await;
+    assert_eq!(status, 200, "{ready}");
+    assert!(ready["maps_unusable"]["torn"].is_string(), "{ready}");
+    let (status, ok) = post_json(&again, "/v1/rewards", &ask("blocks@v2")).await;
+    assert_eq!(status, 200, "the readable map still serves: {ok}");
 }
 
 #[tokio::test(flavor = "multi_thread")]

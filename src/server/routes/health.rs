@@ -18,7 +18,11 @@ pub async fn readyz(State(state): State<Service>) -> Result<Json<Value>, ApiErro
     // Ready means every route answers: the caption bank's indexes are loaded too.
     state.bank()?;
     let models: Vec<&str> = engine.models().iter().map(|m| m.id.as_str()).collect();
-    Ok(Json(json!({"status": "ready", "models": models})))
+    // Maps whose files could not be read: the server serves, those maps do not.
+    let unusable = state.maps().unusable();
+    Ok(Json(
+        json!({"status": "ready", "models": models, "maps_unusable": unusable}),
+    ))
 }
 
 pub async fn metrics(State(state): State<Service>) -> impl IntoResponse {

@@ -62,6 +62,9 @@ pub struct SaveMap {
     name: String,
     #[serde(default)]
     kind: MapKind,
+    /// Overwrite a map of that name (a map changes every later run's rewards).
+    #[serde(default)]
+    replace: bool,
 }
 
 #[derive(Deserialize, Default, Clone, Copy)]
@@ -167,6 +170,10 @@ pub async fn drift(
             let problem = Problem::MapName { max: MAX_MAP_NAME };
             return Err(Invalid::new("save_map.name", problem).into());
         }
+        service
+            .maps()
+            .check_free(&save.name, save.replace)
+            .map_err(|e| ApiError::from(e).at("save_map.name"))?;
     }
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
@@ -189,7 +196,7 @@ pub async fn drift(
                 lands_on: map_bundle(from),
                 map: fit.map.clone(),
             };
-            service.maps().save(&save.name, map)?;
+            service.maps().save(&save.name, map, save.replace)?;
             Some(save.name)
         }
         None => None,
