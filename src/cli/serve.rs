@@ -136,14 +136,7 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             _ = shutdown_signal() => Ok(()),
             e = running.failed() => Err(anyhow::Error::new(e)),
         };
-        // The bank is dumped before draining, so an orchestrator's kill after
-        // its grace period cannot cost the dump; `stop` dumps again what the drain appended.
-        let service = running.service().clone();
-        match tokio::task::spawn_blocking(move || service.dump_bank()).await {
-            Ok(Ok(())) => {}
-            Ok(Err(e)) => tracing::error!(error = %e, "dumping the bank at shutdown failed"),
-            Err(e) => tracing::error!(error = %e, "dumping the bank at shutdown failed"),
-        }
+        running.dump_now().await;
         tracing::info!(
             drain_secs = connections.drain.as_secs(),
             "stopping: draining requests in flight"

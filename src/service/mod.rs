@@ -316,6 +316,14 @@ impl Running {
             let _ = loading.await;
         }
         self.dumper.abort();
+        self.dump_now().await;
+        tracing::info!("stopped");
+    }
+
+    /// Dumps the bank's indexes now: called when a stop is asked, before
+    /// requests are drained, so an orchestrator's kill after its grace period
+    /// cannot cost the dump ([`Running::stop`] dumps again what the drain appended).
+    pub async fn dump_now(&self) {
         let service = self.service.clone();
         match tokio::task::spawn_blocking(move || service.dump_bank()).await {
             Ok(Ok(())) => {}
@@ -324,7 +332,6 @@ impl Running {
             }
             Err(e) => tracing::error!(error = %e, "the shutdown dump task failed"),
         }
-        tracing::info!("stopped");
     }
 }
 
