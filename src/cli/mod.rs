@@ -46,11 +46,18 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
     }
 }
 
+/// Log levels when `RUST_LOG` is not set: befit at INFO; ONNX Runtime and the
+/// HNSW library, which report every graph load and drop at INFO, at WARN.
+const DEFAULT_LOG_FILTER: &str = "info,ort=warn,hnsw_rs=warn";
+
 fn init_logging(json: bool) {
+    use std::io::IsTerminal;
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info,ort=warn"));
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(DEFAULT_LOG_FILTER));
+    // Colour codes only for a person at a terminal, never in a redirected log.
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::stderr().is_terminal())
         .with_writer(std::io::stderr);
     let _ = if json {
         builder.json().try_init()

@@ -20,6 +20,7 @@ use std::path::PathBuf;
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
+use crate::bank::index::GraphOrigin;
 use crate::bank::{BankConfig, BankError, CaptionBank};
 use crate::encoders::{load_bundles, Engine, LoadBundlesError, Model, ModelSettings};
 use crate::intake::image_root::ImageRoot;
@@ -180,7 +181,19 @@ impl Service {
             let (_, report) = shared
                 .opened_bank
                 .model(&model.bundle.digest, model.dimension())?;
-            tracing::info!(model = %model.id, ?report, "caption bank index loaded");
+            match report {
+                Some(r) => {
+                    let origin = match &r.origin {
+                        GraphOrigin::Loaded { dumped, replayed } => {
+                            format!("from its dump ({dumped} rows, {replayed} replayed)")
+                        }
+                        GraphOrigin::Built { reason } => format!("rebuilt ({reason})"),
+                        GraphOrigin::InMemory => "in memory".to_string(),
+                    };
+                    tracing::info!(model = %model.id, rows = r.rows, skipped = r.skipped, millis = r.millis, %origin, "caption bank index loaded");
+                }
+                None => tracing::info!(model = %model.id, "caption bank index loaded"),
+            }
         }
         let _ = shared.bank.set(shared.opened_bank.clone());
         tracing::info!("ready");
