@@ -466,9 +466,12 @@ impl Embedder for Hashing {
     fn embed_image_files(&self, paths: &[PathBuf]) -> Result<Array2<f32>, EmbedError> {
         let mut flat = Vec::new();
         for p in paths {
-            let bytes = std::fs::read(p).map_err(|e| EmbedError(e.to_string()))?;
+            let bytes = std::fs::read(p).map_err(|e| EmbedError::encoder(e.to_string()))?;
             if !bytes.starts_with(b"IMG") {
-                return Err(EmbedError(format!("{} does not decode", p.display())));
+                return Err(EmbedError::encoder(format!(
+                    "{} does not decode",
+                    p.display()
+                )));
             }
             flat.extend(hashed(&String::from_utf8_lossy(&bytes), 8));
         }

@@ -249,8 +249,8 @@ impl crate::vectors::Embedder for SceneEmbedder {
         &self,
         _paths: &[std::path::PathBuf],
     ) -> Result<ndarray::Array2<f32>, crate::vectors::EmbedError> {
-        Err(crate::vectors::EmbedError(
-            "the scene embedder has no image tower".into(),
+        Err(crate::vectors::EmbedError::encoder(
+            "the scene embedder has no image tower",
         ))
     }
 }

@@ -66,7 +66,7 @@ impl Embedder for FailingAfter {
     }
     fn embed_texts(&self, texts: &[String]) -> Result<ndarray::Array2<f32>, EmbedError> {
         if self.calls.fetch_add(1, Ordering::SeqCst) >= self.ok_batches {
-            return Err(EmbedError("encoder went away".into()));
+            return Err(EmbedError::encoder("encoder went away"));
         }
         self.inner.embed_texts(texts)
     }

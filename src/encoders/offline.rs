@@ -22,7 +22,7 @@ fn rows(vectors: Vec<Vec<f32>>, dimension: usize) -> Result<Array2<f32>, EmbedEr
     let n = vectors.len();
     let flat: Vec<f32> = vectors.into_iter().flatten().collect();
     Array2::from_shape_vec((n, dimension), flat)
-        .map_err(|e| EmbedError(format!("vector shape: {e}")))
+        .map_err(|e| EmbedError::encoder(format!("vector shape: {e}")))
 }
 
 /// Caption vectors of `model` as rows, blocking on `runtime`.
@@ -33,7 +33,7 @@ fn caption_rows(
 ) -> Result<Array2<f32>, EmbedError> {
     let vectors = runtime
         .block_on(model.caption_vectors(texts))
-        .map_err(|e| EmbedError(e.to_string()))?;
+        .map_err(|e| EmbedError::encoder(e.to_string()))?;
     rows(
         vectors.iter().map(|v| v.vector.clone()).collect(),
         model.dimension(),
@@ -53,16 +53,16 @@ impl Embedder for ModelEmbedder {
         let spec = &self.model.bundle.manifest.image;
         let mut tensors = Vec::with_capacity(paths.len());
         for path in paths {
-            let bytes =
-                std::fs::read(path).map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
+            let bytes = std::fs::read(path)
+                .map_err(|e| EmbedError::input(format!("{}: {e}", path.display())))?;
             let tensor = tensor_from_bytes(&bytes, &self.image_limits, spec)
-                .map_err(|e| EmbedError(format!("{}: {e}", path.display())))?;
+                .map_err(|e| EmbedError::input(format!("{}: {e}", path.display())))?;
             tensors.push(tensor.values);
         }
         let vectors = self
             .runtime
             .block_on(self.model.tensor_vectors(tensors))
-            .map_err(|e| EmbedError(e.to_string()))?;
+            .map_err(|e| EmbedError::encoder(e.to_string()))?;
         rows(vectors, self.dimension())
     }
 }
@@ -90,10 +90,14 @@ impl crate::probe::ProbeEncoder for EngineProbeEncoder {
                 .iter()
                 .map(|s| self.engine.image_vector(&self.model, s)),
         );
-        let found = self
-            .runtime
-            .block_on(work)
-            .map_err(|e| EmbedError(e.to_string()))?;
+        let found = self.runtime.block_on(work).map_err(|e| {
+            use super::EngineError as E;
+            let message = e.to_string();
+            match e {
+                E::UnknownImage(_) | E::Decode(_) | E::Path(_) => EmbedError::input(message),
+                _ => EmbedError::encoder(message),
+            }
+        })?;
         rows(
             found.into_iter().map(|(_, v)| v.to_vec()).collect(),
             self.dimension(),

@@ -161,7 +161,7 @@ impl<E: Embedder> Embedder for Stoppable<'_, E> {
 
     fn embed_texts(&self, texts: &[String]) -> Result<Array2<f32>, EmbedError> {
         if self.stop.load(Ordering::SeqCst) {
-            return Err(EmbedError("the server is stopping".into()));
+            return Err(EmbedError::encoder("the server is stopping"));
         }
         self.inner.embed_texts(texts)
     }

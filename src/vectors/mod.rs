@@ -8,8 +8,31 @@ use ndarray::Array2;
 
 /// Why an [`Embedder`] could not produce vectors; the message is for people.
 #[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct EmbedError(pub String);
+#[error("{message}")]
+pub struct EmbedError {
+    pub message: String,
+    /// The input is to blame (a missing or undecodable image, an unknown id),
+    /// not the encoder: skipping that row is the remedy.
+    pub input: bool,
+}
+
+impl EmbedError {
+    /// The encoder failed.
+    pub fn encoder(message: impl Into<String>) -> EmbedError {
+        EmbedError {
+            message: message.into(),
+            input: false,
+        }
+    }
+
+    /// The input could not be used.
+    pub fn input(message: impl Into<String>) -> EmbedError {
+        EmbedError {
+            message: message.into(),
+            input: true,
+        }
+    }
+}
 
 /// Something that maps captions and image files into one shared space.
 ///

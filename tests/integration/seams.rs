@@ -375,3 +375,31 @@ fn embed_missing_on_the_command_line_fills_a_second_bundle_once() {
     assert_eq!(befit(&["embed-missing"], "blocks-v2")["embedded"], 0);
     assert_eq!(befit(&["embed-missing"], "blocks-v1")["embedded"], 0);
 }
+
+/// An earlier server answered 500 and blamed the encoder when `skip_bad` left
+/// no row because every row's image was missing: the rows are to blame.
+#[tokio::test(flavor = "multi_thread")]
+async fn every_image_missing_is_the_rows_fault_not_the_encoders() {
+    let state = state_with(&["blocks-v1", "blocks-v2"], Limits::default());
+    let rows: Vec<Value> = (0..4)
+        .map(|i| json!({"image": {"path": format!("images/missing-{i}.png")}, "captions": ["a red ring"]}))
+        .collect();
+    for (route, body) in [
+        ("/v1/calibration", json!({"probe": rows, "skip_bad": true})),
+        (
+            "/v1/drift",
+            json!({"from": "blocks@v1", "to": "blocks@v2", "probe": rows, "skip_bad": true}),
+        ),
+    ] {
+        let (status, e) = post_json(&state, route, &body).await;
+        assert_eq!(status, 400, "{route}: {e}");
+        assert_eq!(e["error"]["code"], "invalid_field", "{route}: {e}");
+        assert!(
+            e["error"]["message"]
+                .as_str()
+                .unwrap()
+                .contains("no usable rows"),
+            "{route}: {e}"
+        );
+    }
+}

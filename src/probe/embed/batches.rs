@@ -47,18 +47,24 @@ pub(super) fn embed_in_batches<T>(
             Err(batch_error) => {
                 // Find the culprits: every item alone.
                 let mut singles = Vec::with_capacity(chunk.len());
+                let mut encoder_faults = 0;
                 for one in chunk.chunks(1) {
                     singles.push(match embed(one) {
                         Ok(m) => rows_of(tower, &m, 1, dimension)?.remove(0),
-                        Err(e) => Err(e.0),
+                        Err(e) => {
+                            encoder_faults += usize::from(!e.input);
+                            Err(e.message)
+                        }
                     });
                 }
-                if chunk.len() > 1 && singles.iter().all(Result::is_err) {
+                // Every item failing alone blames the encoder, unless each
+                // failure is its own input's (a missing image): those are bad rows.
+                if chunk.len() > 1 && encoder_faults == chunk.len() {
                     return Err(ProbeError::Encoder {
                         tower: tower.name(),
                         first_line: lines[start],
                         last_line: lines[start + chunk.len() - 1],
-                        message: batch_error.0,
+                        message: batch_error.message,
                     });
                 }
                 out.extend(singles);

@@ -35,10 +35,10 @@ impl ProbeEncoder for ImageFiles<'_> {
             .iter()
             .map(|image| match image {
                 ImageSource::Path(p) => Ok(p.clone()),
-                ImageSource::Id(id) => Err(EmbedError(format!(
+                ImageSource::Id(id) => Err(EmbedError::input(format!(
                     "image id {id} can only be resolved by a server's image store; name the image by path"
                 ))),
-                ImageSource::Bytes(_) => Err(EmbedError(
+                ImageSource::Bytes(_) => Err(EmbedError::input(
                     "probe rows name images by path or id".to_string(),
                 )),
             })

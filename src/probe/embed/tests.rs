@@ -36,7 +36,7 @@ fn vector_of(key: &str, d: usize) -> Vec<f32> {
 impl Fake {
     fn rows(&self, keys: &[String]) -> Result<Array2<f32>, EmbedError> {
         if self.always_fail {
-            return Err(EmbedError("session lost".into()));
+            return Err(EmbedError::encoder("session lost"));
         }
         let d = if self.wrong_dimension {
             self.dimension + 1
@@ -60,7 +60,7 @@ impl Embedder for Fake {
             .iter()
             .find(|p| p.to_string_lossy().contains("broken"))
         {
-            return Err(EmbedError(format!("{} is not a PNG", p.display())));
+            return Err(EmbedError::encoder(format!("{} is not a PNG", p.display())));
         }
         self.rows(
             &paths

@@ -11,7 +11,8 @@ use serde_json::Value;
 
 use super::ModelRef;
 use crate::encoders::offline::EngineProbeEncoder;
-use crate::encoders::{Engine, Model};
+use crate::encoders::{Engine, EngineError, Model};
+use crate::intake::image_root::PathError;
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
 use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
@@ -101,9 +102,13 @@ fn parse_probe(
     };
     let loaded = ProbeSet::from_values(rows, Path::new(""), "request", &options)?;
     for row in &loaded.set.rows {
-        engine
-            .check_source(&row.image)
-            .map_err(|e| ApiError::from(e).at(format!("probe[{}].image", row.line - 1)))?;
+        match engine.check_source(&row.image) {
+            Ok(()) => {}
+            // A missing file is a bad row: skipped with the others when asked.
+            // A path the server refuses (no root, leaving it) refuses the request.
+            Err(EngineError::Path(PathError::Missing(_) | PathError::Read { .. })) if skip_bad => {}
+            Err(e) => return Err(ApiError::from(e).at(format!("probe[{}].image", row.line - 1))),
+        }
     }
     Ok((loaded.set, loaded.skipped))
 }
