@@ -151,3 +151,73 @@ fn a_bundle_that_disagrees_with_its_graph_names_file_and_field() {
     let report: Value = serde_json::from_slice(&good.stdout).unwrap();
     assert_eq!(report["id"], "blocks@v1");
 }
+
+/// An earlier server waited forever at SIGTERM while one client stalled
+/// mid-body, so an orchestrator's SIGKILL came before the bank's dump. Now it
+/// dumps first and drains for at most --drain-secs.
+#[test]
+fn shutdown_drains_within_its_deadline_despite_a_stalled_client() {
+    use std::io::Write;
+    let data = tempfile::tempdir().unwrap();
+    let bundle = bundle_dir("blocks-v1");
+    let mut server = Server::start(&[
+        "--bundle",
+        bundle.to_str().unwrap(),
+        "--data-dir",
+        data.path().to_str().unwrap(),
+        "--drain-secs",
+        "1",
+    ]);
+    let (status, _) = post(
+        &server.url,
+        "/v1/bank",
+        &json!({"captions": ["a red cube left of a blue ball"], "tag": "table-a"}),
+    );
+    assert_eq!(status, 200);
+    let addr = server.url.trim_start_matches("http://").to_string();
+    let mut stalled = std::net::TcpStream::connect(&addr).unwrap();
+    stalled
+        .write_all(b"POST /v1/rewards HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\nContent-Length: 1000\r\n\r\n{")
+        .unwrap();
+    let pid = server.child.id().to_string();
+    assert!(Command::new("kill")
+        .args(["-TERM", &pid])
+        .status()
+        .unwrap()
+        .success());
+    let started = std::time::Instant::now();
+    let status = loop {
+        if let Some(status) = server.child.try_wait().unwrap() {
+            break status;
+        }
+        assert!(
+            started.elapsed() < std::time::Duration::from_secs(20),
+            "still running 20 s after SIGTERM with --drain-secs 1"
+        );
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    };
+    assert!(status.success(), "{status:?}");
+    // The bank's index was dumped on the way out: its folder holds files.
+    let index = befit::service::data_dir::DataDir::new(data.path()).bank_index();
+    let files = walk(&index);
+    assert!(
+        !files.is_empty(),
+        "no index dump under {} after SIGTERM",
+        index.display()
+    );
+    drop(stalled);
+}
+
+/// Every file under `dir`, recursively (none when it does not exist).
+fn walk(dir: &std::path::Path) -> Vec<std::path::PathBuf> {
+    let mut files = Vec::new();
+    for entry in std::fs::read_dir(dir).into_iter().flatten().flatten() {
+        let path = entry.path();
+        if path.is_dir() {
+            files.extend(walk(&path));
+        } else {
+            files.push(path);
+        }
+    }
+    files
+}
