@@ -391,9 +391,10 @@ pub struct ServeGuardArgs {
     /// opening or its previous answer: idle and slow-header connections are closed after it.
     #[arg(long, default_value_t = crate::server::listen::DEFAULT_HEADER_TIMEOUT_SECS)]
     pub header_timeout_secs: u64,
-    /// Connections open at once; more wait in the kernel's queue (kept below the descriptor limit).
-    #[arg(long, default_value_t = crate::server::listen::DEFAULT_MAX_CONNECTIONS)]
-    pub max_connections: usize,
+    /// Connections open at once; more wait in the kernel's queue. Default: 16384, or the
+    /// open-file limit less 256 when that is lower; a value over that limit is refused.
+    #[arg(long)]
+    pub max_connections: Option<usize>,
     /// Seconds to finish requests in flight at shutdown before closing what is left.
     #[arg(long, default_value_t = crate::server::listen::DEFAULT_DRAIN_SECS)]
     pub drain_secs: u64,

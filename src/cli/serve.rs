@@ -97,12 +97,17 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
 
 /// How the server accepts and closes connections, from the flags, checked.
 fn connection_settings(a: &ServeArgs) -> anyhow::Result<ConnectionSettings> {
+    let open_files = open_file_limit();
     let settings = ConnectionSettings {
         header_timeout: Duration::from_secs(a.guards.header_timeout_secs.max(1)),
-        max_connections: a.guards.max_connections.max(1),
+        max_connections: a
+            .guards
+            .max_connections
+            .unwrap_or_else(|| ConnectionSettings::default_cap(open_files))
+            .max(1),
         drain: Duration::from_secs(a.guards.drain_secs),
     };
-    settings.check(open_file_limit())?;
+    settings.check(open_files)?;
     Ok(settings)
 }
 

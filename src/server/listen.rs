@@ -59,6 +59,18 @@ pub struct TooManyConnections {
 }
 
 impl ConnectionSettings {
+    /// The cap when none is asked for: [`DEFAULT_MAX_CONNECTIONS`], or less
+    /// where the descriptor limit `open_files` is lower (1,024 is a common
+    /// soft limit; containers often have it), keeping [`RESERVED_DESCRIPTORS`]
+    /// and at least 64 connections.
+    pub fn default_cap(open_files: Option<u64>) -> usize {
+        match open_files {
+            Some(limit) => (limit.saturating_sub(RESERVED_DESCRIPTORS) as usize)
+                .clamp(64, DEFAULT_MAX_CONNECTIONS),
+            None => DEFAULT_MAX_CONNECTIONS,
+        }
+    }
+
     /// Refuses a connection cap the descriptor limit `open_files` could not hold.
     pub fn check(&self, open_files: Option<u64>) -> Result<(), TooManyConnections> {
         match open_files {
@@ -169,6 +181,18 @@ mod tests {
         let e = settings.check(Some(1255)).unwrap_err();
         assert!(e.to_string().contains("ulimit -n"), "{e}");
         assert!(settings.check(None).is_ok());
+        // Without a cap asked for, it follows the limit: 1,024 descriptors leave 768.
+        assert_eq!(ConnectionSettings::default_cap(Some(1024)), 768);
+        assert_eq!(
+            ConnectionSettings::default_cap(Some(1 << 20)),
+            DEFAULT_MAX_CONNECTIONS
+        );
+        assert_eq!(ConnectionSettings::default_cap(Some(100)), 64);
+        let fitted = ConnectionSettings {
+            max_connections: ConnectionSettings::default_cap(Some(1024)),
+            ..ConnectionSettings::default()
+        };
+        assert!(fitted.check(Some(1024)).is_ok());
     }
 
     #[test]
