@@ -139,6 +139,22 @@ impl Engine {
         Ok(())
     }
 
+    /// [`Engine::check_source`] for a probe row: with `skip_bad`, a missing
+    /// or unreadable file passes, so the row is skipped as bad when embedded;
+    /// a path the server refuses (no root, leaving it) never passes.
+    pub fn check_probe_source(
+        &self,
+        source: &ImageSource,
+        skip_bad: bool,
+    ) -> Result<(), EngineError> {
+        match self.check_source(source) {
+            Err(EngineError::Path(PathError::Missing(_) | PathError::Read { .. })) if skip_bad => {
+                Ok(())
+            }
+            other => other,
+        }
+    }
+
     /// The content id of `source`, computed once, with the bytes read on the way.
     async fn resolve(&self, source: &ImageSource) -> Result<Resolved, EngineError> {
         match source {

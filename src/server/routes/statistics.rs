@@ -11,8 +11,7 @@ use serde_json::Value;
 
 use super::ModelRef;
 use crate::encoders::offline::EngineProbeEncoder;
-use crate::encoders::{Engine, EngineError, Model};
-use crate::intake::image_root::PathError;
+use crate::encoders::{Engine, Model};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
 use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
@@ -102,13 +101,9 @@ fn parse_probe(
     };
     let loaded = ProbeSet::from_values(rows, Path::new(""), "request", &options)?;
     for row in &loaded.set.rows {
-        match engine.check_source(&row.image) {
-            Ok(()) => {}
-            // A missing file is a bad row: skipped with the others when asked.
-            // A path the server refuses (no root, leaving it) refuses the request.
-            Err(EngineError::Path(PathError::Missing(_) | PathError::Read { .. })) if skip_bad => {}
-            Err(e) => return Err(ApiError::from(e).at(format!("probe[{}].image", row.line - 1))),
-        }
+        engine
+            .check_probe_source(&row.image, skip_bad)
+            .map_err(|e| ApiError::from(e).at(format!("probe[{}].image", row.line - 1)))?;
     }
     Ok((loaded.set, loaded.skipped))
 }
