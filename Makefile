@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl figures install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -40,6 +40,14 @@ venv: $(VENV)/.ready
 build: $(ORT_LIB)
 	cargo build --release --locked
 
+# `make install` (PREFIX=~/.local by default): the binary to PREFIX/bin, ONNX Runtime to
+# PREFIX/lib/befit/, where the binary looks for it (src/runtime/mod.rs).
+PREFIX ?= $(HOME)/.local
+install: build
+	install -D -m 755 $(BIN) $(PREFIX)/bin/befit
+	install -D -m 644 $(ORT_LIB) $(PREFIX)/lib/befit/libonnxruntime.so.$(ORT_VERSION)
+	@echo "installed $(PREFIX)/bin/befit (and $(PREFIX)/lib/befit/libonnxruntime.so.$(ORT_VERSION))"
+
 serve: build
 	@mkdir -p $(DATA_DIR)
 	$(BIN) serve --bundle fixtures/models/blocks-v1 --listen $(ADDR) --data-dir $(DATA_DIR) \
@@ -61,7 +69,7 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 	target/debug/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
 	cargo build --release --locked
-	$(VENV_PY) -m pytest -q tests/reference tests/client
+	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs
 	$(MAKE) --no-print-directory browser
 	$(MAKE) --no-print-directory cluster-test
 	$(MAKE) --no-print-directory image-test
@@ -77,8 +85,20 @@ browser: build browser-deps
 	cd $(BROWSER_DIR) && BEFIT_BIN=$(abspath $(BIN)) node --test live.test.mjs
 
 # The policy-gradient example against a running `make serve`.
-rl: $(VENV)/.ready
-	$(VENV_PY) examples/blocks_rl.py --url http://$(ADDR)
+# The examples' own small environment (numpy, matplotlib): no reference libraries needed.
+EXAMPLES_VENV := $(CACHE)/venv-examples
+$(EXAMPLES_VENV)/.ready: examples/requirements.txt
+	$(PYTHON) -m venv $(EXAMPLES_VENV)
+	$(EXAMPLES_VENV)/bin/python -m pip install --quiet -r examples/requirements.txt
+	touch $@
+
+rl: $(EXAMPLES_VENV)/.ready
+	$(EXAMPLES_VENV)/bin/python examples/blocks_rl.py --url http://$(ADDR)
+
+# Figures quoted in README.md and docs/ (tools/docfigures.py): `make figures` measures the
+# recorded runs again on the bundled models and rewrites every figure; `make test` checks them.
+figures: build $(EXAMPLES_VENV)/.ready
+	$(EXAMPLES_VENV)/bin/python tools/docfigures.py measure
 
 $(CACHE)/.bench-ready: $(VENV)/.ready bench/requirements.txt
 	$(VENV_PY) -m pip install --quiet -r bench/requirements.txt

@@ -97,8 +97,8 @@ pub struct BankQueryArgs {
     /// Query with this caption.
     #[arg(long)]
     pub text: Option<String>,
-    /// Captions wanted.
-    #[arg(short, default_value_t = 10)]
+    /// Captions wanted (-k or --k, as in `drift`).
+    #[arg(short, long, default_value_t = 10)]
     pub k: usize,
     /// Only captions with this tag.
     #[arg(long)]
@@ -206,6 +206,19 @@ pub struct EncoderArgs {
     /// Largest encoder batch of images.
     #[arg(long, default_value_t = 32)]
     pub max_image_batch: usize,
+    /// Largest image in pixels (width x height), checked from the header.
+    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
+    pub max_pixels: u64,
+    /// Largest image in bytes once decoded (width x height x channels x bytes
+    /// per sample), checked from the header.
+    #[arg(long, default_value_t = DEFAULT_MAX_DECODED_BYTES)]
+    pub max_decoded_bytes: u64,
+}
+
+/// How a long-running server queues and caches encoder work (offline
+/// commands use the defaults: they have one caller and run to the end).
+#[derive(Debug, Args, Clone)]
+pub struct ServeEncoderArgs {
     /// Longest time a job waits for a batch to fill, in microseconds.
     #[arg(long, default_value_t = DEFAULT_MAX_WAIT_MICROS)]
     pub max_wait_micros: u64,
@@ -218,13 +231,17 @@ pub struct EncoderArgs {
     /// Image embeddings kept in memory per model (0: none; the store still has them).
     #[arg(long, default_value_t = DEFAULT_IMAGE_CACHE)]
     pub image_cache: usize,
-    /// Largest image in pixels (width x height), checked from the header.
-    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
-    pub max_pixels: u64,
-    /// Largest image in bytes once decoded (width x height x channels x bytes
-    /// per sample), checked from the header.
-    #[arg(long, default_value_t = DEFAULT_MAX_DECODED_BYTES)]
-    pub max_decoded_bytes: u64,
+}
+
+impl Default for ServeEncoderArgs {
+    fn default() -> Self {
+        ServeEncoderArgs {
+            max_wait_micros: DEFAULT_MAX_WAIT_MICROS,
+            queue_depth: DEFAULT_QUEUE_DEPTH,
+            caption_cache: DEFAULT_CAPTION_CACHE,
+            image_cache: DEFAULT_IMAGE_CACHE,
+        }
+    }
 }
 
 impl EncoderArgs {
@@ -261,6 +278,8 @@ pub struct ServeArgs {
     pub runtime: RuntimeArgs,
     #[command(flatten)]
     pub encoders: EncoderArgs,
+    #[command(flatten)]
+    pub serving: ServeEncoderArgs,
     /// Largest request body in bytes.
     #[arg(long, default_value_t = DEFAULT_MAX_BODY_BYTES)]
     pub max_body_bytes: usize,
@@ -346,8 +365,8 @@ pub struct DriftArgs {
     /// Hinge margin alpha of the compared calibrations.
     #[arg(long, default_value_t = crate::stats::hinge::DEFAULT_MARGIN)]
     pub margin: f64,
-    /// Captions per image compared by the neighbour overlap.
-    #[arg(long, default_value_t = crate::stats::drift::DEFAULT_NEIGHBOUR_K)]
+    /// Captions per image compared by the neighbour overlap (-k or --k, as in `bank query`).
+    #[arg(short, long, default_value_t = crate::stats::drift::DEFAULT_NEIGHBOUR_K)]
     pub k: usize,
     /// Pairs listed as moved most.
     #[arg(long, default_value_t = crate::stats::drift::DEFAULT_MOVED_PAIRS)]

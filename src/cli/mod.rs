@@ -34,6 +34,9 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Err(ArgsError::Config(e)) => return Err(e.into()),
     };
     init_logging(cli.log_json);
+    if !matches!(cli.command, Command::Serve(_)) {
+        stop_quietly_on_closed_pipe();
+    }
     match cli.command {
         Command::Serve(a) => serve::serve(a),
         Command::CheckBundle(a) => serve::check_bundle(a),
@@ -43,6 +46,18 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Command::Bank(BankCommand::Import(a)) => bank_commands::import(a),
         Command::Bank(BankCommand::Query(a)) => bank_commands::query(a),
         Command::Bank(BankCommand::EmbedMissing(a)) => bank_commands::embed_missing(a),
+    }
+}
+
+/// Offline commands end quietly when their output is closed (`befit ... | head`),
+/// as command-line tools do, instead of panicking in `println!`. Rust ignores
+/// SIGPIPE; the default action is restored for them only: the server keeps it
+/// ignored, so a client closing its socket is an error to handle, not an exit.
+fn stop_quietly_on_closed_pipe() {
+    // SAFETY: setting a signal's disposition to its default before any thread
+    // that writes to stdout starts; no handler code runs.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
 }
 

@@ -9,7 +9,7 @@ use std::sync::Arc;
 use anyhow::Context;
 use indicatif::{ProgressBar, ProgressStyle};
 
-use super::args::{CalibrateArgs, DriftArgs, EncoderArgs, RuntimeArgs};
+use super::args::{CalibrateArgs, DriftArgs, EncoderArgs, RuntimeArgs, ServeEncoderArgs};
 use super::ort_environment;
 use super::serve::model_settings;
 use crate::encoders::load_bundles;
@@ -34,7 +34,7 @@ impl OfflineModel {
         encoders: &EncoderArgs,
     ) -> anyhow::Result<OfflineModel> {
         let env = ort_environment(runtime_args.ort_lib.clone())?;
-        let settings = model_settings(encoders)?;
+        let settings = model_settings(encoders, &ServeEncoderArgs::default())?;
         let model = load_bundles(&[dir], env, &settings, &Arc::new(Registry::default()))?.remove(0);
         let runtime = tokio::runtime::Builder::new_multi_thread()
             .enable_all()
@@ -109,6 +109,23 @@ fn embed(model: &OfflineModel, set: &ProbeSet, skip_bad: bool) -> anyhow::Result
     Ok(embedded.vectors)
 }
 
+/// Below this many probe images, figures move by whole points per image;
+/// common practice, no source: the bundled probe set has 1,000.
+const SMALL_PROBE_IMAGES: usize = 100;
+
+/// A warning for a probe set too small for its figures to mean much.
+fn small_probe_warning(images: usize) -> Option<String> {
+    (images < SMALL_PROBE_IMAGES).then(|| {
+        format!(
+            "only {images} probe images: R@1 by chance alone is 1/{images} = {:.1}%, one image moves \
+             R@K by {:.1} points, and the suggested scales rest on {images} true pairs; \
+             use {SMALL_PROBE_IMAGES} or more images for figures to rely on",
+            100.0 / images as f64,
+            100.0 / images as f64,
+        )
+    })
+}
+
 fn write_text(path: &Path, text: &str) -> anyhow::Result<()> {
     std::fs::write(path, text).with_context(|| format!("writing {}", path.display()))
 }
@@ -124,6 +141,9 @@ pub fn calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
     let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
     let vectors = embed(&model, &set, a.output.skip_bad)?;
     let report = stats::calibrate(&vectors, &options)?;
+    if let Some(warning) = small_probe_warning(report.counts.images) {
+        eprintln!("befit: warning: {warning}");
+    }
     if let Some(path) = &a.output.report {
         write_text(path, &stats::calibration_html(&report))?;
         eprintln!("befit: report written to {}", path.display());
@@ -166,6 +186,9 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
         )
     };
     let report = stats::drift(&from, &to, &options)?;
+    if let Some(warning) = small_probe_warning(from.images.nrows()) {
+        eprintln!("befit: warning: {warning}");
+    }
     if let Some(path) = &a.output.report {
         write_text(path, &stats::drift_html(&report))?;
         eprintln!("befit: report written to {}", path.display());
@@ -201,6 +224,12 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
 }
 
 /// A few headline lines for a terminal; `--json` has everything.
+/// `a * c + b` as a person writes it: `1.8224 * c - 0.5876`, not `+ -0.5876`.
+fn affine_text(a: f64, b: f64) -> String {
+    let sign = if b < 0.0 { '-' } else { '+' };
+    format!("{a:.4} * c {sign} {:.4}", b.abs())
+}
+
 fn summary_of_calibration(report: &stats::CalibrationReport) -> anyhow::Result<String> {
     let v = serde_json::to_value(report)?;
     let mut out = format!(
@@ -226,9 +255,11 @@ fn summary_of_calibration(report: &stats::CalibrationReport) -> anyhow::Result<S
         num(&v, "/contrast/overall/rate")
     );
     out += &format!(
-        "  suggested: affine {:.4} * c + {:.4}; CLIP-S weight {:.4}\n",
-        num(&v, "/suggested/affine/a"),
-        num(&v, "/suggested/affine/b"),
+        "  suggested: affine {}; CLIP-S weight {:.4}\n",
+        affine_text(
+            num(&v, "/suggested/affine/a"),
+            num(&v, "/suggested/affine/b")
+        ),
         num(&v, "/suggested/clip_s_weight"),
     );
     out += "  (--json prints every figure; --report FILE writes the HTML report)\n";
@@ -260,9 +291,11 @@ fn summary_of_drift(report: &stats::DriftReport) -> anyhow::Result<String> {
         num(&v, "/neighbour_overlap/mean_jaccard"),
     );
     out += &format!(
-        "  new-to-old map: affine {:.4} * c + {:.4} (RMSE {:.4}); monotone RMSE {:.4}\n",
-        num(&v, "/continuity/affine/map/a"),
-        num(&v, "/continuity/affine/map/b"),
+        "  new-to-old map: affine {} (RMSE {:.4}); monotone RMSE {:.4}\n",
+        affine_text(
+            num(&v, "/continuity/affine/map/a"),
+            num(&v, "/continuity/affine/map/b")
+        ),
         num(&v, "/continuity/affine/rmse"),
         num(&v, "/continuity/monotone/rmse"),
     );

@@ -7,7 +7,7 @@ use std::time::Duration;
 
 use anyhow::{anyhow, bail, Context};
 
-use super::args::{CheckBundleArgs, EncoderArgs, ServeArgs};
+use super::args::{CheckBundleArgs, EncoderArgs, ServeArgs, ServeEncoderArgs};
 use super::ort_environment;
 use crate::batching::BatchSettings;
 use crate::encoders::{load_bundles, ModelSettings};
@@ -16,8 +16,12 @@ use crate::metrics::Registry;
 use crate::server::listen::{open_file_limit, ConnectionSettings};
 use crate::service::{Running, ServiceConfig, DEFAULT_BANK_DUMP_SECONDS};
 
-/// Encoder settings from the flags, checked.
-pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
+/// Encoder settings from the flags, checked (offline commands pass
+/// `ServeEncoderArgs::default()` for the queueing and caching ones).
+pub(crate) fn model_settings(
+    a: &EncoderArgs,
+    s: &ServeEncoderArgs,
+) -> anyhow::Result<ModelSettings> {
     let workers = a
         .workers
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
@@ -25,28 +29,28 @@ pub(crate) fn model_settings(a: &EncoderArgs) -> anyhow::Result<ModelSettings> {
         || a.intra_threads == 0
         || a.max_batch == 0
         || a.max_image_batch == 0
-        || a.queue_depth == 0
+        || s.queue_depth == 0
     {
         bail!("--workers, --intra-threads, --max-batch, --max-image-batch and --queue-depth must be at least 1");
     }
-    let wait = Duration::from_micros(a.max_wait_micros);
+    let wait = Duration::from_micros(s.max_wait_micros);
     Ok(ModelSettings {
         workers,
         intra_threads: a.intra_threads,
         image_batch: BatchSettings {
             max_batch: a.max_image_batch,
             max_wait: wait,
-            queue_depth: a.queue_depth,
+            queue_depth: s.queue_depth,
             group_by_cost: false,
         },
         text_batch: BatchSettings {
             max_batch: a.max_batch,
             max_wait: wait,
-            queue_depth: a.queue_depth,
+            queue_depth: s.queue_depth,
             group_by_cost: true,
         },
-        caption_cache: a.caption_cache,
-        image_cache: a.image_cache,
+        caption_cache: s.caption_cache,
+        image_cache: s.image_cache,
     })
 }
 
@@ -89,7 +93,7 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
         data_dir: a.data_dir.clone(),
         image_root: a.image_root.clone(),
         limits,
-        models: model_settings(&a.encoders)?,
+        models: model_settings(&a.encoders, &a.serving)?,
         maps,
         bank_dump_every: Duration::from_secs(DEFAULT_BANK_DUMP_SECONDS),
     })

@@ -52,6 +52,7 @@ pub fn app(state: Service) -> Router {
         .route("/metrics", get(routes::health::metrics));
     let work = Router::new()
         .route("/v1/models", get(routes::models::list))
+        .route("/v1/limits", get(routes::limits::list))
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
         .route("/v1/vectors", post(routes::vectors::embed))

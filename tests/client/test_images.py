@@ -98,3 +98,24 @@ def test_sources_become_file_bytes(tmp_path):
     assert source_bytes(ServerPath("images/00000.png")) is None
     with pytest.raises(TypeError, match="cannot use"):
         source_bytes(3.5)
+
+
+@pytest.mark.parametrize("mode", ["L", "RGB", "RGBA"])
+def test_a_pil_image_and_its_array_get_the_same_id(mode):
+    # Pillow's own PNG writer picks other filters and chunks than encode_png, so
+    # the PIL image goes through encode_png too: same pixels, same bytes, same id.
+    rng = np.random.default_rng(7)
+    shape = {"L": (5, 6), "RGB": (5, 6, 3), "RGBA": (5, 6, 4)}[mode]
+    pixels = rng.integers(0, 256, size=shape, dtype=np.uint8)
+    pil = PIL.fromarray(pixels, mode=mode)
+    assert content_id(source_bytes(pil)) == content_id(source_bytes(pixels))
+    # And the bytes still decode (in Pillow, the reference decoder) to those pixels.
+    np.testing.assert_array_equal(np.asarray(PIL.open(io.BytesIO(source_bytes(pil)))), pixels)
+
+
+def test_a_palette_image_is_sent_as_its_rgb_pixels():
+    pixels = np.zeros((3, 3, 3), dtype=np.uint8)
+    pixels[1, 1] = (200, 10, 30)
+    palette = PIL.fromarray(pixels, mode="RGB").convert("P")
+    rgb = np.asarray(palette.convert("RGB"))
+    assert content_id(source_bytes(palette)) == content_id(encode_png(rgb))

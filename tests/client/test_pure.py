@@ -6,6 +6,7 @@ from __future__ import annotations
 import email.utils
 import json
 import random
+import socket
 
 import numpy as np
 import pytest
@@ -22,6 +23,7 @@ from befit_client import (
     parse_retry_after,
     scale_json,
 )
+from befit_client.client import check_reward_args
 from befit_client.chunking import (
     group_captions,
     json_size,
@@ -234,3 +236,48 @@ def test_answers_missing_samples_or_groups_are_refused():
         assemble_rewards([answer([[0.1]])], [1, 1], [False, False])
     with pytest.raises(ProtocolError, match="greedy"):
         assemble_rewards([answer([[0.1]])], [1], [True])
+
+
+def test_a_bare_string_is_refused_before_anything_is_sent():
+    # One path string would otherwise be iterated character by character.
+    with pytest.raises(TypeError, match="images is a single str"):
+        check_reward_args("images/00000.png", [["a small green circle"]], "none", None, None)
+    with pytest.raises(TypeError, match="captions is a single str"):
+        check_reward_args(["images/00000.png"], "a small green circle", "none", None, None)
+    with pytest.raises(TypeError, match=r"captions\[0\] is a string"):
+        check_reward_args(["a.png"], ["a small green circle"], "none", None, None)
+
+
+def _closed_port() -> int:
+    # A port the kernel just handed out and that nothing listens on any more.
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_a_refused_first_connection_fails_at_once_with_a_hint():
+    from befit_client import TransportError
+    from befit_client.transport import Transport
+
+    waits = []
+    transport = Transport(f"http://127.0.0.1:{_closed_port()}", sleep=waits.append)
+    with pytest.raises(TransportError, match="connection refused: is befit running"):
+        transport.request("GET", "/v1/models")
+    assert waits == [] and transport.requests_sent == 1
+
+
+def test_refusals_are_retried_and_logged_when_the_policy_says_so(caplog):
+    from befit_client import TransportError
+    from befit_client.transport import Transport
+
+    waits = []
+    policy = RetryPolicy(max_attempts=3, initial_delay=0.5, jitter=0.0, retry_refused_at_first=True)
+    transport = Transport(f"http://127.0.0.1:{_closed_port()}", retry=policy, sleep=waits.append)
+    with caplog.at_level("WARNING", logger="befit_client"):
+        with pytest.raises(TransportError, match="failed after 3 attempt"):
+            transport.request("GET", "/v1/models")
+    assert waits == [0.5, 1.0]
+    retries = [r.getMessage() for r in caplog.records if r.name == "befit_client"]
+    assert len(retries) == 2
+    assert all("connection refused" in m for m in retries)
+    assert "retry 1 of 2 in 0.50 s" in retries[0] and "retry 2 of 2 in 1.00 s" in retries[1]

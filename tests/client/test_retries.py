@@ -20,6 +20,7 @@ import pytest
 from befit_client import (
     Client,
     ImageId,
+    Limits,
     InvalidFieldError,
     NotReadyError,
     OverloadedError,
@@ -142,7 +143,8 @@ class ScriptedRandom:
 def client_via(stub: Stub, retry: RetryPolicy, timeout: float = 30.0, rng: Optional[ScriptedRandom] = None):
     waits: List[float] = []
     transport = Transport(stub.url, timeout=timeout, retry=retry, sleep=waits.append, rng=rng)
-    return Client(transport=transport), waits
+    # Limits given, so that the stub's script meets only the requests under test.
+    return Client(transport=transport, limits=Limits()), waits
 
 
 CAPTIONS = [["two pieces", "a large purple cross", "a small red circle"]]
@@ -211,7 +213,7 @@ def test_the_deadline_bounds_the_waiting(stub, image_id):
     transport = Transport(stub.url, retry=RetryPolicy(deadline=2.5, jitter=0.0), sleep=sleep, clock=lambda: now[0])
     # Waits of 1 s end at t = 1 and 2; the third would end at 3 > 2.5, so it is not taken.
     with pytest.raises(OverloadedError) as e:
-        Client(transport=transport).rewards([image_id], CAPTIONS)
+        Client(transport=transport, limits=Limits()).rewards([image_id], CAPTIONS)
     assert waits == [1.0, 1.0] and e.value.attempts == 3 and len(stub.seen) == 3
 
 
@@ -269,7 +271,7 @@ def test_the_default_client_waits_with_the_real_clock(stub, image_id):
     # Without injected functions the client sleeps with time.sleep and reads time.monotonic
     # (what the waits above are recorded in place of), and a retry through them goes through.
     stub.script = [("503", 0)]
-    client = Client(stub.url, retry=RetryPolicy(initial_delay=0.01, jitter=0.0))
+    client = Client(stub.url, retry=RetryPolicy(initial_delay=0.01, jitter=0.0), limits=Limits())
     assert client.transport.sleep is time.sleep and client.transport.clock is time.monotonic
     client.rewards([image_id], CAPTIONS)
     assert len(stub.seen) == 2 and client.transport.retries_done == 1
@@ -303,6 +305,7 @@ def test_the_real_server_sheds_and_every_call_still_gets_through(tmp_path, probe
         assert errors == []
         assert shapes == [(200, 8)] * 18
         assert client.transport.retries_done > 0  # it did shed
-        assert client.transport.requests_sent == 1 + 18 + client.transport.retries_done
+        # GET /v1/limits, one registration, 18 reward calls, and the retries.
+        assert client.transport.requests_sent == 1 + 1 + 18 + client.transport.retries_done
     finally:
         server.stop()

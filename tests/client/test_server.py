@@ -167,10 +167,22 @@ def test_small_client_limits_split_into_chunks_with_the_same_answer(befit, rows)
 
 def test_server_limits_are_typed_errors_and_client_limits_fix_them(befit_copy, rows):
     caps = [r["captions"][:2] for r in rows[:6]]
+    # Limits given by hand that are wrong for this server (--max-groups 4): its typed refusal.
     with pytest.raises(OverLimitError) as e:
-        Client(befit_copy.url).rewards(paths(rows[:6]), caps)
+        Client(befit_copy.url, limits=Limits()).rewards(paths(rows[:6]), caps)
     assert e.value.status == 400 and "max-groups" in e.value.message
     out = Client(befit_copy.url, limits=Limits(max_groups=4)).rewards(paths(rows[:6]), caps)
+    assert out.reward.shape == (6, 2)
+
+
+def test_by_default_the_client_splits_by_the_servers_own_limits(befit_copy, rows):
+    caps = [r["captions"][:2] for r in rows[:6]]
+    client = Client(befit_copy.url)
+    client.register_images(paths(rows[:6]))
+    assert client.limits.max_groups == 4  # read from GET /v1/limits, not the default 1024
+    before = client.transport.requests_sent
+    out = client.rewards(paths(rows[:6]), caps)
+    assert client.transport.requests_sent - before == 2  # 6 groups in chunks of at most 4
     assert out.reward.shape == (6, 2)
 
 

@@ -81,25 +81,6 @@ fn registered_images_survive_a_restart() {
 }
 
 #[test]
-fn a_missing_runtime_library_is_a_clear_error() {
-    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
-        .args([
-            "check-bundle",
-            bundle_dir("blocks-v1").to_str().unwrap(),
-            "--ort-lib",
-            "/nowhere/libonnxruntime.so",
-        ])
-        .output()
-        .unwrap();
-    assert_eq!(out.status.code(), Some(1));
-    let stderr = String::from_utf8_lossy(&out.stderr);
-    assert!(
-        stderr.contains("ONNX Runtime library not found") && stderr.contains("make ort"),
-        "{stderr}"
-    );
-}
-
-#[test]
 fn a_bundle_that_disagrees_with_its_graph_names_file_and_field() {
     let dir = tempfile::tempdir().unwrap();
     let src = bundle_dir("blocks-v1");

@@ -10,6 +10,7 @@ mod bank_limits;
 mod binary;
 mod concurrency;
 mod contrast;
+mod first_run;
 mod http_errors;
 mod http_rewards;
 mod http_statistics;

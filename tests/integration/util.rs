@@ -46,6 +46,7 @@ pub fn ort_lib() -> PathBuf {
         flag: None,
         env,
         roots: vec![repo()],
+        exe_dir: None,
     }
     .locate()
     .unwrap_or_else(|e| panic!("{e}"))

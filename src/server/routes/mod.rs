@@ -4,6 +4,7 @@
 pub mod bank;
 pub mod health;
 pub mod images;
+pub mod limits;
 pub mod live;
 pub mod models;
 pub mod rewards;

@@ -1,7 +1,8 @@
 """Splitting large requests into pieces the server accepts.
 
 :class:`Limits` mirrors the limit table of befit's HTTP API (each limit is a
-``befit serve`` flag; the defaults here are the server's defaults). A reward
+``befit serve`` flag; the defaults here are the server's defaults, used only
+for a server that does not answer ``GET /v1/limits``). A reward
 request is cut between groups, never inside one, because a group's baseline
 (``mean-of-others``, ``greedy``) depends on all of its captions.
 """
@@ -29,6 +30,15 @@ class Limits:
     max_caption_bytes: int = 2048  # --max-caption-bytes
     max_images: int = 256  # --max-images (per /v1/images or /v1/vectors)
     body_fraction: float = 0.9
+
+    @classmethod
+    def from_json(cls, doc: Any) -> "Limits":
+        """The limits of a ``GET /v1/limits`` answer (unknown keys ignored)."""
+        names = ("max_body_bytes", "max_groups", "max_captions", "max_caption_bytes", "max_images")
+        try:
+            return cls(**{name: int(doc[name]) for name in names})
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ValueError(f"GET /v1/limits answered without a usable {exc}: {doc!r}") from exc
 
     @property
     def body_budget(self) -> int:

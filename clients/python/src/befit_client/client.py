@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import base64
 import json
+import os
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -15,6 +16,7 @@ import numpy as np
 from .chunking import Limits, json_size, plan_image_chunks, plan_reward_chunks, split
 from .errors import (
     ModelMismatchError,
+    NotFoundError,
     NotReadyError,
     ProtocolError,
     RequestTooLargeError,
@@ -67,6 +69,12 @@ def check_reward_args(
     greedy: Optional[Sequence[Any]],
 ) -> None:
     """The local checks of a rewards call, before anything is sent."""
+    for name, value in (("images", images), ("captions", captions)):
+        if isinstance(value, (str, bytes, os.PathLike)):
+            raise TypeError(
+                f"{name} is a single {type(value).__name__}; give a list with one entry per group "
+                "(images: one image per group; captions: one list of captions per image)"
+            )
     if baseline not in BASELINES:
         raise ValueError(f"baseline is one of {BASELINES}, got {baseline!r}")
     n = len(images)
@@ -79,7 +87,9 @@ def check_reward_args(
             raise ValueError(f"{n} images but {len(extra)} entries in {name}; give one per group (None to skip)")
     for i, caps in enumerate(captions):
         if isinstance(caps, str):
-            raise TypeError(f"captions[{i}] is a string; each group takes a list of captions")
+            raise TypeError(
+                f"captions[{i}] is a string; captions takes one list of captions per image, e.g. [[\"a small green circle\", ...], ...]"
+            )
 
 
 def _decode(body: bytes, what: str) -> Any:
@@ -106,8 +116,9 @@ class Client:
     - ``timeout``: seconds for each socket operation.
     - ``retry``: when to retry (default ``RetryPolicy()``: 503 answers,
       dropped connections and timeouts).
-    - ``limits``: the server's limits, used to split requests (default
-      ``Limits()``: the server's defaults).
+    - ``limits``: the server's limits, used to split requests (default: read
+      once from the server's ``GET /v1/limits`` on first use; ``Limits()``, the
+      server's defaults, for a server without that route).
     - ``max_workers``: chunks of one call sent at once (the server batches
       concurrent requests together, so 2-4 can help on a big call).
 
@@ -128,7 +139,7 @@ class Client:
     ) -> None:
         self.transport = transport or Transport(url, timeout=timeout, retry=retry or RetryPolicy())
         self.model = model
-        self.limits = limits or Limits()
+        self._limits: Optional[Limits] = limits
         self.max_workers = max(1, int(max_workers))
         self._pin_first = pin_digest == "first"
         if pin_digest is not None and not self._pin_first:
@@ -161,6 +172,19 @@ class Client:
             return [fn(x) for x in items]
         with ThreadPoolExecutor(max_workers=min(self.max_workers, len(items))) as pool:
             return list(pool.map(fn, items))
+
+    @property
+    def limits(self) -> Limits:
+        """The limits requests are split by: given, or the server's own."""
+        if self._limits is None:
+            try:
+                doc = self._get("/v1/limits")
+                fetched = Limits.from_json(doc)
+            except NotFoundError:
+                fetched = Limits()  # a server from before the route: its defaults
+            with self._lock:
+                self._limits = self._limits or fetched
+        return self._limits
 
     @property
     def pinned_digest(self) -> Optional[str]:

@@ -6,7 +6,8 @@ has. Accepted sources:
 
 - ``str`` or ``os.PathLike``: a local file, sent as its bytes;
 - ``bytes`` / ``bytearray`` / ``memoryview``: an encoded PNG, JPEG or WebP file;
-- a ``PIL.Image.Image`` (Pillow is optional): encoded as PNG;
+- a ``PIL.Image.Image`` (Pillow is optional): its pixels, encoded as PNG like
+  an array (so a PIL image and ``numpy.asarray`` of it get the same id);
 - a ``numpy.ndarray`` of ``uint8``, HxW (grey), HxWx3 (RGB) or HxWx4 (RGBA):
   encoded as PNG by :func:`encode_png`, no Pillow needed;
 - :class:`ImageId`: an image already registered on the server;
@@ -19,7 +20,6 @@ level), so an array sent twice gets the same id twice.
 from __future__ import annotations
 
 import hashlib
-import io
 import os
 import re
 import struct
@@ -112,10 +112,12 @@ def source_bytes(source: Any) -> Optional[bytes]:
         with open(source, "rb") as f:
             return f.read()
     if _is_pil_image(source):
-        buf = io.BytesIO()
-        image = source if source.mode in ("L", "RGB", "RGBA") else source.convert("RGB")
-        image.save(buf, format="PNG")
-        return buf.getvalue()
+        # Through the same encoder as arrays, so a PIL image and the array of
+        # its pixels get the same bytes, hence the same content id.
+        if source.mode not in ("L", "RGB", "RGBA"):
+            keep_alpha = source.mode in ("LA", "PA", "RGBa", "La") or "transparency" in source.info
+            source = source.convert("RGBA" if keep_alpha else "RGB")
+        return encode_png(np.asarray(source, dtype=np.uint8))
     raise TypeError(
         f"cannot use {type(source).__name__} as an image; give a path, bytes, a PIL image, "
         "a uint8 numpy array, an ImageId or a ServerPath"

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import email.utils
 import http.client
+import logging
 import random
 import socket
 import threading
@@ -20,6 +21,8 @@ from dataclasses import dataclass, field
 from typing import Callable, FrozenSet, Mapping, Optional, Tuple
 
 from .errors import ApiError, TransportError, from_response
+
+log = logging.getLogger("befit_client")
 
 
 @dataclass(frozen=True)
@@ -44,6 +47,10 @@ class RetryPolicy:
     deadline: Optional[float] = 300.0
     retry_statuses: FrozenSet[int] = field(default_factory=lambda: frozenset({503}))
     retry_on_timeout: bool = True
+    # A refused connection before this transport ever had an answer means no
+    # server is listening: fail at once instead of retrying for seconds. Once
+    # the server has answered, a refusal is a restart and is retried.
+    retry_refused_at_first: bool = False
 
     def __post_init__(self) -> None:
         if self.max_attempts < 1:
@@ -140,6 +147,7 @@ class Transport:
         # Totals over this transport's life, for logs and tests.
         self.requests_sent = 0  # attempts, retries included
         self.retries_done = 0
+        self.answered = False  # some request got an HTTP answer
 
     @property
     def base_url(self) -> str:
@@ -176,6 +184,7 @@ class Transport:
             raise
         if resp.will_close:
             self._drop_connection()
+        self.answered = True
         return Response(resp.status, {k.lower(): v for k, v in resp.getheaders()}, data)
 
     def request(
@@ -204,8 +213,16 @@ class Transport:
                 if not policy.retry_on_timeout:
                     raise TransportError(f"{method} {path}: no answer within {self.timeout} s", attempt) from exc
                 failure = ("timeout", exc)
+            except ConnectionRefusedError as exc:
+                if not self.answered and not policy.retry_refused_at_first:
+                    raise TransportError(
+                        f"{method} {self.base_url}{path}: connection refused: is befit running there? "
+                        "(start it with `make serve`; Client.wait_ready() waits for a server that is starting)",
+                        attempt,
+                    ) from exc
+                failure = ("connection refused", exc)
             except _DROPPED as exc:
-                failure = ("connection", exc)
+                failure = ("connection dropped", exc)
             except OSError as exc:
                 # Name resolution and the like: retrying will not help.
                 raise TransportError(f"{method} {self.base_url}{path}: {exc}", attempt) from exc
@@ -217,7 +234,7 @@ class Transport:
                 err.attempts = attempt
                 if resp.status not in policy.retry_statuses:
                     raise err
-                failure = ("status", err)
+                failure = (f"answer {resp.status}", err)
             # Decide whether another attempt is allowed.
             wait = policy.delay(attempt, retry_after, self.rng)
             too_late = policy.deadline is not None and self.clock() - started + wait > policy.deadline
@@ -234,4 +251,16 @@ class Transport:
                 ) from exc
             with self._count_lock:
                 self.retries_done += 1
+            kind, exc = failure
+            log.warning(
+                "%s %s%s: %s (%s); retry %d of %d in %.2f s",
+                method,
+                self.base_url,
+                path,
+                kind,
+                exc,
+                attempt,
+                policy.max_attempts - 1,
+                wait,
+            )
             self.sleep(wait)

@@ -1,0 +1,189 @@
+//! What a new user meets first: the limits a client can read, clear errors for
+//! a wrong runtime library, quiet ends of piped output, a warning on probe sets
+//! too small to mean much, and command flags that agree between commands.
+
+use std::io::Read;
+use std::process::{Command, Stdio};
+
+use axum::http::StatusCode;
+use befit::server::Limits;
+
+use crate::util::{bundle_dir, call, ort_lib, probe_dir, scratch_dir, state_with};
+
+fn befit() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_befit"))
+}
+
+fn help(args: &[&str]) -> String {
+    let out = befit().args(args).arg("--help").output().unwrap();
+    assert!(out.status.success(), "{args:?}");
+    String::from_utf8(out.stdout).unwrap()
+}
+
+#[tokio::test]
+async fn the_limits_route_answers_the_flags_in_force_not_the_defaults() {
+    let limits = Limits {
+        max_groups: 7,
+        max_captions: 99,
+        max_caption_bytes: 300,
+        max_images: 5,
+        max_body_bytes: 123_456,
+        ..Limits::default()
+    };
+    let state = state_with(&["blocks-v1"], limits.clone());
+    let (status, _, body) = call(&state, "GET", "/v1/limits", "", vec![]).await;
+    assert_eq!(status, StatusCode::OK, "{body}");
+    assert_eq!(body["max_groups"], 7);
+    assert_eq!(body["max_captions"], 99);
+    assert_eq!(body["max_caption_bytes"], 300);
+    assert_eq!(body["max_images"], 5);
+    assert_eq!(body["max_body_bytes"], 123_456);
+    assert_eq!(body["max_probe_rows"], limits.max_probe_rows);
+    assert_eq!(body["max_k"], befit::bank::index::MAX_K);
+    assert_eq!(
+        body["request_timeout_secs"],
+        limits.request_timeout.as_secs_f64()
+    );
+}
+
+/// `befit check-bundle` on blocks-v1 with `--ort-lib library`: its exit code and stderr.
+fn check_bundle_with(library: &str) -> (Option<i32>, String) {
+    let out = befit()
+        .args(["check-bundle", bundle_dir("blocks-v1").to_str().unwrap()])
+        .args(["--ort-lib", library])
+        .output()
+        .unwrap();
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+#[test]
+fn a_missing_runtime_library_is_a_clear_error() {
+    let (code, stderr) = check_bundle_with("/nowhere/libonnxruntime.so");
+    assert_eq!(code, Some(1));
+    assert!(
+        stderr.contains("ONNX Runtime library not found") && stderr.contains("make ort"),
+        "{stderr}"
+    );
+}
+
+#[test]
+fn a_library_that_is_not_onnx_runtime_is_named_as_such() {
+    // The C library this test runs with: a real shared library, not ONNX Runtime.
+    let maps = std::fs::read_to_string("/proc/self/maps").unwrap();
+    let libc = maps
+        .lines()
+        .filter_map(|line| line.split_whitespace().nth(5))
+        .find(|path| path.contains("/libc.so"))
+        .unwrap()
+        .to_string();
+    let (code, stderr) = check_bundle_with(&libc);
+    assert_eq!(code, Some(1));
+    assert!(
+        stderr.contains("not ONNX Runtime") && stderr.contains("make ort"),
+        "{stderr}"
+    );
+    assert!(!stderr.contains("panicked"), "{stderr}");
+}
+
+#[test]
+fn output_closed_early_ends_the_command_without_a_panic() {
+    let mut child = befit()
+        .args(["check-bundle", bundle_dir("blocks-v1").to_str().unwrap()])
+        .arg("--ort-lib")
+        .arg(ort_lib())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    // Close the reading end before the bundle is loaded and the report printed (`| head -0`).
+    drop(child.stdout.take());
+    let mut stderr = String::new();
+    child
+        .stderr
+        .take()
+        .unwrap()
+        .read_to_string(&mut stderr)
+        .unwrap();
+    let status = child.wait().unwrap();
+    assert!(!stderr.contains("panicked"), "{stderr}");
+    use std::os::unix::process::ExitStatusExt;
+    assert_eq!(
+        status.signal(),
+        Some(13),
+        "ended by SIGPIPE, as `cat` would: {status:?}"
+    );
+}
+
+#[test]
+fn a_tiny_probe_set_gets_a_small_sample_warning() {
+    let dir = scratch_dir("tiny-probe");
+    let rows: Vec<String> = std::fs::read_to_string(probe_dir().join("probe.jsonl"))
+        .unwrap()
+        .lines()
+        .take(3)
+        .map(str::to_string)
+        .collect();
+    let probe = dir.join("probe.jsonl");
+    std::fs::write(&probe, rows.join("\n")).unwrap();
+    std::os::unix::fs::symlink(probe_dir().join("images"), dir.join("images")).unwrap();
+    let out = befit()
+        .args([
+            "calibrate",
+            "--bundle",
+            bundle_dir("blocks-v1").to_str().unwrap(),
+        ])
+        .arg("--probe")
+        .arg(&probe)
+        .arg("--ort-lib")
+        .arg(ort_lib())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    assert!(
+        stderr.contains("warning: only 3 probe images") && stderr.contains("1/3 = 33.3%"),
+        "{stderr}"
+    );
+}
+
+#[test]
+fn both_commands_with_a_k_take_it_the_same_way() {
+    for command in [&["bank", "query"][..], &["drift"][..]] {
+        let text = help(command);
+        assert!(text.contains("-k, --k <K>"), "{command:?}: {text}");
+    }
+}
+
+#[test]
+fn offline_commands_do_not_offer_the_servers_queue_and_cache_flags() {
+    let serving = [
+        "--queue-depth",
+        "--caption-cache",
+        "--image-cache",
+        "--max-wait-micros",
+    ];
+    let serve = help(&["serve"]);
+    for flag in serving {
+        assert!(serve.contains(flag), "serve lacks {flag}");
+    }
+    for command in [
+        &["bank", "import"][..],
+        &["bank", "query"][..],
+        &["bank", "embed-missing"][..],
+        &["calibrate"][..],
+        &["drift"][..],
+        &["score"][..],
+    ] {
+        let text = help(command);
+        assert!(
+            text.contains("--workers"),
+            "{command:?} keeps the encoder flags"
+        );
+        for flag in serving {
+            assert!(!text.contains(flag), "{command:?} lists {flag}");
+        }
+    }
+}
