@@ -220,8 +220,27 @@ def measure_rl() -> Dict[str, Any]:
     }
 
 
+def measure_calibration(bundle: str) -> Dict[str, Any]:
+    """`befit calibrate --json` of a bundled model on the bundled probe set."""
+    binary = REPO / "target" / "release" / "befit"
+    out = subprocess.run(
+        [str(binary), "calibrate", "--bundle", bundle, "--probe", "fixtures/probe/probe.jsonl", "--json"],
+        cwd=REPO, capture_output=True, text=True, check=True,
+    )
+    report = json.loads(out.stdout)
+    return {
+        "bundle": bundle,
+        "digest": bundle_digest(REPO / bundle),
+        "measured": datetime.date.today().isoformat(),
+        "command": f"befit calibrate --bundle {bundle} --probe fixtures/probe/probe.jsonl --json",
+        "retrieval": report["retrieval"],
+        "contrast": report["contrast"]["overall"],
+    }
+
+
 def measure() -> int:
     runs = json.loads(FIGURES.read_text()) if FIGURES.exists() else {}
+    runs["calibrate_blocks_v1"] = measure_calibration("fixtures/models/blocks-v1")
     runs["blocks_rl"] = measure_rl()
     FIGURES.write_text(json.dumps(runs, indent=1, sort_keys=True) + "\n")
     return write()
