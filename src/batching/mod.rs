@@ -17,6 +17,9 @@ use std::time::{Duration, Instant};
 
 use tokio::sync::oneshot;
 
+pub mod drain;
+use drain::DrainRate;
+
 /// Default largest number of items in one encoder run.
 pub const DEFAULT_MAX_BATCH: usize = 64;
 /// Default longest time the oldest job waits for company, in microseconds:
@@ -94,6 +97,7 @@ struct Queue<I, O> {
     wake: Condvar,
     settings: BatchSettings,
     observer: Arc<dyn BatchObserver>,
+    drain: DrainRate,
 }
 
 impl<I, O> Queue<I, O> {
@@ -134,6 +138,7 @@ impl<I: Send + 'static, O: Send + 'static> Batcher<I, O> {
             wake: Condvar::new(),
             settings,
             observer,
+            drain: DrainRate::default(),
         });
         let workers = runners
             .into_iter()
@@ -182,6 +187,12 @@ impl<I: Send + 'static, O: Send + 'static> Batcher<I, O> {
     /// Jobs waiting now.
     pub fn depth(&self) -> usize {
         self.queue.lock().jobs.len()
+    }
+
+    /// Time the jobs waiting now will take, at the recent speed of the
+    /// workers (zero before a first run).
+    pub fn drain_time(&self) -> Duration {
+        self.queue.drain.time_for(self.depth(), self.workers.len())
     }
 }
 
@@ -233,7 +244,9 @@ fn work<R: BatchRunner>(queue: Arc<Queue<R::Item, R::Output>>, mut runner: R) {
             continue;
         }
         for run in split_runs(taken, settings.group_by_cost) {
+            let (items, started) = (run.len(), Instant::now());
             execute(&mut runner, run, queue.observer.as_ref());
+            queue.drain.record(items, started.elapsed());
         }
     }
 }

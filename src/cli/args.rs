@@ -308,6 +308,10 @@ pub struct ServeArgs {
     /// as `remap`: NAME=FILE; repeatable. Maps saved by POST /v1/drift live in the data folder.
     #[arg(long = "map", value_name = "NAME=FILE")]
     pub maps: Vec<String>,
+    /// Start even when images.sqlite or bank.sqlite holds fewer items than the
+    /// data folder's counts.json recorded (they were emptied or replaced).
+    #[arg(long)]
+    pub accept_smaller_stores: bool,
     #[command(flatten)]
     pub guards: ServeGuardArgs,
 }
@@ -417,4 +421,8 @@ pub struct ServeGuardArgs {
     /// Seconds to finish requests in flight at shutdown before closing what is left.
     #[arg(long, default_value_t = crate::server::listen::DEFAULT_DRAIN_SECS)]
     pub drain_secs: u64,
+    /// Milliseconds of encoder work already queued past which new work requests get 503
+    /// before their body is read (Retry-After: the queue's drain time).
+    #[arg(long, default_value_t = crate::intake::limits::DEFAULT_MAX_QUEUE_WAIT_MS)]
+    pub max_queue_wait_ms: u64,
 }

@@ -76,6 +76,7 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
         decode_budget_bytes: a.guards.decode_budget_bytes,
         body_timeout: Duration::from_secs(a.guards.body_timeout_secs.max(1)),
         min_body_rate: a.guards.min_body_rate,
+        max_queue_wait: Duration::from_millis(a.guards.max_queue_wait_ms),
     };
     if limits.decode_budget_bytes < limits.max_decoded_bytes {
         bail!("--decode-budget-bytes must be at least --max-decoded-bytes ({}), or no image of that size could ever be decoded", limits.max_decoded_bytes);
@@ -96,6 +97,7 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
         models: model_settings(&a.encoders, &a.serving)?,
         maps,
         bank_dump_every: Duration::from_secs(DEFAULT_BANK_DUMP_SECONDS),
+        accept_smaller_stores: a.accept_smaller_stores,
     })
 }
 

@@ -356,6 +356,12 @@ impl Model {
     pub fn queue_depths(&self) -> (usize, usize) {
         (self.images.depth(), self.texts.depth())
     }
+
+    /// Time both towers' queued jobs take at their recent speed (summed: the
+    /// towers share the machine's cores).
+    pub fn drain_time(&self) -> std::time::Duration {
+        self.images.drain_time() + self.texts.drain_time()
+    }
 }
 
 fn batch_error(tower: &'static str, e: BatchError) -> EncodeError {

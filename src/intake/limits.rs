@@ -31,6 +31,11 @@ pub const DEFAULT_BODY_TIMEOUT_SECS: u64 = 30;
 /// Slowest body accepted after [`BODY_RATE_GRACE`]: 4 KiB a second, far
 /// below any real network, far above a client trickling bytes to hold a connection.
 pub const DEFAULT_MIN_BODY_RATE: u64 = 4096;
+/// Encoder work already queued beyond which new work requests are refused
+/// before their body is read (503 with `Retry-After` = the queue's drain
+/// time). One second: an accepted request waits at most about that for the
+/// encoders; a starting value, not yet chosen by a load measurement.
+pub const DEFAULT_MAX_QUEUE_WAIT_MS: u64 = 1_000;
 /// The first seconds of a body are not rate-checked (slow starts, small bodies).
 pub const BODY_RATE_GRACE: Duration = Duration::from_secs(3);
 
@@ -96,6 +101,8 @@ pub struct Limits {
     pub body_timeout: Duration,
     /// Bytes a second a body must keep up after [`BODY_RATE_GRACE`].
     pub min_body_rate: u64,
+    /// Queued encoder work past which new work is refused before its body is read.
+    pub max_queue_wait: Duration,
 }
 
 impl Default for Limits {
@@ -114,6 +121,7 @@ impl Default for Limits {
             request_timeout: Duration::from_secs(DEFAULT_REQUEST_TIMEOUT_SECS),
             body_timeout: Duration::from_secs(DEFAULT_BODY_TIMEOUT_SECS),
             min_body_rate: DEFAULT_MIN_BODY_RATE,
+            max_queue_wait: Duration::from_millis(DEFAULT_MAX_QUEUE_WAIT_MS),
         }
     }
 }

@@ -1,4 +1,6 @@
-//! Request bodies are read in full before a request takes a slot.
+//! Request bodies are read in full before a request takes a slot, and new
+//! work is refused before its body is read when the encoders already have
+//! more than `--max-queue-wait-ms` of work queued.
 //!
 //! A client that trickles its body must not hold one of the `--max-inflight`
 //! slots (nor an encoder job) while it does, so this layer sits outside the
@@ -48,6 +50,15 @@ pub fn bodies_reading() -> i64 {
 
 /// The middleware: buffers the body, then runs the rest of the stack.
 pub async fn read_first(State(state): State<Service>, request: Request, next: Next) -> Response {
+    // Admission by queued work, before a byte of the body is read: a request
+    // that would only wait behind more than --max-queue-wait-ms of encoding
+    // is told at once how long the queue needs to drain.
+    if request.method() == axum::http::Method::POST {
+        let queued = state.queued_work();
+        if queued > state.limits().max_queue_wait {
+            return ApiError::queue_full_for(queued).into_response();
+        }
+    }
     let (parts, body) = request.into_parts();
     let read = read_body(body, state.limits());
     let reading = bodies_reading() as f64;

@@ -20,7 +20,8 @@ use crate::service::maps::MapError;
 use crate::service::NotReady;
 use crate::stats::StatsError;
 
-/// Seconds a client is told to wait after a 503.
+/// Seconds a client is told to wait after a 503 when nothing better is known
+/// (a shed by queued work says how long the queue takes to drain instead).
 pub const RETRY_AFTER_SECONDS: u64 = 1;
 
 /// Every code an answer can carry; `proto-free-api.md` has the same table.
@@ -45,12 +46,13 @@ pub enum ErrorCode {
     ImageTooLarge,
     Overloaded,
     NotReady,
+    StorageFull,
     Internal,
 }
 
 impl ErrorCode {
     /// Every code, in the order of the API doc's table.
-    pub const ALL: [ErrorCode; 19] = [
+    pub const ALL: [ErrorCode; 20] = [
         ErrorCode::BadJson,
         ErrorCode::InvalidField,
         ErrorCode::OverLimit,
@@ -69,6 +71,7 @@ impl ErrorCode {
         ErrorCode::ImageTooLarge,
         ErrorCode::Overloaded,
         ErrorCode::NotReady,
+        ErrorCode::StorageFull,
         ErrorCode::Internal,
     ];
 
@@ -90,6 +93,7 @@ impl ErrorCode {
             ErrorCode::UnsupportedMediaType => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ErrorCode::BadImage | ErrorCode::ImageTooLarge => StatusCode::UNPROCESSABLE_ENTITY,
             ErrorCode::Overloaded | ErrorCode::NotReady => StatusCode::SERVICE_UNAVAILABLE,
+            ErrorCode::StorageFull => StatusCode::INSUFFICIENT_STORAGE,
             ErrorCode::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -115,6 +119,7 @@ impl ErrorCode {
             ErrorCode::ImageTooLarge => "image_too_large",
             ErrorCode::Overloaded => "overloaded",
             ErrorCode::NotReady => "not_ready",
+            ErrorCode::StorageFull => "storage_full",
             ErrorCode::Internal => "internal",
         }
     }
@@ -126,6 +131,8 @@ pub struct ApiError {
     pub code: ErrorCode,
     pub message: String,
     pub field: Option<String>,
+    /// `Retry-After` of a 503, in seconds, when known; else [`RETRY_AFTER_SECONDS`].
+    pub retry_after: Option<u64>,
 }
 
 #[derive(Serialize)]
@@ -147,6 +154,7 @@ impl ApiError {
             code,
             message: message.into(),
             field: None,
+            retry_after: None,
         }
     }
 
@@ -163,6 +171,19 @@ impl ApiError {
 
     pub fn overloaded(message: impl Into<String>) -> ApiError {
         ApiError::new(ErrorCode::Overloaded, message)
+    }
+
+    /// 503 for work that would wait `queued` behind what is already queued:
+    /// `Retry-After` is that time, rounded up to whole seconds.
+    pub fn queue_full_for(queued: std::time::Duration) -> ApiError {
+        let seconds = queued.as_secs_f64().ceil().max(1.0) as u64;
+        ApiError {
+            retry_after: Some(seconds),
+            ..ApiError::overloaded(format!(
+                "the encoders have {:.1} s of work queued, over --max-queue-wait-ms; retry after it drains",
+                queued.as_secs_f64()
+            ))
+        }
     }
 
     /// 413, naming the flag.
@@ -182,6 +203,20 @@ impl ApiError {
         )
     }
 
+    /// A fault of the server's side: 507 `storage_full` when the disk under
+    /// the data folder is full (a write failed for want of space; reads go
+    /// on), else [`ApiError::internal`].
+    pub fn server_fault(error: &(dyn std::error::Error + 'static)) -> ApiError {
+        if is_storage_full(error) {
+            tracing::warn!(error = %error, "a write failed: the data folder's disk is full");
+            return ApiError::new(
+                ErrorCode::StorageFull,
+                "the server's disk is full: writes are refused until space is freed; reads go on",
+            );
+        }
+        ApiError::internal(error)
+    }
+
     /// Sets the field to blame, unless one is already set.
     pub fn at(mut self, field: impl Into<String>) -> ApiError {
         if self.field.is_none() {
@@ -189,6 +224,29 @@ impl ApiError {
         }
         self
     }
+}
+
+/// True when `error`, or any error under it, says the disk or quota is full:
+/// SQLite's `SQLITE_FULL`, or an I/O error `ENOSPC` / `EDQUOT`.
+pub fn is_storage_full(error: &(dyn std::error::Error + 'static)) -> bool {
+    let mut next = Some(error);
+    while let Some(e) = next {
+        if let Some(sqlite) = e.downcast_ref::<rusqlite::Error>() {
+            if sqlite.sqlite_error_code() == Some(rusqlite::ErrorCode::DiskFull) {
+                return true;
+            }
+        }
+        if let Some(io) = e.downcast_ref::<std::io::Error>() {
+            if io.kind() == std::io::ErrorKind::StorageFull
+                || io.kind() == std::io::ErrorKind::QuotaExceeded
+                || matches!(io.raw_os_error(), Some(libc::ENOSPC) | Some(libc::EDQUOT))
+            {
+                return true;
+            }
+        }
+        next = e.source();
+    }
+    false
 }
 
 impl IntoResponse for ApiError {
@@ -202,9 +260,10 @@ impl IntoResponse for ApiError {
         };
         let mut response = (self.status(), axum::Json(body)).into_response();
         if self.status() == StatusCode::SERVICE_UNAVAILABLE {
-            response
-                .headers_mut()
-                .insert(header::RETRY_AFTER, HeaderValue::from(RETRY_AFTER_SECONDS));
+            response.headers_mut().insert(
+                header::RETRY_AFTER,
+                HeaderValue::from(self.retry_after.unwrap_or(RETRY_AFTER_SECONDS)),
+            );
         }
         response
     }
@@ -248,9 +307,10 @@ impl From<EngineError> for ApiError {
                 ErrorCode::Overloaded
             }
             EngineError::Encode(EncodeError::Caption { .. }) => ErrorCode::InvalidField,
-            EngineError::Encode(EncodeError::Failed { .. })
-            | EngineError::Store(_)
-            | EngineError::Task(_) => return ApiError::internal(message),
+            EngineError::Store(ref store) => return ApiError::server_fault(store),
+            EngineError::Encode(EncodeError::Failed { .. }) | EngineError::Task(_) => {
+                return ApiError::internal(message)
+            }
         };
         ApiError::new(code, message)
     }
@@ -283,9 +343,8 @@ impl From<MapError> for ApiError {
             MapError::BadName { .. } => ApiError::new(ErrorCode::InvalidField, message),
             MapError::Unusable { .. } => ApiError::new(ErrorCode::UnknownMap, message).at("remap"),
             MapError::Exists { .. } => ApiError::new(ErrorCode::MapExists, message),
-            MapError::Write { .. } | MapError::Read { .. } | MapError::NoDigests { .. } => {
-                ApiError::internal(message)
-            }
+            MapError::Write { .. } => ApiError::server_fault(&e),
+            MapError::Read { .. } | MapError::NoDigests { .. } => ApiError::internal(message),
         }
     }
 }
@@ -314,7 +373,7 @@ impl From<IndexError> for ApiError {
             IndexError::NotFinite { .. } | IndexError::Zero => {
                 Invalid::new("vector", Problem::VectorValues).into()
             }
-            other => ApiError::internal(other),
+            other => ApiError::server_fault(&other),
         }
     }
 }
@@ -335,7 +394,7 @@ impl From<BankError> for ApiError {
                 ApiError::new(ErrorCode::OverLimit, e.to_string()).at("captions")
             }
             BankError::NotLoaded(_) => ApiError::not_ready(),
-            other => ApiError::internal(other),
+            other => ApiError::server_fault(&other),
         }
     }
 }
@@ -386,5 +445,42 @@ mod tests {
         for code in ErrorCode::ALL {
             assert_eq!(serde_json::to_value(code).unwrap(), code.as_str());
         }
+    }
+
+    /// SQLite's own "database or disk is full", made for real by capping the
+    /// file's pages (SQLite's `max_page_count` pragma), reaches the client
+    /// as 507 `storage_full` through the store's and the engine's errors.
+    #[test]
+    fn a_full_disk_is_507_storage_full_not_500() {
+        let conn = rusqlite::Connection::open_in_memory().unwrap();
+        conn.execute_batch("PRAGMA max_page_count = 2; CREATE TABLE t (b BLOB);")
+            .unwrap();
+        let full = (0..100)
+            .find_map(|_| {
+                conn.execute("INSERT INTO t VALUES (zeroblob(4096))", [])
+                    .err()
+            })
+            .expect("the capped database fills up");
+        assert_eq!(
+            full.sqlite_error_code(),
+            Some(rusqlite::ErrorCode::DiskFull)
+        );
+        let answer = ApiError::from(EngineError::Store(
+            crate::store::images::StoreError::Sqlite(full),
+        ));
+        assert_eq!(answer.code, ErrorCode::StorageFull);
+        assert_eq!(answer.status(), StatusCode::INSUFFICIENT_STORAGE);
+        // ENOSPC from a file write (a saved map) is the same fault.
+        let enospc = MapError::Write {
+            path: "maps/x.json".into(),
+            source: std::io::Error::from_raw_os_error(libc::ENOSPC),
+        };
+        assert_eq!(ApiError::from(enospc).code, ErrorCode::StorageFull);
+        // Any other store failure stays internal.
+        let other = rusqlite::Error::InvalidQuery;
+        let answer = ApiError::from(EngineError::Store(
+            crate::store::images::StoreError::Sqlite(other),
+        ));
+        assert_eq!(answer.code, ErrorCode::Internal);
     }
 }

@@ -3,8 +3,9 @@
 //! [`app`] builds the router over a [`Service`] so tests can drive it with
 //! `oneshot`. The routes that watch the service (the live page, `/v1/pulse`,
 //! `/healthz`, `/readyz`, `/metrics`) answer outside every limit, so it can be
-//! watched while overloaded; the routes that do work first have their body
-//! read in full ([`body`]: size, deadline and rate, holding no slot), then
+//! watched while overloaded; the routes that do work are first admitted by
+//! the encoder work already queued (before a byte of body is read), then have
+//! their body read in full ([`body`]: size, deadline and rate, holding no slot), then
 //! pass load shedding, the concurrency limit and the timeout. [`run`] serves
 //! it on a bound listener ([`listen`]: header timeout, connection cap, drain)
 //! until `shutdown` resolves. Handlers parse, check, call the domain and shape

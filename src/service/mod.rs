@@ -14,6 +14,7 @@
 
 pub mod backfill;
 pub mod data_dir;
+pub mod high_water;
 pub mod maps;
 
 use std::path::PathBuf;
@@ -48,6 +49,8 @@ pub struct ServiceConfig {
     /// `--map NAME=FILE` pairs.
     pub maps: Vec<(String, PathBuf)>,
     pub bank_dump_every: Duration,
+    /// Start even when a store holds fewer items than its high-water mark.
+    pub accept_smaller_stores: bool,
 }
 
 impl ServiceConfig {
@@ -61,6 +64,7 @@ impl ServiceConfig {
             models: ModelSettings::default(),
             maps: Vec::new(),
             bank_dump_every: Duration::from_secs(DEFAULT_BANK_DUMP_SECONDS),
+            accept_smaller_stores: false,
         }
     }
 }
@@ -88,6 +92,8 @@ pub enum StartError {
     Task(String),
     #[error("starting the metrics history thread: {0}")]
     Sampler(std::io::Error),
+    #[error(transparent)]
+    Marks(#[from] high_water::MarkError),
 }
 
 /// A route asked for what is still loading.
@@ -138,6 +144,12 @@ impl Service {
         };
         let store = Arc::new(ImageStore::open(&data_dir.images())?);
         let bank = CaptionBank::open(data_dir.root(), bank_config(&config.limits))?;
+        let counts = high_water::Counts {
+            images: store.image_count()?,
+            captions: bank.store().counts().map_err(BankError::from)?.captions,
+        };
+        high_water::check(data_dir.root(), counts, config.accept_smaller_stores)?;
+        high_water::record(data_dir.root(), counts)?;
         let maps = MapRegistry::load(Some(data_dir.maps()), &config.maps)?;
         let sampler =
             Sampler::start(Arc::clone(&metrics), SAMPLE_EVERY).map_err(StartError::Sampler)?;
@@ -205,6 +217,14 @@ impl Service {
         self.shared.engine.get().ok_or(NotReady)
     }
 
+    /// Time the encoder work queued now takes to drain, over every model
+    /// (zero before the models are loaded).
+    pub fn queued_work(&self) -> Duration {
+        self.engine()
+            .map(|e| e.models().iter().map(|m| m.drain_time()).sum())
+            .unwrap_or_default()
+    }
+
     /// The caption bank, once its indexes are loaded.
     pub fn bank(&self) -> Result<&CaptionBank, NotReady> {
         self.shared.bank.get().ok_or(NotReady)
@@ -251,11 +271,36 @@ impl Service {
     }
 
     /// Writes the bank's index dumps (blocking); nothing to do before it is loaded.
+    /// Also writes the stores' high-water marks (see [`high_water`]).
     pub fn dump_bank(&self) -> Result<(), BankError> {
         if let Some(bank) = self.shared.bank.get() {
             bank.dump()?;
         }
+        self.record_marks();
         Ok(())
+    }
+
+    /// The stores' counts as the new marks; a failure is logged (the data
+    /// is safe; only the check at the next start is weaker).
+    fn record_marks(&self) {
+        let counts = self.shared.store.image_count().ok().zip(
+            self.shared
+                .opened_bank
+                .store()
+                .counts()
+                .ok()
+                .map(|c| c.captions),
+        );
+        let result = match counts {
+            Some((images, captions)) => high_water::record(
+                self.shared.data_dir.root(),
+                high_water::Counts { images, captions },
+            ),
+            None => return tracing::warn!("could not count the stores for their high-water marks"),
+        };
+        if let Err(e) = result {
+            tracing::warn!(error = %e, "could not write the stores' high-water marks");
+        }
     }
 }
 

@@ -65,7 +65,7 @@ pub struct ProcrustesFit {
 
 /// Orthogonal Procrustes of `a` onto `b` (both n x d): R = U V^T from the SVD
 /// A^T B = U S V^T, as `scipy.linalg.orthogonal_procrustes(a, b)`. `None`
-/// when the dimensions differ.
+/// when the dimensions differ or an entry is not finite.
 pub fn procrustes(a: &Array2<f64>, b: &Array2<f64>) -> Option<ProcrustesFit> {
     assert_eq!(
         a.nrows(),
@@ -75,7 +75,7 @@ pub fn procrustes(a: &Array2<f64>, b: &Array2<f64>) -> Option<ProcrustesFit> {
     if a.ncols() != b.ncols() {
         return None;
     }
-    let rotation = procrustes_rotation(a, b);
+    let rotation = procrustes_rotation(a, b)?;
     let residual = frobenius(&(a.dot(&rotation) - b));
     let scale = frobenius(b);
     Some(ProcrustesFit {
@@ -84,10 +84,10 @@ pub fn procrustes(a: &Array2<f64>, b: &Array2<f64>) -> Option<ProcrustesFit> {
     })
 }
 
-/// The orthogonal R minimising ||A R - B||_F.
-pub fn procrustes_rotation(a: &Array2<f64>, b: &Array2<f64>) -> Array2<f64> {
-    let svd = svd_square(&a.t().dot(b));
-    svd.u.dot(&svd.vt)
+/// The orthogonal R minimising ||A R - B||_F; `None` for non-finite input.
+pub fn procrustes_rotation(a: &Array2<f64>, b: &Array2<f64>) -> Option<Array2<f64>> {
+    let svd = svd_square(&a.t().dot(b))?;
+    Some(svd.u.dot(&svd.vt))
 }
 
 #[cfg(test)]
@@ -106,7 +106,7 @@ mod tests {
 
     /// A rotation of R^d: the orthogonal factor of a random matrix.
     fn rotation(d: usize, seed: u64) -> Array2<f64> {
-        let svd = svd_square(&pseudo_random(d, d, seed));
+        let svd = svd_square(&pseudo_random(d, d, seed)).unwrap();
         svd.u.dot(&svd.vt)
     }
 
@@ -152,7 +152,7 @@ mod tests {
         let b = a.dot(&r);
         let fit = procrustes(&a, &b).unwrap();
         assert!(fit.residual < 1e-10, "{}", fit.residual);
-        let found = procrustes_rotation(&a, &b);
+        let found = procrustes_rotation(&a, &b).unwrap();
         assert!((&found - &r).mapv(f64::abs).sum() < 1e-9);
     }
 

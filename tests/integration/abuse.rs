@@ -30,6 +30,21 @@ async fn serve(
     (addr, stop)
 }
 
+/// Reads an answer's status line and headers (up to the blank line), or what
+/// came before `limit` passed.
+fn read_head(stream: &mut TcpStream, limit: Duration) -> String {
+    stream.set_read_timeout(Some(limit)).unwrap();
+    let mut answer = Vec::new();
+    let mut byte = [0u8; 1];
+    while !answer.ends_with(b"\r\n\r\n") {
+        match stream.read(&mut byte) {
+            Ok(1) => answer.push(byte[0]),
+            _ => break,
+        }
+    }
+    String::from_utf8_lossy(&answer).into_owned()
+}
+
 /// Reads what the server sends on `stream` until it closes or `limit` passes.
 fn read_all(stream: &mut TcpStream, limit: Duration) -> String {
     stream.set_read_timeout(Some(limit)).unwrap();
@@ -315,4 +330,95 @@ fn decode_limits_are_read_from_the_header() {
         decode_rgb(&png_declaring(4, 4, 8), &limits),
         Err(DecodeError::Corrupt { .. })
     ));
+}
+
+/// Defect: shedding came after reading, parsing and tokenising (each 503 took
+/// ~1.2 s under 3x load) and always said `Retry-After: 1`. Now new work is
+/// refused before its body is read once the queued encoding exceeds
+/// `--max-queue-wait-ms`, and `Retry-After` is the queue's drain time.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn queued_work_sheds_new_work_at_once_with_its_drain_time() {
+    let limits = Limits {
+        max_queue_wait: Duration::ZERO, // any queued work sheds: no timing to race
+        ..Limits::default()
+    };
+    // A model of its own (the shared ones serve concurrent tests, which this
+    // queue must not shed), one worker, one caption per run: the queue drains
+    // slowly enough that nothing here races it.
+    let settings = befit::encoders::ModelSettings {
+        workers: 1,
+        caption_cache: 0,
+        text_batch: befit::batching::BatchSettings {
+            max_batch: 1,
+            ..befit::encoders::ModelSettings::default().text_batch
+        },
+        ..befit::encoders::ModelSettings::default()
+    };
+    let bundle = befit::bundle::Bundle::open(&bundle_dir("blocks-v1")).unwrap();
+    let model = befit::encoders::Model::load(bundle, ort_env(), &settings, Default::default());
+    let state = unready(&config(limits));
+    state
+        .ready_with(vec![std::sync::Arc::new(model.unwrap())])
+        .unwrap();
+    // One big request of new captions fills the text queue.
+    let captions: Vec<String> = (0..16_000)
+        .map(|i| {
+            format!(
+                "{} small red circles left of {} big blue squares",
+                i % 97,
+                i
+            )
+        })
+        .collect();
+    let big = json!({"groups": [{"image": {"path": "images/00000.png"}, "captions": captions}]});
+    let filler = {
+        let state = state.clone();
+        tokio::spawn(async move { post_json(&state, "/v1/rewards", &big).await.0 })
+    };
+    let waited = std::time::Instant::now();
+    while state.queued_work().is_zero() {
+        assert!(
+            waited.elapsed() < Duration::from_secs(60),
+            "the queue never filled"
+        );
+        tokio::time::sleep(Duration::from_millis(1)).await;
+    }
+    let queued = state.queued_work();
+    // Headers announcing a body that never comes: the answer can only come
+    // before the body is read (else it would wait --body-timeout-secs, 30 s).
+    let (addr, _stop) = serve(state.clone(), ConnectionSettings::default()).await;
+    let head = tokio::task::spawn_blocking(move || {
+        let mut s = TcpStream::connect(&addr).unwrap();
+        s.write_all(
+            b"POST /v1/rewards HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\nContent-Length: 100000\r\n\r\n",
+        )
+        .unwrap();
+        read_head(&mut s, Duration::from_secs(10))
+    })
+    .await
+    .unwrap();
+    assert!(head.starts_with("HTTP/1.1 503"), "{head:?}");
+    let retry: u64 = head
+        .lines()
+        .find_map(|l| {
+            l.to_ascii_lowercase()
+                .strip_prefix("retry-after: ")
+                .map(str::to_string)
+        })
+        .unwrap_or_else(|| panic!("no Retry-After in {head:?}"))
+        .trim()
+        .parse()
+        .unwrap();
+    // The drain time seen just before, rounded up (the queue only shrinks meanwhile).
+    assert!(
+        retry >= 1 && retry <= queued.as_secs_f64().ceil().max(1.0) as u64,
+        "{retry} vs {queued:?}"
+    );
+    // Reads are not shed, and once the queue has drained, work is admitted again.
+    let (status, _, _) = call(&state, "GET", "/v1/models", "", vec![]).await;
+    assert_eq!(status, 200);
+    assert_eq!(filler.await.unwrap(), 200);
+    assert!(state.queued_work().is_zero());
+    let (status, body) = post_json(&state, "/v1/rewards", &rewards_body()).await;
+    assert_eq!(status, 200, "{body}");
 }

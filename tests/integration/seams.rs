@@ -1,8 +1,9 @@
 //! The bugs that lived in the seams between the HTTP layer and the domain,
 //! each pinned: maps on the wrong model, paths in probe rows without an image
 //! root, the bank's limits from the server's flags, a second process on a
-//! locked data folder, `among: images` finding images registered later, and
-//! `befit score` answering what `/v1/rewards` answers.
+//! locked data folder, `among: images` finding images registered later,
+//! `befit score` answering what `/v1/rewards` answers, and a store emptied
+//! behind the service's back.
 
 use std::process::Command;
 
@@ -402,4 +403,38 @@ async fn every_image_missing_is_the_rows_fault_not_the_encoders() {
             "{route}: {e}"
         );
     }
+}
+
+#[tokio::test]
+async fn a_store_emptied_behind_our_back_stops_the_start_unless_accepted() {
+    let mut config = config(Limits::default());
+    // A registered image, then a clean stop: the marks now say 1 image.
+    {
+        let service = ready(&config, &["blocks-v1"]);
+        let png = read(probe_dir().join("images/00000.png"));
+        let body = json!({"images": [{"base64": b64(&png)}]});
+        let (status, answer) = post_json(&service, "/v1/images", &body).await;
+        assert_eq!(status, 200, "{answer}");
+        service.dump_bank().unwrap();
+    }
+    // The store file truncated to 0 bytes, as a bad copy leaves it.
+    let images = config.data_dir.join(befit::service::data_dir::IMAGES_FILE);
+    for suffix in ["-wal", "-shm"] {
+        let _ = std::fs::remove_file(format!("{}{suffix}", images.display()));
+    }
+    std::fs::File::create(&images).unwrap();
+    let err = match befit::service::Service::open(&config, Default::default()) {
+        Ok(_) => panic!("a store that lost its images must not start"),
+        Err(e) => e.to_string(),
+    };
+    assert!(
+        err.contains("images.sqlite holds 0 images but held 1")
+            && err.contains("--accept-smaller-stores"),
+        "{err}"
+    );
+    // Told to, it starts with what is there, and the marks start anew.
+    config.accept_smaller_stores = true;
+    befit::service::Service::open(&config, Default::default()).unwrap();
+    config.accept_smaller_stores = false;
+    befit::service::Service::open(&config, Default::default()).unwrap();
 }

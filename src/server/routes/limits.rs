@@ -24,6 +24,7 @@ pub async fn list(State(state): State<Service>) -> Json<Value> {
         "request_timeout_secs": l.request_timeout.as_secs_f64(),
         "body_timeout_secs": l.body_timeout.as_secs_f64(),
         "min_body_rate": l.min_body_rate,
+        "max_queue_wait_ms": l.max_queue_wait.as_millis() as u64,
         "max_k": MAX_K,
         "max_ef_search": MAX_EF_SEARCH,
     }))
