@@ -7,8 +7,10 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 
 use super::ModelRef;
+use crate::scoring::bank_nearest::BankNearest;
 use crate::scoring::{
-    check_groups, score_groups, Baseline, GroupJson, GroupScores, Remap, RewardSpec, Scale,
+    check_groups, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, NearestCaption,
+    Remap, RewardSpec, Scale,
 };
 use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
@@ -23,6 +25,7 @@ pub struct RewardsRequest {
     #[serde(default)]
     pub baseline: Baseline,
     pub remap: Option<String>,
+    pub guard: Option<GuardJson>,
     pub groups: Vec<GroupJson>,
 }
 
@@ -32,6 +35,10 @@ pub struct RewardsResponse {
     pub scale: Scale,
     pub baseline: Baseline,
     pub remap: Option<String>,
+    /// The guard as applied, when the request has one (absent otherwise, so
+    /// answers without a guard are what they were before guards existed).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub guard: Option<GuardJson>,
     pub groups: Vec<GroupScores>,
 }
 
@@ -50,7 +57,17 @@ pub async fn score(
         }
         None => None,
     };
-    let spec = RewardSpec::new(request.scale, request.baseline, remap)?;
+    let mut spec = RewardSpec::new(request.scale, request.baseline, remap)?;
+    if let Some(json) = request.guard {
+        // The bundle's bank, when the server has one and it is loaded.
+        let nearest = service
+            .bank()
+            .ok()
+            .and_then(|bank| bank.loaded(&model.bundle.digest))
+            .map(|bank| Arc::new(BankNearest(bank)) as Arc<dyn NearestCaption>);
+        // No bundle carries a fluency head yet: a fluency weight is refused.
+        spec = spec.with_guard(Guard::new(json, None, nearest)?);
+    }
     let groups = request
         .groups
         .into_iter()
@@ -64,6 +81,7 @@ pub async fn score(
         scale: spec.scale(),
         baseline: spec.baseline(),
         remap: request.remap,
+        guard: spec.guard().map(|g| g.echo().clone()),
         groups,
     }))
 }
