@@ -27,6 +27,7 @@ use crate::intake::image_root::ImageRoot;
 use crate::intake::limits::Limits;
 use crate::metrics::history::{History, Sampler, SAMPLE_EVERY};
 use crate::metrics::Registry;
+use crate::runs::{RunError, RunWatch};
 use crate::store::images::{ImageStore, StoreError};
 use data_dir::{DataDir, DataDirError, DataDirLock};
 use maps::{MapError, MapRegistry};
@@ -82,6 +83,8 @@ pub enum StartError {
     Bank(#[from] BankError),
     #[error("reward maps: {0}")]
     Maps(#[from] MapError),
+    #[error("opening the run watch: {0}")]
+    Runs(#[from] RunError),
     #[error(transparent)]
     Bundles(#[from] LoadBundlesError),
     #[error("the loading task failed: {0}")]
@@ -112,6 +115,7 @@ struct Shared {
     /// The live page's history of `metrics`; its thread stops with the service.
     sampler: Sampler,
     maps: MapRegistry,
+    runs: RunWatch,
     backfills: backfill::Backfills,
     data_dir: DataDir,
     _lock: DataDirLock,
@@ -139,6 +143,7 @@ impl Service {
         let store = Arc::new(ImageStore::open(&data_dir.images())?);
         let bank = CaptionBank::open(data_dir.root(), bank_config(&config.limits))?;
         let maps = MapRegistry::load(Some(data_dir.maps()), &config.maps)?;
+        let runs = RunWatch::open(&data_dir.runs(), Arc::clone(&metrics))?;
         let sampler =
             Sampler::start(Arc::clone(&metrics), SAMPLE_EVERY).map_err(StartError::Sampler)?;
         let shared = Shared {
@@ -151,6 +156,7 @@ impl Service {
             metrics,
             sampler,
             maps,
+            runs,
             backfills: backfill::Backfills::default(),
             data_dir,
             _lock: lock,
@@ -225,6 +231,11 @@ impl Service {
 
     pub fn maps(&self) -> &MapRegistry {
         &self.shared.maps
+    }
+
+    /// The run watch (blocking: call it off the async runtime).
+    pub fn runs(&self) -> &RunWatch {
+        &self.shared.runs
     }
 
     pub fn data_dir(&self) -> &DataDir {

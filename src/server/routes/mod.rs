@@ -7,6 +7,7 @@ pub mod images;
 pub mod live;
 pub mod models;
 pub mod rewards;
+pub mod runs;
 pub mod statistics;
 pub mod vectors;
 

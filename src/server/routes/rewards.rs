@@ -7,6 +7,7 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 
 use super::ModelRef;
+use crate::runs::{samples_of, RunReport, RunTag, Thresholds, Warning};
 use crate::scoring::bank_nearest::BankNearest;
 use crate::scoring::{
     check_groups, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, NearestCaption,
@@ -26,6 +27,11 @@ pub struct RewardsRequest {
     pub baseline: Baseline,
     pub remap: Option<String>,
     pub guard: Option<GuardJson>,
+    /// The training run the samples belong to (see `GET /v1/runs`).
+    pub run: Option<String>,
+    pub step: Option<u64>,
+    /// Warning thresholds for the run, kept for its later requests.
+    pub run_thresholds: Option<Thresholds>,
     pub groups: Vec<GroupJson>,
 }
 
@@ -40,12 +46,19 @@ pub struct RewardsResponse {
     #[serde(skip_serializing_if = "Option::is_none")]
     pub guard: Option<GuardJson>,
     pub groups: Vec<GroupScores>,
+    /// The run and step the samples were counted in, when the request names a run.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub run: Option<RunReport>,
+    /// Thresholds the run's step crosses, when the request names a run.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub warnings: Option<Vec<Warning>>,
 }
 
 pub async fn score(
     State(service): State<Service>,
     ApiJson(request): ApiJson<RewardsRequest>,
 ) -> Result<Json<RewardsResponse>, ApiError> {
+    let tag = RunTag::from_request(request.run, request.step, request.run_thresholds)?;
     let engine = service.engine()?;
     let model = engine.model(request.model.as_deref())?;
     let remap = match &request.remap {
@@ -75,13 +88,35 @@ pub async fn score(
         .map(|(g, group)| group.into_group(&format!("groups[{g}]")))
         .collect::<Result<Vec<_>, _>>()?;
     check_groups(&groups, &spec, service.limits(), "groups")?;
-    let groups = score_groups(engine, model, &spec, &groups, "groups").await?;
+    let scores = score_groups(engine, model, &spec, &groups, "groups").await?;
+    let watched = match tag {
+        Some(tag) => {
+            let captions: Vec<Vec<String>> = groups.into_iter().map(|g| g.captions).collect();
+            let bank = service
+                .bank()
+                .ok()
+                .and_then(|bank| bank.loaded(&model.bundle.digest));
+            let watch = service.runs().clone();
+            let scores = scores.clone();
+            let (report, warnings) = tokio::task::spawn_blocking(move || {
+                let samples = samples_of(&captions, &scores, bank.as_deref())?;
+                watch.record(&tag, &samples)
+            })
+            .await
+            .map_err(ApiError::internal)??;
+            Some((report, warnings))
+        }
+        None => None,
+    };
+    let (run, warnings) = watched.unzip();
     Ok(Json(RewardsResponse {
         model: ModelRef::of(model),
         scale: spec.scale(),
         baseline: spec.baseline(),
         remap: request.remap,
         guard: spec.guard().map(|g| g.echo().clone()),
-        groups,
+        groups: scores,
+        run,
+        warnings,
     }))
 }
