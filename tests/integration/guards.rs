@@ -32,6 +32,22 @@ fn f(v: &Value) -> f64 {
     v.as_f64().unwrap()
 }
 
+/// Equal JSON, numbers compared as f32.
+fn same(a: &Value, b: &Value) -> bool {
+    match (a, b) {
+        (Value::Number(x), Value::Number(y)) => {
+            x.as_f64().unwrap() as f32 == y.as_f64().unwrap() as f32
+        }
+        (Value::Array(x), Value::Array(y)) => {
+            x.len() == y.len() && x.iter().zip(y).all(|(x, y)| same(x, y))
+        }
+        (Value::Object(x), Value::Object(y)) => {
+            x.len() == y.len() && x.iter().all(|(k, v)| y.get(k).is_some_and(|w| same(v, w)))
+        }
+        _ => a == b,
+    }
+}
+
 /// Removes every `guard` key, wherever it is.
 fn strip_guard(v: &mut Value) {
     match v {
@@ -304,5 +320,72 @@ async fn guard_fields_out_of_range_are_answered_with_their_field() {
     assert_eq!(
         (status.as_u16(), &body["error"]["code"]),
         (400, &json!("bad_json"))
+    );
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn befit_score_applies_the_same_guard_as_the_route() {
+    let state = state();
+    let row = &probe_rows("probe.jsonl")[1];
+    let group = json!({"image": {"path": row.image},
+        "captions": [row.captions[0], "ring ring ring ring", "a zorb"]});
+    let guard = json!({"penalties": {"repeated_words": {"above": 0.2, "weight": 1.5},
+        "unknown_tokens": {"above": 0.1, "weight": 1.0}}});
+    let (status, http) = post_json(
+        &state,
+        "/v1/rewards",
+        &json!({"scale": {"kind": "clip-s"}, "baseline": "mean-of-others",
+                "guard": guard, "groups": [group]}),
+    )
+    .await;
+    assert_eq!(status, 200, "{http}");
+    let dir = scratch_dir("score-guard");
+    let input = dir.join("groups.jsonl");
+    std::fs::write(&input, format!("{group}\n")).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args(["score", "--bundle"])
+        .arg(bundle_dir("blocks-v1"))
+        .arg("--input")
+        .arg(&input)
+        .arg("--image-root")
+        .arg(probe_dir())
+        .args([
+            "--scale",
+            "clip-s",
+            "--baseline",
+            "mean-of-others",
+            "--guard",
+        ])
+        .arg(guard.to_string())
+        .arg("--ort-lib")
+        .arg(ort_lib())
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let line: Value = serde_json::from_slice(&out.stdout).unwrap();
+    // The command writes f32s widened to f64; the same numbers as f32.
+    assert!(
+        same(&line["samples"], &http["groups"][0]["samples"]),
+        "{line} vs {http}"
+    );
+    assert!(line["samples"][1]["guard"]["penalty"].as_f64().unwrap() > 0.0);
+    // A guard out of range stops the command with the field named.
+    let bad = std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args(["score", "--bundle"])
+        .arg(bundle_dir("blocks-v1"))
+        .arg("--input")
+        .arg(&input)
+        .args(["--guard", "{\"fluency_weight\": 1}", "--ort-lib"])
+        .arg(ort_lib())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&bad.stderr);
+    assert!(
+        !bad.status.success() && stderr.contains("guard.fluency_weight"),
+        "{stderr}"
     );
 }
