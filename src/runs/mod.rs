@@ -20,7 +20,7 @@ use serde::Serialize;
 
 use crate::bank::ModelBank;
 use crate::metrics::Registry;
-use crate::scoring::GroupScores;
+use crate::scoring::{GroupScores, RewardGroup};
 pub use checks::{RunError, RunTag, Thresholds, MAX_RUN_NAME, STEP_WINDOW};
 use store::RunStore;
 pub use store::{RunInfo, SampleRecord, StepSummary, MAX_LISTED_RUNS, MAX_SERIES_STEPS};
@@ -237,6 +237,27 @@ pub fn samples_of(
         }
     }
     Ok(out)
+}
+
+/// Counts scored groups in their run's step, off the async runtime: the
+/// groups' sampled captions, their scores, and (with the bundle's bank)
+/// whether each is a bank caption.
+pub async fn record_scored(
+    watch: &RunWatch,
+    tag: RunTag,
+    groups: Vec<RewardGroup>,
+    scores: &[GroupScores],
+    bank: Option<Arc<ModelBank>>,
+) -> Result<(RunReport, Vec<Warning>), RunError> {
+    let captions: Vec<Vec<String>> = groups.into_iter().map(|g| g.captions).collect();
+    let watch = watch.clone();
+    let scores = scores.to_vec();
+    tokio::task::spawn_blocking(move || {
+        let samples = samples_of(&captions, &scores, bank.as_deref())?;
+        watch.record(&tag, &samples)
+    })
+    .await
+    .map_err(|e| RunError::Task(e.to_string()))?
 }
 
 #[cfg(test)]

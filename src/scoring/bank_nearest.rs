@@ -11,6 +11,13 @@ use crate::bank::{BankQuery, ModelBank, SearchMode};
 #[derive(Debug, Clone)]
 pub struct BankNearest(pub Arc<ModelBank>);
 
+impl BankNearest {
+    /// The guard's measure for a bundle's bank, when there is one.
+    pub fn of(bank: Option<Arc<ModelBank>>) -> Option<Arc<dyn NearestCaption>> {
+        bank.map(|b| Arc::new(BankNearest(b)) as Arc<dyn NearestCaption>)
+    }
+}
+
 impl NearestCaption for BankNearest {
     fn nearest(&self, vectors: &[&[f32]]) -> Result<Vec<Option<f32>>, String> {
         let query = BankQuery {

@@ -7,11 +7,11 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 
 use super::ModelRef;
-use crate::runs::{samples_of, RunReport, RunTag, Thresholds, Warning};
+use crate::runs::{record_scored, RunReport, RunTag, Thresholds, Warning};
 use crate::scoring::bank_nearest::BankNearest;
 use crate::scoring::{
-    check_groups, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, NearestCaption,
-    Remap, RewardSpec, Scale,
+    check_groups, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, Remap,
+    RewardSpec, Scale,
 };
 use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
@@ -70,16 +70,16 @@ pub async fn score(
         }
         None => None,
     };
+    // The bundle's bank, when the server has one: the guard's nearest
+    // caption and the watch's copies of bank captions.
+    let bank = service
+        .bank()
+        .ok()
+        .and_then(|bank| bank.loaded(&model.bundle.digest));
     let mut spec = RewardSpec::new(request.scale, request.baseline, remap)?;
     if let Some(json) = request.guard {
-        // The bundle's bank, when the server has one and it is loaded.
-        let nearest = service
-            .bank()
-            .ok()
-            .and_then(|bank| bank.loaded(&model.bundle.digest))
-            .map(|bank| Arc::new(BankNearest(bank)) as Arc<dyn NearestCaption>);
         // No bundle carries a fluency head yet: a fluency weight is refused.
-        spec = spec.with_guard(Guard::new(json, None, nearest)?);
+        spec = spec.with_guard(Guard::new(json, None, BankNearest::of(bank.clone()))?);
     }
     let groups = request
         .groups
@@ -90,22 +90,7 @@ pub async fn score(
     check_groups(&groups, &spec, service.limits(), "groups")?;
     let scores = score_groups(engine, model, &spec, &groups, "groups").await?;
     let watched = match tag {
-        Some(tag) => {
-            let captions: Vec<Vec<String>> = groups.into_iter().map(|g| g.captions).collect();
-            let bank = service
-                .bank()
-                .ok()
-                .and_then(|bank| bank.loaded(&model.bundle.digest));
-            let watch = service.runs().clone();
-            let scores = scores.clone();
-            let (report, warnings) = tokio::task::spawn_blocking(move || {
-                let samples = samples_of(&captions, &scores, bank.as_deref())?;
-                watch.record(&tag, &samples)
-            })
-            .await
-            .map_err(ApiError::internal)??;
-            Some((report, warnings))
-        }
+        Some(tag) => Some(record_scored(service.runs(), tag, groups, &scores, bank).await?),
         None => None,
     };
     let (run, warnings) = watched.unzip();
