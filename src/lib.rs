@@ -16,7 +16,9 @@
 //! - [`vectors`]: the shared-space math: normalisation, cosine similarity.
 //! - [`store`]: the embedded SQLite store of registered images and their
 //!   embeddings, with the in-memory layers in front.
-//! - [`scoring`]: reward scales, baselines and advantages.
+//! - [`scoring`]: reward scales, baselines and advantages, and the guards.
+//! - [`runs`]: the run watch: per run and step aggregates of the captions a
+//!   training run is rewarded for, with warnings and gauges.
 //! - [`bank`]: the caption bank and its HNSW index for nearest-caption search.
 //! - [`probe`]: labelled probe sets (JSON Lines) for calibration and drift.
 //! - [`stats`]: calibration and drift statistics, and their HTML report.
@@ -34,6 +36,7 @@ pub mod encoders;
 pub mod intake;
 pub mod metrics;
 pub mod probe;
+pub mod runs;
 pub mod runtime;
 pub mod scoring;
 pub mod server;

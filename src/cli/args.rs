@@ -171,6 +171,11 @@ pub struct ScoreArgs {
     /// A reward map file (from `befit drift --save-map`) fitted for this bundle.
     #[arg(long, value_name = "FILE")]
     pub remap: Option<PathBuf>,
+    /// A guard, as the `guard` object of `/v1/rewards` (JSON text): each sample
+    /// then carries its signals and its guarded reward. `nearest_bank` measures
+    /// nothing offline (no bank).
+    #[arg(long, value_name = "JSON")]
+    pub guard: Option<String>,
     /// Write bad lines as {"line", "error"} and go on, instead of stopping at the first.
     #[arg(long)]
     pub skip_bad: bool,

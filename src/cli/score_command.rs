@@ -17,8 +17,8 @@ use crate::intake::image_root::ImageRoot;
 use crate::intake::limits::Limits;
 use crate::metrics::Registry;
 use crate::scoring::{
-    check_group, score_groups, Baseline, GroupJson, GroupScores, Remap, RewardGroup, RewardSpec,
-    Scale,
+    check_group, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, Remap,
+    RewardGroup, RewardSpec, Scale,
 };
 use crate::service::maps::MapRegistry;
 use crate::store::images::ImageStore;
@@ -48,7 +48,19 @@ fn spec(a: &ScoreArgs, model: &crate::encoders::Model) -> anyhow::Result<RewardS
         }
         None => None,
     };
-    RewardSpec::new(scale, baseline, remap).map_err(|e| anyhow::anyhow!("--scale: {}", e.problem))
+    let spec = RewardSpec::new(scale, baseline, remap)
+        .map_err(|e| anyhow::anyhow!("--scale: {}", e.problem))?;
+    match &a.guard {
+        Some(text) => {
+            let json: GuardJson = serde_json::from_str(text)
+                .with_context(|| format!("--guard is not a guard object: {text}"))?;
+            // Offline there is no bank, and no bundle carries a fluency head yet.
+            let guard =
+                Guard::new(json, None, None).map_err(|e| anyhow::anyhow!("--guard: {e}"))?;
+            Ok(spec.with_guard(guard))
+        }
+        None => Ok(spec),
+    }
 }
 
 /// A line of the input: its number and the group, or why it is bad.

@@ -228,6 +228,11 @@ impl Model {
         self.tokenizer.encode(caption)
     }
 
+    /// The tokenizer's unknown-token id, when it has one.
+    pub fn unknown_token_id(&self) -> Option<i64> {
+        self.tokenizer.unknown_id()
+    }
+
     /// Unit vectors for captions, in order; repeated and cached captions are encoded once.
     pub async fn caption_vectors(
         &self,

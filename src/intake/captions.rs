@@ -59,6 +59,19 @@ impl CaptionTokenizer {
         })
     }
 
+    /// The id of the tokenizer's unknown token: none for models without one
+    /// (byte-level BPE) and for Unigram models, whose id the library keeps private.
+    pub fn unknown_id(&self) -> Option<i64> {
+        use tokenizers::models::ModelWrapper;
+        let token = match self.tokenizer.get_model() {
+            ModelWrapper::WordLevel(m) => Some(m.unk_token.as_str()),
+            ModelWrapper::WordPiece(m) => Some(m.unk_token.as_str()),
+            ModelWrapper::BPE(m) => m.unk_token.as_deref(),
+            ModelWrapper::Unigram(_) => None,
+        }?;
+        self.tokenizer.token_to_id(token).map(i64::from)
+    }
+
     /// Tokenises one caption.
     pub fn encode(&self, caption: &str) -> Result<Tokens, CaptionError> {
         let text = if self.prefix.is_empty() {

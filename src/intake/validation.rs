@@ -3,7 +3,7 @@
 //! in one place (`server::error`).
 
 use super::limits::Limit;
-use crate::scoring::{BaselineError, ScaleError};
+use crate::scoring::{BaselineError, GuardError, ScaleError};
 
 /// A field of a request and what is wrong with it.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -53,6 +53,8 @@ pub enum Problem {
     Scale(#[from] ScaleError),
     #[error("{0}")]
     Baseline(#[from] BaselineError),
+    #[error("{0}")]
+    Guard(#[from] GuardError),
     #[error("tags must be 1 to {max} bytes of printable text")]
     Tag { max: usize },
     #[error("map names must match [A-Za-z0-9._-]+ (at most {max} characters)")]

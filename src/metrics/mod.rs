@@ -88,6 +88,31 @@ pub const FAMILIES: &[(&str, Kind, &str)] = &[
         Kind::Counter,
         "Encode jobs dropped unrun because their requester had gone, by model and tower.",
     ),
+    (
+        "befit_run_step",
+        Kind::Gauge,
+        "Latest step of a watched run (the most recently updated runs only), by run.",
+    ),
+    (
+        "befit_run_step_samples",
+        Kind::Gauge,
+        "Samples of a watched run's latest step so far, by run.",
+    ),
+    (
+        "befit_run_reward_mean",
+        Kind::Gauge,
+        "Mean reward of a watched run's latest step, by run.",
+    ),
+    (
+        "befit_run_repeated_words",
+        Kind::Gauge,
+        "Mean share of repeated words in a watched run's latest step, by run.",
+    ),
+    (
+        "befit_run_distinct_2",
+        Kind::Gauge,
+        "distinct-2 (Li et al. 2016) of a watched run's latest step, by run.",
+    ),
 ];
 
 type Labels = Vec<(&'static str, String)>;
@@ -179,6 +204,14 @@ impl Registry {
     pub fn set(&self, name: &'static str, pairs: &[(&'static str, &str)], value: f64) {
         let name = family(name).0;
         self.lock().values.insert((name, labels(pairs)), value);
+    }
+
+    /// Drops a gauge's series, so a label value that is no longer watched
+    /// (a run gone quiet) leaves the exposition.
+    pub fn remove(&self, name: &'static str, pairs: &[(&'static str, &str)]) {
+        let (name, kind, _) = family(name);
+        debug_assert!(matches!(kind, Kind::Gauge), "{name} is not a gauge");
+        self.lock().values.remove(&(*name, labels(pairs)));
     }
 
     /// Records one observation in a histogram.

@@ -5,6 +5,7 @@
 use serde::Serialize;
 
 use super::advantages;
+use super::guard::{Guarded, Signals};
 use super::spec::RewardSpec;
 use crate::encoders::CaptionVector;
 use crate::vectors::dot;
@@ -16,6 +17,9 @@ pub struct Sample {
     pub reward: f32,
     pub advantage: f32,
     pub truncated: bool,
+    /// Signals and penalties, when the request has a guard.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub guard: Option<Guarded>,
 }
 
 /// The greedy caption's cosine and reward (its reward is the greedy baseline).
@@ -24,6 +28,9 @@ pub struct Scored {
     pub cosine: f32,
     pub reward: f32,
     pub truncated: bool,
+    /// Signals and penalties, when the request has a guard.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub guard: Option<Guarded>,
 }
 
 /// One group's answer.
@@ -41,46 +48,59 @@ pub struct GroupVectors<'a> {
     pub samples: &'a [std::sync::Arc<CaptionVector>],
     pub references: &'a [std::sync::Arc<CaptionVector>],
     pub greedy: Option<&'a CaptionVector>,
+    /// With a guard: the signals of the samples, then of the greedy caption.
+    pub signals: Option<&'a [Signals]>,
 }
 
 /// Rewards and advantages of one group. The groups were checked by
 /// [`super::check_groups`], so the baseline always has what it needs.
 pub fn score_group(spec: &RewardSpec, image_id: String, v: &GroupVectors<'_>) -> GroupScores {
-    let score_one = |caption: &[f32]| {
+    // The reward on the spec's scale, then the guard's reward when there is one.
+    let score_one = |caption: &[f32], at: usize| {
         let cosine = dot(caption, v.image);
         let reference = v
             .references
             .iter()
             .map(|r| dot(caption, &r.vector))
             .reduce(f32::max);
-        (
-            cosine,
-            spec.scale().reward(spec.on_scale(cosine), reference),
-        )
+        let scaled = spec.scale().reward(spec.on_scale(cosine), reference);
+        let guarded = match (spec.guard(), v.signals.and_then(|s| s.get(at))) {
+            (Some(guard), Some(signals)) => Some(guard.apply(signals.clone(), scaled)),
+            _ => None,
+        };
+        let reward = guarded.as_ref().map_or(scaled, |g| g.reward);
+        (cosine, reward, guarded)
     };
-    let scored: Vec<(f32, f32)> = v.samples.iter().map(|s| score_one(&s.vector)).collect();
+    let scored: Vec<(f32, f32, Option<Guarded>)> = v
+        .samples
+        .iter()
+        .enumerate()
+        .map(|(i, s)| score_one(&s.vector, i))
+        .collect();
     let greedy = v.greedy.map(|g| {
-        let (cosine, reward) = score_one(&g.vector);
+        let (cosine, reward, guard) = score_one(&g.vector, v.samples.len());
         Scored {
             cosine,
             reward,
             truncated: g.truncated,
+            guard,
         }
     });
-    let rewards: Vec<f32> = scored.iter().map(|(_, r)| *r).collect();
+    let rewards: Vec<f32> = scored.iter().map(|(_, r, _)| *r).collect();
     // Checked groups always have what their baseline needs; a group that does
     // not is answered with its rewards as advantages rather than a panic.
     let advantage = advantages(&rewards, spec.baseline(), greedy.as_ref().map(|g| g.reward))
         .unwrap_or_else(|_| rewards.clone());
     let samples = scored
-        .iter()
+        .into_iter()
         .zip(v.samples)
         .zip(advantage)
-        .map(|(((cosine, reward), s), advantage)| Sample {
-            cosine: *cosine,
-            reward: *reward,
+        .map(|(((cosine, reward, guard), s), advantage)| Sample {
+            cosine,
+            reward,
             advantage,
             truncated: s.truncated,
+            guard,
         })
         .collect();
     GroupScores {
@@ -133,6 +153,7 @@ mod tests {
                 samples: &samples,
                 references: &[],
                 greedy: None,
+                signals: None,
             },
         );
         let want = [(2.0, 1.25), (1.5, 0.5), (0.0, -1.75)];
@@ -157,6 +178,7 @@ mod tests {
                 samples: &samples,
                 references: &[],
                 greedy: Some(&greedy),
+                signals: None,
             },
         );
         // cosine stays raw (0.8); reward 0.4; greedy reward 0.3; advantage 0.1.
@@ -164,5 +186,50 @@ mod tests {
         assert!((out.samples[0].reward - 0.4).abs() < 1e-6);
         assert!((out.samples[0].advantage - 0.1).abs() < 1e-6);
         assert!((out.greedy.unwrap().reward - 0.3).abs() < 1e-6);
+    }
+
+    #[test]
+    fn the_guard_applies_before_the_baseline() {
+        // Cosines 0.8 and 0.6; a length penalty below 4 tokens of weight 1:
+        // the 2-token caption loses (4 - 2) / 4 = 0.5, the 4-token one nothing.
+        // Guarded rewards 0.3 and 0.6; mean of others: -0.3 and 0.3.
+        let guard = crate::scoring::Guard::new(
+            serde_json::from_value(
+                serde_json::json!({"penalties": {"length": {"below": 4, "weight": 1}}}),
+            )
+            .unwrap(),
+            None,
+            None,
+        )
+        .unwrap();
+        let spec = RewardSpec::new(Scale::Cosine, Baseline::MeanOfOthers, None)
+            .unwrap()
+            .with_guard(guard);
+        let samples = [caption([0.8, 0.6]), caption([0.6, 0.8])];
+        let signals = [
+            Signals::of_text("red cube", &[1, 2], None),
+            Signals::of_text("a red cube here", &[1, 2, 3, 4], None),
+        ];
+        let out = score_group(
+            &spec,
+            "img".into(),
+            &GroupVectors {
+                image: &[1.0, 0.0],
+                samples: &samples,
+                references: &[],
+                greedy: None,
+                signals: Some(&signals),
+            },
+        );
+        let got: Vec<(f32, f32)> = out
+            .samples
+            .iter()
+            .map(|s| (s.reward, s.advantage))
+            .collect();
+        for ((r, a), (wr, wa)) in got.iter().zip([(0.3, -0.3), (0.6, 0.3)]) {
+            assert!((r - wr).abs() < 1e-6 && (a - wa).abs() < 1e-6, "{got:?}");
+        }
+        let g = out.samples[0].guard.as_ref().unwrap();
+        assert_eq!((g.scaled, g.flagged.clone()), (0.8, vec!["length"]));
     }
 }

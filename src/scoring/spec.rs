@@ -6,6 +6,7 @@ use std::sync::Arc;
 
 use serde::Deserialize;
 
+use super::guard::Guard;
 use super::{Baseline, BaselineError, Scale, ScaleError};
 use crate::intake::image_source::ImageSource;
 use crate::intake::limits::{Limit, Limits};
@@ -22,6 +23,7 @@ pub struct RewardSpec {
     scale: Scale,
     baseline: Baseline,
     remap: Option<Arc<dyn Remap>>,
+    guard: Option<Guard>,
 }
 
 impl RewardSpec {
@@ -38,7 +40,19 @@ impl RewardSpec {
             scale,
             baseline,
             remap,
+            guard: None,
         })
+    }
+
+    /// The spec with a checked guard: rewards become guarded rewards.
+    pub fn with_guard(mut self, guard: Guard) -> RewardSpec {
+        self.guard = Some(guard);
+        self
+    }
+
+    /// The guard, when the request has one.
+    pub fn guard(&self) -> Option<&Guard> {
+        self.guard.as_ref()
     }
 
     pub fn scale(&self) -> Scale {

@@ -15,6 +15,7 @@ use crate::encoders::{EncodeError, EngineError};
 use crate::intake::image_root::PathError;
 use crate::intake::validation::{Invalid, Problem};
 use crate::probe::ProbeError;
+use crate::runs::RunError;
 use crate::scoring::ScoreError;
 use crate::service::maps::MapError;
 use crate::service::NotReady;
@@ -328,6 +329,23 @@ impl From<ScoreError> for ApiError {
         match e.field {
             Some(field) => error.at(field),
             None => error,
+        }
+    }
+}
+
+impl From<RunError> for ApiError {
+    fn from(e: RunError) -> ApiError {
+        let field = e.field();
+        match e {
+            RunError::UnknownRun(_) => ApiError::new(ErrorCode::NotFound, e.to_string()),
+            RunError::Store(_) | RunError::Task(_) => ApiError::internal(e),
+            _ => {
+                let error = ApiError::new(ErrorCode::InvalidField, e.to_string());
+                match field {
+                    Some(f) => error.at(f),
+                    None => error,
+                }
+            }
         }
     }
 }

@@ -56,6 +56,8 @@ pub fn app(state: Service) -> Router {
         .route("/v1/limits", get(routes::limits::list))
         .route("/v1/images", post(routes::images::register))
         .route("/v1/rewards", post(routes::rewards::score))
+        .route("/v1/runs", get(routes::runs::list))
+        .route("/v1/runs/{name}", get(routes::runs::series))
         .route("/v1/vectors", post(routes::vectors::embed))
         .route(
             "/v1/bank",

@@ -21,6 +21,8 @@ pub const DEFAULT_DATA_DIR: &str = "befit-data";
 pub const IMAGES_FILE: &str = "images.sqlite";
 /// Folder of saved reward maps, one `NAME.json` each.
 pub const MAPS_DIR: &str = "maps";
+/// File name of the run watch's SQLite file.
+pub const RUNS_FILE: &str = "runs.sqlite";
 /// The lock file.
 pub const LOCK_FILE: &str = "befit.lock";
 
@@ -85,6 +87,10 @@ impl DataDir {
 
     pub fn bank_index(&self) -> PathBuf {
         self.root.join(INDEX_DIR)
+    }
+
+    pub fn runs(&self) -> PathBuf {
+        self.root.join(RUNS_FILE)
     }
 
     pub fn maps(&self) -> PathBuf {

@@ -28,6 +28,7 @@ use crate::intake::image_root::ImageRoot;
 use crate::intake::limits::Limits;
 use crate::metrics::history::{History, Sampler, SAMPLE_EVERY};
 use crate::metrics::Registry;
+use crate::runs::{RunError, RunWatch};
 use crate::store::images::{ImageStore, StoreError};
 use data_dir::{DataDir, DataDirError, DataDirLock};
 use maps::{MapError, MapRegistry};
@@ -86,6 +87,8 @@ pub enum StartError {
     Bank(#[from] BankError),
     #[error("reward maps: {0}")]
     Maps(#[from] MapError),
+    #[error("opening the run watch: {0}")]
+    Runs(#[from] RunError),
     #[error(transparent)]
     Bundles(#[from] LoadBundlesError),
     #[error("the loading task failed: {0}")]
@@ -118,6 +121,7 @@ struct Shared {
     /// The live page's history of `metrics`; its thread stops with the service.
     sampler: Sampler,
     maps: MapRegistry,
+    runs: RunWatch,
     backfills: backfill::Backfills,
     data_dir: DataDir,
     _lock: DataDirLock,
@@ -151,6 +155,7 @@ impl Service {
         high_water::check(data_dir.root(), counts, config.accept_smaller_stores)?;
         high_water::record(data_dir.root(), counts)?;
         let maps = MapRegistry::load(Some(data_dir.maps()), &config.maps)?;
+        let runs = RunWatch::open(&data_dir.runs(), Arc::clone(&metrics))?;
         let sampler =
             Sampler::start(Arc::clone(&metrics), SAMPLE_EVERY).map_err(StartError::Sampler)?;
         let shared = Shared {
@@ -163,6 +168,7 @@ impl Service {
             metrics,
             sampler,
             maps,
+            runs,
             backfills: backfill::Backfills::default(),
             data_dir,
             _lock: lock,
@@ -245,6 +251,11 @@ impl Service {
 
     pub fn maps(&self) -> &MapRegistry {
         &self.shared.maps
+    }
+
+    /// The run watch (blocking: call it off the async runtime).
+    pub fn runs(&self) -> &RunWatch {
+        &self.shared.runs
     }
 
     pub fn data_dir(&self) -> &DataDir {

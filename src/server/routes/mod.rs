@@ -8,6 +8,7 @@ pub mod limits;
 pub mod live;
 pub mod models;
 pub mod rewards;
+pub mod runs;
 pub mod statistics;
 pub mod vectors;
 

@@ -7,8 +7,11 @@ use axum::Json;
 use serde::{Deserialize, Serialize};
 
 use super::ModelRef;
+use crate::runs::{record_scored, RunReport, RunTag, Thresholds, Warning};
+use crate::scoring::bank_nearest::BankNearest;
 use crate::scoring::{
-    check_groups, score_groups, Baseline, GroupJson, GroupScores, Remap, RewardSpec, Scale,
+    check_groups, score_groups, Baseline, GroupJson, GroupScores, Guard, GuardJson, Remap,
+    RewardSpec, Scale,
 };
 use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
@@ -23,6 +26,12 @@ pub struct RewardsRequest {
     #[serde(default)]
     pub baseline: Baseline,
     pub remap: Option<String>,
+    pub guard: Option<GuardJson>,
+    /// The training run the samples belong to (see `GET /v1/runs`).
+    pub run: Option<String>,
+    pub step: Option<u64>,
+    /// Warning thresholds for the run, kept for its later requests.
+    pub run_thresholds: Option<Thresholds>,
     pub groups: Vec<GroupJson>,
 }
 
@@ -32,13 +41,24 @@ pub struct RewardsResponse {
     pub scale: Scale,
     pub baseline: Baseline,
     pub remap: Option<String>,
+    /// The guard as applied, when the request has one (absent otherwise, so
+    /// answers without a guard are what they were before guards existed).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub guard: Option<GuardJson>,
     pub groups: Vec<GroupScores>,
+    /// The run and step the samples were counted in, when the request names a run.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub run: Option<RunReport>,
+    /// Thresholds the run's step crosses, when the request names a run.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub warnings: Option<Vec<Warning>>,
 }
 
 pub async fn score(
     State(service): State<Service>,
     ApiJson(request): ApiJson<RewardsRequest>,
 ) -> Result<Json<RewardsResponse>, ApiError> {
+    let tag = RunTag::from_request(request.run, request.step, request.run_thresholds)?;
     let engine = service.engine()?;
     let model = engine.model(request.model.as_deref())?;
     let remap = match &request.remap {
@@ -50,7 +70,17 @@ pub async fn score(
         }
         None => None,
     };
-    let spec = RewardSpec::new(request.scale, request.baseline, remap)?;
+    // The bundle's bank, when the server has one: the guard's nearest
+    // caption and the watch's copies of bank captions.
+    let bank = service
+        .bank()
+        .ok()
+        .and_then(|bank| bank.loaded(&model.bundle.digest));
+    let mut spec = RewardSpec::new(request.scale, request.baseline, remap)?;
+    if let Some(json) = request.guard {
+        // No bundle carries a fluency head yet: a fluency weight is refused.
+        spec = spec.with_guard(Guard::new(json, None, BankNearest::of(bank.clone()))?);
+    }
     let groups = request
         .groups
         .into_iter()
@@ -58,12 +88,20 @@ pub async fn score(
         .map(|(g, group)| group.into_group(&format!("groups[{g}]")))
         .collect::<Result<Vec<_>, _>>()?;
     check_groups(&groups, &spec, service.limits(), "groups")?;
-    let groups = score_groups(engine, model, &spec, &groups, "groups").await?;
+    let scores = score_groups(engine, model, &spec, &groups, "groups").await?;
+    let watched = match tag {
+        Some(tag) => Some(record_scored(service.runs(), tag, groups, &scores, bank).await?),
+        None => None,
+    };
+    let (run, warnings) = watched.unzip();
     Ok(Json(RewardsResponse {
         model: ModelRef::of(model),
         scale: spec.scale(),
         baseline: spec.baseline(),
         remap: request.remap,
-        groups,
+        guard: spec.guard().map(|g| g.echo().clone()),
+        groups: scores,
+        run,
+        warnings,
     }))
 }

@@ -10,6 +10,7 @@ import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any, Callable, Dict, List, Mapping, Optional, Sequence, Tuple, Union
+from urllib.parse import quote, urlencode
 
 import numpy as np
 
@@ -377,6 +378,10 @@ class Client:
         greedy: Optional[Sequence[Optional[str]]] = None,
         remap: Optional[str] = None,
         model: Optional[str] = None,
+        guard: Optional[Mapping[str, Any]] = None,
+        run: Optional[str] = None,
+        step: Optional[int] = None,
+        run_thresholds: Optional[Mapping[str, Any]] = None,
     ) -> Rewards:
         """Rewards for sampled captions, one group per image.
 
@@ -386,10 +391,19 @@ class Client:
         :func:`affine`); ``baseline`` is ``"none"``, ``"mean-of-others"``
         (needs 2+ captions per group) or ``"greedy"`` (needs ``greedy[i]``);
         ``references[i]`` feeds ``ref-clip-s``; ``remap`` names a reward
-        continuity map. Requests over the limits are split between groups and
-        joined back in order.
+        continuity map. ``guard`` (the ``guard`` object of the API: penalties,
+        ``nearest_bank``) adds per-sample signals (``Rewards.signals``) and
+        guarded rewards. ``run`` and ``step`` count the samples in the run
+        watch; ``run_thresholds`` sets the run's warning thresholds, and
+        ``Rewards.warnings`` carries what the step crosses. (A retried chunk
+        may be counted twice in the watch.) Requests over the limits are split
+        between groups and joined back in order.
         """
         check_reward_args(images, captions, baseline, references, greedy)
+        if (run is None) != (step is None):
+            raise ValueError("give run and step together")
+        if step is not None and (isinstance(step, bool) or not isinstance(step, int) or step < 0):
+            raise ValueError(f"step is a whole number from 0, got {step!r}")
         n = len(images)
         ids = self.register_images(images)
         groups: List[Dict[str, Any]] = []
@@ -403,6 +417,13 @@ class Client:
         envelope: Dict[str, Any] = {"scale": scale_json(scale), "baseline": baseline}
         if remap is not None:
             envelope["remap"] = remap
+        if guard is not None:
+            envelope["guard"] = dict(guard)
+        if run is not None:
+            envelope["run"] = run
+            envelope["step"] = step
+        if run_thresholds is not None:
+            envelope["run_thresholds"] = dict(run_thresholds)
         use_model = model or self.model
         if use_model is not None:
             envelope["model"] = use_model
@@ -424,6 +445,18 @@ class Client:
         answers = self._map(send, chunks)
         self._check_same_model(answers)
         return assemble_rewards(answers, [len(g["captions"]) for g in groups], ["greedy" in g for g in groups])
+
+    # -- run watch ------------------------------------------------------
+
+    def runs(self) -> List[Dict[str, Any]]:
+        """The runs the server watches, the most recently updated first."""
+        return list(self._get("/v1/runs")["runs"])
+
+    def run(self, name: str, from_step: Optional[int] = None, to_step: Optional[int] = None) -> Dict[str, Any]:
+        """One run and its steps' aggregates (``series``), optionally a step range."""
+        query = {k: v for k, v in (("from", from_step), ("to", to_step)) if v is not None}
+        path = f"/v1/runs/{quote(name, safe='')}" + (f"?{urlencode(query)}" if query else "")
+        return dict(self._get(path))
 
     # -- vectors --------------------------------------------------------
 

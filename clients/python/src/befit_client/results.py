@@ -85,6 +85,13 @@ class Rewards:
     scale: Dict[str, Any] = field(default_factory=dict)
     baseline: str = "none"
     remap: Optional[str] = None
+    #: With a guard: the guard as the server applied it, and ``signals[i][j]``
+    #: the ``guard`` object of group i's sample j (signals, penalty, flags).
+    guard: Optional[Dict[str, Any]] = None
+    signals: Optional[List[List[Dict[str, Any]]]] = None
+    #: With a run: the last chunk's run report, and every chunk's warnings.
+    run: Optional[Dict[str, Any]] = None
+    warnings: List[Dict[str, Any]] = field(default_factory=list)
 
     @property
     def ragged(self) -> bool:
@@ -171,6 +178,12 @@ def assemble_rewards(
         scale=dict(first.get("scale") or {}),
         baseline=str(first.get("baseline", "none")),
         remap=first.get("remap"),
+        guard=first.get("guard"),
+        signals=[[dict(s.get("guard") or {}) for s in g.get("samples") or []] for g in groups]
+        if "guard" in first
+        else None,
+        run=answers[-1].get("run"),
+        warnings=[w for a in answers for w in a.get("warnings") or []],
     )
 
 
