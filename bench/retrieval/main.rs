@@ -6,12 +6,15 @@
 //! data; `run.py` runs both and prints the ratios.
 //!
 //! `cargo bench --bench retrieval -- --sizes 100000 --out target/retrieval`
-//! (`--crossover` instead measures where the exact scan stops being faster).
+//! (`--crossover` instead measures where the exact scan stops being faster;
+//! `--batched` measures the exact scan of a batch of queries and of single
+//! queries at each of `--dims`, for `exact_run.py` to set beside numpy).
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
+use befit::bank::exact::ExactRows;
 use befit::bank::index::{IndexParams, Search, SearchMode, VectorIndex};
 use befit::bank::recall::mean_recall;
 use befit::bank::synthetic::{blocks_like, uniform_sphere};
@@ -32,6 +35,9 @@ struct Args {
     out: PathBuf,
     crossover: bool,
     dump: bool,
+    batched: bool,
+    dims: Vec<usize>,
+    singles: usize,
 }
 
 fn list<T: std::str::FromStr>(s: &str) -> Vec<T> {
@@ -52,6 +58,9 @@ fn parse_args() -> Args {
         out: PathBuf::from("target/retrieval"),
         crossover: false,
         dump: true,
+        batched: false,
+        dims: vec![64, 512],
+        singles: 100,
     };
     let mut it = std::env::args().skip(1);
     while let Some(flag) = it.next() {
@@ -69,6 +78,9 @@ fn parse_args() -> Args {
             "--out" => a.out = PathBuf::from(value()),
             "--crossover" => a.crossover = true,
             "--no-dump" => a.dump = false,
+            "--batched" => a.batched = true,
+            "--dims" => a.dims = list(&value()),
+            "--singles" => a.singles = value().parse().unwrap_or(a.singles),
             // cargo bench passes --bench to harness-less benchmarks.
             "--bench" => {}
             other => eprintln!("ignoring unknown argument {other}"),
@@ -254,11 +266,66 @@ fn crossover(a: &Args) -> std::io::Result<()> {
     Ok(())
 }
 
+/// Exact search of `--queries` queries as one batch and of `--singles`
+/// queries one at a time, over `--sizes`' first size at each of `--dims`.
+/// Writes the bank, the queries and the batch's answers as .npy files under
+/// `<out>/exact-<n>x<dim>` so `exact_numpy.py` times numpy on the same data
+/// and checks its answers against these.
+fn batched(a: &Args) -> std::io::Result<()> {
+    let n = a.sizes.first().copied().unwrap_or(100_000);
+    for &dim in &a.dims {
+        let bank = uniform_sphere(n, dim, 1);
+        let queries = uniform_sphere(a.queries, dim, 2);
+        let mut rows = ExactRows::new(dim);
+        rows.reserve(n);
+        for (i, v) in bank.chunks(dim).enumerate() {
+            rows.push(i as RowId, v);
+        }
+        // One untimed pass so page faults and lazy initialisation are not timed.
+        rows.search_many(&queries[..dim * a.queries.min(8)], a.k, None);
+        let started = Instant::now();
+        let answers = rows.search_many(&queries, a.k, None);
+        let batch_seconds = started.elapsed().as_secs_f64();
+        let singles = a.singles.min(a.queries);
+        let started = Instant::now();
+        let mut agree = 0;
+        for (q, batch_answer) in queries.chunks(dim).take(singles).zip(&answers) {
+            agree += usize::from(&rows.search(q, a.k, None) == batch_answer);
+        }
+        let single_seconds = started.elapsed().as_secs_f64() / singles.max(1) as f64;
+        let dir = a.out.join(format!("exact-{n}x{dim}"));
+        std::fs::create_dir_all(&dir)?;
+        write_npy(&dir.join("bank.npy"), "<f4", (n, dim), &f32_bytes(&bank))?;
+        write_npy(
+            &dir.join("queries.npy"),
+            "<f4",
+            (a.queries, dim),
+            &f32_bytes(&queries),
+        )?;
+        let ids: Vec<u8> = answers
+            .iter()
+            .flat_map(|hits| hits.iter().map(|h| h.id as i64))
+            .flat_map(i64::to_le_bytes)
+            .collect();
+        write_npy(&dir.join("befit_ids.npy"), "<i8", (a.queries, a.k), &ids)?;
+        emit(serde_json::json!({
+            "side": "befit", "what": "exact", "n": n, "dim": dim, "k": a.k,
+            "queries": a.queries, "batch_seconds": batch_seconds,
+            "single_seconds": single_seconds, "singles": singles,
+            "single_equals_batch": agree, "dir": dir,
+        }));
+    }
+    Ok(())
+}
+
 fn main() -> std::io::Result<()> {
     let a = parse_args();
     std::fs::create_dir_all(&a.out)?;
     if a.crossover {
         return crossover(&a);
+    }
+    if a.batched {
+        return batched(&a);
     }
     for n in a.sizes.clone() {
         for kind in a.kinds.clone() {

@@ -210,51 +210,80 @@ impl ModelBank {
 
     /// The captions nearest `query` (a vector of this bundle's space).
     pub fn search(&self, query: &[f32], q: &BankQuery) -> Result<BankAnswer, BankError> {
-        let answer = match &q.tag {
-            None => self.index.search(
-                query,
-                &Search {
-                    k: q.k,
-                    ef_search: q.ef_search,
-                    mode: q.mode,
-                    only: None,
-                },
-            )?,
-            Some(tag) => {
-                let tags = read(&self.core.tags);
-                let empty = HashSet::new();
-                let only = tags.get(tag).unwrap_or(&empty);
-                self.index.search(
-                    query,
-                    &Search {
-                        k: q.k,
-                        ef_search: q.ef_search,
-                        mode: q.mode,
-                        only: Some(only),
-                    },
-                )?
-            }
+        let answer = self.filtered(q, |search| self.index.search(query, search))?;
+        let mut answers = self.with_captions(vec![answer])?;
+        answers
+            .pop()
+            .ok_or(BankError::Index(index::IndexError::Internal(
+                "a search that lost its answer",
+            )))
+    }
+
+    /// The captions nearest each of `queries`, answered in order: each
+    /// answer is the one [`Self::search`] gives that query. Exact searches
+    /// share matrix products (see [`VectorIndex::search_many`]), and the
+    /// captions of every answer are read from the store in one go.
+    pub fn search_many(
+        &self,
+        queries: &[Vec<f32>],
+        q: &BankQuery,
+    ) -> Result<Vec<BankAnswer>, BankError> {
+        let answers = self.filtered(q, |search| self.index.search_many(queries, search))?;
+        self.with_captions(answers)
+    }
+
+    /// Runs `f` with the index search `q` describes, its tag turned into the
+    /// set of tagged rows (held under the tags' read lock meanwhile).
+    fn filtered<T>(
+        &self,
+        q: &BankQuery,
+        f: impl FnOnce(&Search<'_>) -> Result<T, index::IndexError>,
+    ) -> Result<T, BankError> {
+        let tags = read(&self.core.tags);
+        let empty = HashSet::new();
+        let only = q.tag.as_ref().map(|tag| tags.get(tag).unwrap_or(&empty));
+        let search = Search {
+            k: q.k,
+            ef_search: q.ef_search,
+            mode: q.mode,
+            only,
         };
-        let ids: Vec<RowId> = answer.hits.iter().map(|h| h.id).collect();
-        let captions = self.core.store.captions(&ids)?;
-        let hits = answer
-            .hits
+        Ok(f(&search)?)
+    }
+
+    /// Index answers with their captions' texts and tags, read in one go.
+    fn with_captions(
+        &self,
+        answers: Vec<index::SearchAnswer>,
+    ) -> Result<Vec<BankAnswer>, BankError> {
+        let ids: Vec<RowId> = answers
             .iter()
-            .zip(captions)
-            .filter_map(|(h, c)| {
-                c.map(|c| BankHit {
-                    id: h.id,
-                    text: c.text,
-                    tags: c.tags,
-                    cosine: h.cosine,
-                })
-            })
+            .flat_map(|a| a.hits.iter().map(|h| h.id))
             .collect();
-        Ok(BankAnswer {
-            hits,
-            answered: answer.answered,
-            ef_search: answer.ef_search,
-        })
+        let mut captions = self.core.store.captions(&ids)?.into_iter();
+        Ok(answers
+            .into_iter()
+            .map(|answer| {
+                let hits = answer
+                    .hits
+                    .iter()
+                    .zip(captions.by_ref())
+                    .filter_map(|(h, c)| {
+                        c.map(|c| BankHit {
+                            id: h.id,
+                            text: c.text,
+                            tags: c.tags,
+                            cosine: h.cosine,
+                        })
+                    })
+                    .collect();
+                BankAnswer {
+                    hits,
+                    answered: answer.answered,
+                    ef_search: answer.ef_search,
+                }
+            })
+            .collect())
     }
 
     /// The exact nearest captions (a full scan), optionally with a tag.

@@ -217,6 +217,115 @@ async fn bank_routes_append_report_and_answer() {
     );
 }
 
+/// Same captions (ids, texts, tags) in the same order, cosines within 1e-6.
+fn same_neighbours(a: &Value, b: &Value) {
+    let (a, b) = (a.as_array().unwrap(), b.as_array().unwrap());
+    assert_eq!(a.len(), b.len(), "{a:?} vs {b:?}");
+    for (x, y) in a.iter().zip(b) {
+        assert_eq!(
+            (&x["id"], &x["text"], &x["tags"]),
+            (&y["id"], &y["text"], &y["tags"])
+        );
+        let gap = (x["cosine"].as_f64().unwrap() - y["cosine"].as_f64().unwrap()).abs();
+        assert!(gap < 1e-6, "{x} vs {y}");
+    }
+}
+
+/// A batch of queries (`texts`, `images`, `vectors`) answers, in order,
+/// what each query sent alone answers: the same captions in the same order.
+/// Cosines are compared to 1e-6, not bit for bit: the encoder run on a batch
+/// of texts can move the last bit of an embedding (the bank's own batched
+/// and single searches agree bit for bit on equal vectors, see
+/// `bank::exact` and `bank::index` unit tests).
+#[tokio::test(flavor = "multi_thread")]
+async fn batched_neighbours_answer_as_single_queries_do() {
+    let state = state();
+    let rows = probe_rows("probe.jsonl");
+    let rows = &rows[20..26];
+    let captions: Vec<Value> = rows
+        .iter()
+        .enumerate()
+        .flat_map(|(i, r)| {
+            let tag = if i % 2 == 0 { "even" } else { "odd" };
+            r.captions
+                .iter()
+                .map(move |c| json!({"text": c, "tag": tag}))
+        })
+        .collect();
+    let (status, r) = post_json(&state, "/v1/bank", &json!({"captions": captions})).await;
+    assert_eq!(status, 200, "{r}");
+    let texts: Vec<&str> = rows.iter().map(|r| r.captions[1].as_str()).collect();
+    for extra in [json!({}), json!({"tag": "odd"}), json!({"exact": true})] {
+        let mut body = json!({"texts": texts, "k": 4});
+        for (key, v) in extra.as_object().unwrap() {
+            body[key] = v.clone();
+        }
+        let (status, batch) = post_json(&state, "/v1/neighbors", &body).await;
+        assert_eq!(status, 200, "{batch}");
+        let results = batch["results"].as_array().unwrap();
+        assert_eq!(results.len(), texts.len());
+        for (text, got) in texts.iter().zip(results) {
+            let mut one = body.clone();
+            one.as_object_mut().unwrap().remove("texts");
+            one["text"] = json!(text);
+            let (_, single) = post_json(&state, "/v1/neighbors", &one).await;
+            same_neighbours(&got["neighbors"], &single["neighbors"]);
+            assert_eq!(got["answered"], single["answered"]);
+            assert_eq!(got["neighbors"].as_array().unwrap().len(), 4);
+        }
+    }
+    // Vectors of the same texts (from /v1/vectors) answer as the texts do.
+    let (_, embedded) = post_json(&state, "/v1/vectors", &json!({"texts": texts})).await;
+    let vectors: Vec<Value> = embedded["texts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| t["vector"].clone())
+        .collect();
+    let (_, by_text) = post_json(&state, "/v1/neighbors", &json!({"texts": texts, "k": 3})).await;
+    let (status, by_vector) = post_json(
+        &state,
+        "/v1/neighbors",
+        &json!({"vectors": vectors, "k": 3}),
+    )
+    .await;
+    assert_eq!(status, 200, "{by_vector}");
+    for (a, b) in by_text["results"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(by_vector["results"].as_array().unwrap())
+    {
+        same_neighbours(&a["neighbors"], &b["neighbors"]);
+    }
+    // Images, in order.
+    let images: Vec<Value> = rows.iter().map(|r| json!({"path": r.image})).collect();
+    let (status, batch) =
+        post_json(&state, "/v1/neighbors", &json!({"images": images, "k": 2})).await;
+    assert_eq!(status, 200, "{batch}");
+    for (image, got) in images.iter().zip(batch["results"].as_array().unwrap()) {
+        let (_, single) =
+            post_json(&state, "/v1/neighbors", &json!({"image": image, "k": 2})).await;
+        same_neighbours(&got["neighbors"], &single["neighbors"]);
+    }
+    // Faults name the query at fault.
+    let mut bad = vectors.clone();
+    bad[1] = json!([1.0, 2.0]);
+    for (body, field) in [
+        (json!({"vectors": bad, "k": 3}), "vectors[1]"),
+        (json!({"vectors": [], "k": 3}), "vectors"),
+        (json!({"texts": ["a", " "], "k": 3}), "texts[1]"),
+        (json!({"texts": ["a"], "text": "a", "k": 3}), "text"),
+    ] {
+        let (status, e) = post_json(&state, "/v1/neighbors", &body).await;
+        assert_eq!(
+            (status.as_u16(), e["error"]["field"].as_str()),
+            (400, Some(field)),
+            "{body} -> {e}"
+        );
+    }
+}
+
 #[test]
 fn every_acknowledged_append_survives_sigkill() {
     let data = scratch_dir("crash");

@@ -39,9 +39,9 @@ use serde::Serialize;
 pub use build::{GraphOrigin, LoadReport, RowSource};
 pub use errors::IndexError;
 pub use parameters::{
-    check_search_bounds, unit_vector, validate_digest, IndexParams, Search, SearchMode,
-    DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH, DEFAULT_EXACT_BELOW,
-    DEFAULT_MAX_CONNECTIONS, MAX_EF_SEARCH, MAX_K,
+    check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
+    SearchMode, DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH,
+    DEFAULT_EXACT_BELOW, DEFAULT_MAX_CONNECTIONS, MAX_EF_SEARCH, MAX_K, MAX_QUERIES,
 };
 pub use persistence::DumpReport;
 pub use search::{Answered, SearchAnswer};

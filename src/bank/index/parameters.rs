@@ -53,6 +53,13 @@ pub const MAX_K: usize = 1_000;
 /// search costs as much as the exact scan of a large bank.
 pub const MAX_EF_SEARCH: usize = 10_000;
 
+/// Most queries in one batched search. A training step asks for the
+/// neighbours of a batch of images (hundreds, rarely thousands); 4096
+/// queries of 512 numbers are 8 MiB of vectors, and the exact answer over
+/// 1M captions is about 4096 x 1M x 512 multiply-adds (some tens of seconds
+/// on one core), still inside the request timeout.
+pub const MAX_QUERIES: usize = 4_096;
+
 /// Fewest links per node: with one, a layer is a chain and search degrades.
 pub const MIN_CONNECTIONS: usize = 2;
 
@@ -137,6 +144,12 @@ pub fn check_search_bounds(k: usize, ef_search: Option<usize>) -> Result<(), Ind
         in_range("ef_search", ef, 1, MAX_EF_SEARCH)?;
     }
     Ok(())
+}
+
+/// Checks the number of queries of a batched search (1 to [`MAX_QUERIES`]);
+/// `field` names the request field that holds them.
+pub fn check_query_count(field: &'static str, count: usize) -> Result<(), IndexError> {
+    in_range(field, count, 1, MAX_QUERIES)
 }
 
 /// How a search is answered.

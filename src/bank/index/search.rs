@@ -5,7 +5,9 @@ use std::collections::HashSet;
 
 use serde::Serialize;
 
-use super::parameters::{check_search_bounds, unit_vector, Search, SearchMode, MAX_EF_SEARCH};
+use super::parameters::{
+    check_query_count, check_search_bounds, unit_vector, Search, SearchMode, MAX_EF_SEARCH,
+};
 use super::{read, IndexError, VectorIndex};
 use crate::bank::exact::Neighbour;
 use crate::bank::RowId;
@@ -63,12 +65,7 @@ impl VectorIndex {
     pub fn search(&self, query: &[f32], search: &Search<'_>) -> Result<SearchAnswer, IndexError> {
         let (q, ef) = self.check_search(query, search)?;
         let n = self.len();
-        let exact = match search.mode {
-            SearchMode::Exact => true,
-            SearchMode::Auto => n <= self.params.exact_below,
-            SearchMode::Index => false,
-        };
-        if exact {
+        if self.answers_exactly(search) {
             return Ok(self.exact_with(&q, search.k, search.only));
         }
         let Some(only) = search.only else {
@@ -79,9 +76,6 @@ impl VectorIndex {
                 ef_search: ef,
             });
         };
-        if only.len() <= self.params.exact_below || only.is_empty() {
-            return Ok(self.exact_with(&q, search.k, Some(only)));
-        }
         let share = only.len() as f64 / n.max(1) as f64;
         let fetch = ((search.k as f64 / share.min(1.0)) * OVERFETCH_FACTOR).ceil() as usize;
         let fetch = fetch.clamp(search.k, n.max(search.k));
@@ -97,6 +91,62 @@ impl VectorIndex {
             answered: Answered::Index,
             ef_search: ef,
         })
+    }
+
+    /// Several searches with the same settings, answered in order, each the
+    /// answer [`Self::search`] gives that query. When the search is exact
+    /// (by mode, by bank size, or a narrow filter) the queries share matrix
+    /// products over the exact rows ([`ExactRows::search_many`]); graph
+    /// searches run one query after another.
+    ///
+    /// [`ExactRows::search_many`]: crate::bank::exact::ExactRows::search_many
+    pub fn search_many(
+        &self,
+        queries: &[Vec<f32>],
+        search: &Search<'_>,
+    ) -> Result<Vec<SearchAnswer>, IndexError> {
+        check_search_bounds(search.k, search.ef_search)?;
+        check_query_count("queries", queries.len())?;
+        if !self.answers_exactly(search) {
+            return queries.iter().map(|q| self.search(q, search)).collect();
+        }
+        let mut units = Vec::with_capacity(queries.len().saturating_mul(self.dim));
+        for q in queries {
+            units.extend(unit_vector(q, self.dim, &self.digest)?);
+        }
+        let rows = read(&self.rows);
+        let k = search.k;
+        let hits = match search.only {
+            None => rows.search_many(&units, k, None),
+            Some(set) if narrow(set, rows.len()) => units
+                .chunks_exact(self.dim)
+                .map(|q| rows.search_among(q, k, set.iter()))
+                .collect(),
+            Some(set) => rows.search_many(&units, k, Some(&|id| set.contains(&id))),
+        };
+        Ok(hits
+            .into_iter()
+            .map(|hits| SearchAnswer {
+                hits,
+                answered: Answered::Exact,
+                ef_search: 0,
+            })
+            .collect())
+    }
+
+    /// Whether a search goes to the exact scan without trying the graph:
+    /// asked to, a bank at most [`super::IndexParams::exact_below`] rows, or
+    /// a filter that small (or empty).
+    fn answers_exactly(&self, search: &Search<'_>) -> bool {
+        let by_mode = match search.mode {
+            SearchMode::Exact => true,
+            SearchMode::Auto => self.len() <= self.params.exact_below,
+            SearchMode::Index => false,
+        };
+        by_mode
+            || search
+                .only
+                .is_some_and(|only| only.len() <= self.params.exact_below || only.is_empty())
     }
 
     /// The exact `k` nearest rows, optionally among `only`.
@@ -120,10 +170,7 @@ impl VectorIndex {
         let rows = read(&self.rows);
         let hits = match only {
             None => rows.search(q, k, None),
-            // Scanning a small set row by row beats a full matrix pass.
-            Some(set) if set.len().saturating_mul(4) < rows.len() => {
-                rows.search_among(q, k, set.iter())
-            }
+            Some(set) if narrow(set, rows.len()) => rows.search_among(q, k, set.iter()),
             Some(set) => rows.search(q, k, Some(&|id| set.contains(&id))),
         };
         SearchAnswer {
@@ -132,4 +179,10 @@ impl VectorIndex {
             ef_search: 0,
         }
     }
+}
+
+/// Scanning a filter's rows one by one beats a full matrix pass when they
+/// are under a quarter of the bank.
+fn narrow(set: &HashSet<RowId>, rows: usize) -> bool {
+    set.len().saturating_mul(4) < rows
 }

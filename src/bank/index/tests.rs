@@ -345,6 +345,52 @@ fn tag_filters_only_return_allowed_rows_whatever_their_size() {
 }
 
 #[test]
+fn batched_searches_answer_each_query_as_a_single_search_does() {
+    let (bank, queries) = blocks_like(3_000, 30, DIM, 6);
+    let params = IndexParams {
+        exact_below: 200,
+        ..IndexParams::default()
+    };
+    let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+    index.insert(&rows_of(&bank, 1)).unwrap();
+    let queries: Vec<Vec<f32>> = queries.chunks(DIM).map(<[f32]>::to_vec).collect();
+    let narrow: HashSet<RowId> = (1..=3_000).filter(|i| i % 40 == 0).collect();
+    let wide: HashSet<RowId> = (1..=3_000).filter(|i| i % 2 == 0).collect();
+    for (mode, only) in [
+        (SearchMode::Exact, None),
+        (SearchMode::Exact, Some(&narrow)),
+        (SearchMode::Exact, Some(&wide)),
+        (SearchMode::Auto, Some(&narrow)),
+        (SearchMode::Index, None),
+    ] {
+        let search = Search {
+            k: 10,
+            ef_search: None,
+            mode,
+            only,
+        };
+        let batched = index.search_many(&queries, &search).unwrap();
+        assert_eq!(batched.len(), queries.len());
+        for (q, got) in queries.iter().zip(&batched) {
+            assert_eq!(got, &index.search(q, &search).unwrap());
+        }
+    }
+    let none: Vec<Vec<f32>> = Vec::new();
+    assert!(matches!(
+        index.search_many(&none, &Search::top(3)),
+        Err(IndexError::Setting {
+            name: "queries",
+            ..
+        })
+    ));
+    let short = vec![queries[0].clone(), vec![1.0; DIM - 1]];
+    assert!(matches!(
+        index.search_many(&short, &Search::top(3)),
+        Err(IndexError::Dimension { .. })
+    ));
+}
+
+#[test]
 fn auto_mode_scans_small_banks_exactly() {
     let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
     index

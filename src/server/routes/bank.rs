@@ -9,10 +9,13 @@ use serde::{Deserialize, Serialize};
 use serde_json::{json, Value};
 
 use super::ModelRef;
-use crate::bank::index::unit_vector;
-use crate::bank::{check_tag, BankAnswer, BankQuery, ModelBank, NewCaption, SearchMode};
+use crate::bank::index::{check_query_count, unit_vector};
+use crate::bank::{
+    check_tag, BankAnswer, BankQuery, IndexError, ModelBank, NewCaption, SearchMode,
+};
 use crate::encoders::Model;
-use crate::intake::image_source::ImageRef;
+use crate::intake::image_source::{sources, ImageRef};
+use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
 use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::ApiJson;
@@ -174,6 +177,9 @@ pub struct NeighborsRequest {
     text: Option<String>,
     image: Option<ImageRef>,
     vector: Option<Vec<f32>>,
+    texts: Option<Vec<String>>,
+    images: Option<Vec<ImageRef>>,
+    vectors: Option<Vec<Vec<f32>>>,
     k: usize,
     tag: Option<String>,
     ef_search: Option<usize>,
@@ -190,6 +196,115 @@ enum Among {
     #[default]
     Captions,
     Images,
+}
+
+/// The query vectors of a request, and whether it used a batch field
+/// (`texts`, `images`, `vectors`), which shapes the answer as `results`.
+struct Queries {
+    vectors: Vec<Vec<f32>>,
+    batch: bool,
+}
+
+const ONE_OF: &str = "`text`, `image`, `vector`, `texts`, `images` or `vectors`";
+
+/// Embeds (or checks) the request's queries, in order.
+async fn queries(
+    service: &Service,
+    model: &Arc<Model>,
+    request: &NeighborsRequest,
+) -> Result<Queries, ApiError> {
+    let engine = service.engine()?;
+    let limits = service.limits();
+    let given = [
+        request.text.is_some(),
+        request.image.is_some(),
+        request.vector.is_some(),
+        request.texts.is_some(),
+        request.images.is_some(),
+        request.vectors.is_some(),
+    ];
+    if given.iter().filter(|g| **g).count() != 1 {
+        return Err(Invalid::new("text", Problem::OneOf(ONE_OF)).into());
+    }
+    let single = |vector| Queries {
+        vectors: vec![vector],
+        batch: false,
+    };
+    let batch = |vectors| Queries {
+        vectors,
+        batch: true,
+    };
+    if let Some(text) = &request.text {
+        limits.check_caption(text, "text")?;
+        let v = model.caption_vectors(std::slice::from_ref(text)).await?;
+        return Ok(single(v[0].vector.clone()));
+    }
+    if let Some(image) = &request.image {
+        let source = image.source("image")?;
+        let (_, v) = engine
+            .image_vector(model, &source)
+            .await
+            .map_err(|e| ApiError::from(e).at("image"))?;
+        return Ok(single(v.to_vec()));
+    }
+    if let Some(vector) = &request.vector {
+        return Ok(single(unit_vector(
+            vector,
+            model.dimension(),
+            &model.bundle.digest,
+        )?));
+    }
+    if let Some(texts) = &request.texts {
+        check_query_count("texts", texts.len())?;
+        limits.check_captions(texts, "texts")?;
+        let vs = model.caption_vectors(texts).await?;
+        return Ok(batch(vs.iter().map(|v| v.vector.clone()).collect()));
+    }
+    if let Some(images) = &request.images {
+        check_query_count("images", images.len())?;
+        limits.check(Limit::Images, images.len(), "images")?;
+        let sources = sources(images, "images")?;
+        let vs = futures::future::try_join_all(sources.iter().enumerate().map(
+            |(i, source)| async move {
+                engine
+                    .image_vector(model, source)
+                    .await
+                    .map(|(_, v)| v.to_vec())
+                    .map_err(|e| ApiError::from(e).at(format!("images[{i}]")))
+            },
+        ))
+        .await?;
+        return Ok(batch(vs));
+    }
+    let vectors = request.vectors.as_deref().unwrap_or_default();
+    check_query_count("vectors", vectors.len())?;
+    let units = vectors
+        .iter()
+        .enumerate()
+        .map(|(i, v)| {
+            unit_vector(v, model.dimension(), &model.bundle.digest)
+                .map_err(|e| vector_fault(e, format!("vectors[{i}]")))
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    Ok(batch(units))
+}
+
+/// A refused query vector, blamed on its place in `vectors`.
+fn vector_fault(e: IndexError, field: String) -> ApiError {
+    match e {
+        IndexError::Dimension { got, expected, .. } => Invalid::new(
+            field,
+            Problem::VectorLength {
+                got,
+                want: expected,
+            },
+        )
+        .into(),
+        IndexError::NotFinite { .. } | IndexError::Zero => {
+            Invalid::new(field, Problem::VectorValues).into()
+        }
+        other => other.into(),
+    }
 }
 
 pub async fn neighbors(
@@ -211,45 +326,54 @@ pub async fn neighbors(
     };
     // The bank's bounds on k and ef_search, before any embedding.
     q.check()?;
-    let query: Vec<f32> = match (&request.text, &request.image, &request.vector) {
-        (Some(text), None, None) => {
-            service.limits().check_caption(text, "text")?;
-            model.caption_vectors(std::slice::from_ref(text)).await?[0]
-                .vector
-                .clone()
-        }
-        (None, Some(image), None) => {
-            let source = image.source("image")?;
-            engine
-                .image_vector(model, &source)
-                .await
-                .map_err(|e| ApiError::from(e).at("image"))?
-                .1
-                .to_vec()
-        }
-        (None, None, Some(vector)) => unit_vector(vector, model.dimension(), &model.bundle.digest)?,
-        _ => {
-            return Err(Invalid::new("text", Problem::OneOf("`text`, `image` or `vector`")).into())
-        }
-    };
+    let Queries { vectors, batch } = queries(&service, model, &request).await?;
     if request.among == Among::Images {
-        let hits = engine.nearest_images(model, query, request.k).await?;
-        let neighbors: Vec<Value> = hits
-            .iter()
-            .map(|h| json!({"id": h.id, "cosine": h.cosine}))
+        let mut results = Vec::with_capacity(vectors.len());
+        for query in vectors {
+            let hits = engine.nearest_images(model, query, request.k).await?;
+            let neighbors: Vec<Value> = hits
+                .iter()
+                .map(|h| json!({"id": h.id, "cosine": h.cosine}))
+                .collect();
+            results.push(neighbors);
+        }
+        if !batch {
+            let neighbors = results.pop().unwrap_or_default();
+            return Ok(Json(
+                json!({"model": ModelRef::of(model), "answered": "exact", "ef_search": 0, "neighbors": neighbors}),
+            ));
+        }
+        let results: Vec<Value> = results
+            .into_iter()
+            .map(|neighbors| json!({"answered": "exact", "ef_search": 0, "neighbors": neighbors}))
             .collect();
         return Ok(Json(
-            json!({"model": ModelRef::of(model), "answered": "exact", "ef_search": 0, "neighbors": neighbors}),
+            json!({"model": ModelRef::of(model), "results": results}),
         ));
     }
     let bank = model_bank(&service, model)?;
-    let answer: BankAnswer =
-        blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?;
+    let partial = service.backfills().partial(&model.bundle.digest);
+    if !batch {
+        let query = vectors.into_iter().next().unwrap_or_default();
+        let answer: BankAnswer =
+            blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?;
+        return Ok(Json(json!({
+            "model": ModelRef::of(model),
+            "answered": answer.answered,
+            "ef_search": answer.ef_search,
+            "partial": partial,
+            "neighbors": answer.hits,
+        })));
+    }
+    let answers: Vec<BankAnswer> =
+        blocking(move || bank.search_many(&vectors, &q).map_err(ApiError::from)).await?;
+    let results: Vec<Value> = answers
+        .iter()
+        .map(|a| json!({"answered": a.answered, "ef_search": a.ef_search, "neighbors": a.hits}))
+        .collect();
     Ok(Json(json!({
         "model": ModelRef::of(model),
-        "answered": answer.answered,
-        "ef_search": answer.ef_search,
-        "partial": service.backfills().partial(&model.bundle.digest),
-        "neighbors": answer.hits,
+        "partial": partial,
+        "results": results,
     })))
 }
