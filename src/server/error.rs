@@ -30,6 +30,9 @@ pub enum ErrorCode {
     BadJson,
     InvalidField,
     OverLimit,
+    KeyRequired,
+    ScopeMissing,
+    CrossOrigin,
     PathRefused,
     UnknownImage,
     UnknownModel,
@@ -41,8 +44,10 @@ pub enum ErrorCode {
     SlowBody,
     BodyTooLarge,
     UnsupportedMediaType,
+    HostRefused,
     BadImage,
     ImageTooLarge,
+    RateLimited,
     Overloaded,
     NotReady,
     Internal,
@@ -50,10 +55,13 @@ pub enum ErrorCode {
 
 impl ErrorCode {
     /// Every code, in the order of the API doc's table.
-    pub const ALL: [ErrorCode; 19] = [
+    pub const ALL: [ErrorCode; 24] = [
         ErrorCode::BadJson,
         ErrorCode::InvalidField,
         ErrorCode::OverLimit,
+        ErrorCode::KeyRequired,
+        ErrorCode::ScopeMissing,
+        ErrorCode::CrossOrigin,
         ErrorCode::PathRefused,
         ErrorCode::UnknownImage,
         ErrorCode::UnknownModel,
@@ -65,8 +73,10 @@ impl ErrorCode {
         ErrorCode::SlowBody,
         ErrorCode::BodyTooLarge,
         ErrorCode::UnsupportedMediaType,
+        ErrorCode::HostRefused,
         ErrorCode::BadImage,
         ErrorCode::ImageTooLarge,
+        ErrorCode::RateLimited,
         ErrorCode::Overloaded,
         ErrorCode::NotReady,
         ErrorCode::Internal,
@@ -78,7 +88,12 @@ impl ErrorCode {
             ErrorCode::BadJson | ErrorCode::InvalidField | ErrorCode::OverLimit => {
                 StatusCode::BAD_REQUEST
             }
-            ErrorCode::PathRefused => StatusCode::FORBIDDEN,
+            ErrorCode::KeyRequired => StatusCode::UNAUTHORIZED,
+            ErrorCode::ScopeMissing | ErrorCode::CrossOrigin | ErrorCode::PathRefused => {
+                StatusCode::FORBIDDEN
+            }
+            ErrorCode::HostRefused => StatusCode::MISDIRECTED_REQUEST,
+            ErrorCode::RateLimited => StatusCode::TOO_MANY_REQUESTS,
             ErrorCode::UnknownImage
             | ErrorCode::UnknownModel
             | ErrorCode::UnknownMap
@@ -100,6 +115,11 @@ impl ErrorCode {
             ErrorCode::BadJson => "bad_json",
             ErrorCode::InvalidField => "invalid_field",
             ErrorCode::OverLimit => "over_limit",
+            ErrorCode::KeyRequired => "key_required",
+            ErrorCode::ScopeMissing => "scope_missing",
+            ErrorCode::CrossOrigin => "cross_origin",
+            ErrorCode::HostRefused => "host_refused",
+            ErrorCode::RateLimited => "rate_limited",
             ErrorCode::PathRefused => "path_refused",
             ErrorCode::UnknownImage => "unknown_image",
             ErrorCode::UnknownModel => "unknown_model",
@@ -205,6 +225,12 @@ impl IntoResponse for ApiError {
             response
                 .headers_mut()
                 .insert(header::RETRY_AFTER, HeaderValue::from(RETRY_AFTER_SECONDS));
+        }
+        if self.status() == StatusCode::UNAUTHORIZED {
+            // The challenge RFC 6750 §3 asks a 401 to carry.
+            response
+                .headers_mut()
+                .insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
         }
         response
     }
