@@ -300,6 +300,33 @@ mod tests {
     }
 
     #[test]
+    fn tls_takes_a_certificate_and_its_key_or_says_what_is_wrong() {
+        let dir = tempfile::tempdir().unwrap();
+        let made = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+        let cert = dir.path().join("cert.pem");
+        let key = dir.path().join("key.pem");
+        std::fs::write(&cert, made.cert.pem()).unwrap();
+        std::fs::write(&key, made.key_pair.serialize_pem()).unwrap();
+        assert!(Tls::from_files(None, None).unwrap().is_none());
+        assert!(Tls::from_files(Some(&cert), Some(&key)).unwrap().is_some());
+        assert!(matches!(
+            Tls::from_files(Some(&cert), None),
+            Err(TlsError::Half)
+        ));
+        // The key given as the certificate: no CERTIFICATE block in it.
+        let e = Tls::from_files(Some(&key), Some(&key)).unwrap_err();
+        assert!(matches!(e, TlsError::NoCertificate { .. }), "{e}");
+        // Another certificate's key does not match this certificate.
+        let other = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+        let wrong = dir.path().join("wrong.pem");
+        std::fs::write(&wrong, other.key_pair.serialize_pem()).unwrap();
+        let e = Tls::from_files(Some(&cert), Some(&wrong)).unwrap_err();
+        assert!(matches!(e, TlsError::Config(_)), "{e}");
+        let e = Tls::from_files(Some(&cert), Some(&dir.path().join("absent.pem"))).unwrap_err();
+        assert!(e.to_string().contains("--tls-key"), "{e}");
+    }
+
+    #[test]
     fn reads_this_process_open_file_limit() {
         // /proc/self/limits is Linux's (proc(5)); the soft limit is a positive number or "unlimited".
         if std::path::Path::new("/proc/self/limits").exists() {
