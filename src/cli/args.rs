@@ -23,6 +23,8 @@ pub struct Cli {
     pub command: Command,
 }
 
+// Parsed once per process: the size of the largest variant costs nothing.
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Run the HTTP service.
@@ -38,6 +40,28 @@ pub enum Command {
     /// The caption bank: import captions, query nearest captions.
     #[command(subcommand)]
     Bank(BankCommand),
+    /// API keys for `befit serve --keys`.
+    #[command(subcommand)]
+    Keys(KeysCommand),
+}
+
+#[derive(Debug, Subcommand)]
+pub enum KeysCommand {
+    /// Make a key: prints its token once and appends only the token's hash to the keys file.
+    New(KeysNewArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct KeysNewArgs {
+    /// The keys file (`befit serve --keys`); created, readable by its owner only, if missing.
+    #[arg(long, value_name = "FILE")]
+    pub keys: PathBuf,
+    /// What the key may do: scoring, bank-write, statistics or admin; repeatable.
+    #[arg(long = "scope", required = true, value_name = "SCOPE")]
+    pub scopes: Vec<crate::server::access::Scope>,
+    /// The key's name in logs and answers (default: 8 random hex digits).
+    #[arg(long, value_name = "ID")]
+    pub id: Option<String>,
 }
 
 #[derive(Debug, Subcommand)]
@@ -319,6 +343,37 @@ pub struct ServeArgs {
     pub accept_smaller_stores: bool,
     #[command(flatten)]
     pub guards: ServeGuardArgs,
+    #[command(flatten)]
+    pub access: ServeAccessArgs,
+}
+
+/// Who may use `befit serve`: keys, the network it trusts, the names it answers to, TLS.
+#[derive(Debug, Args)]
+pub struct ServeAccessArgs {
+    /// API keys file (from `befit keys new`): every route but /healthz, /readyz and the live
+    /// page's files then needs `Authorization: Bearer TOKEN` with the route's scope.
+    #[arg(long, value_name = "FILE")]
+    pub keys: Option<PathBuf>,
+    /// Serve a non-loopback --listen address without --keys: every host that can reach it
+    /// may then write the bank, save reward maps and read embeddings.
+    #[arg(long)]
+    pub trust_network: bool,
+    /// A name clients reach the server by (its Host header); repeatable. The listen address,
+    /// and localhost on a loopback or all-interfaces address, are always accepted.
+    #[arg(long = "allow-host", value_name = "NAME")]
+    pub allow_hosts: Vec<String>,
+    /// Requests a second one key may make (0: no limit); more get 429 with Retry-After.
+    #[arg(long, default_value_t = crate::server::access::rate::DEFAULT_KEY_RATE)]
+    pub key_rate: u32,
+    /// Requests one key may make at once above --key-rate.
+    #[arg(long, default_value_t = crate::server::access::rate::DEFAULT_KEY_BURST)]
+    pub key_burst: u32,
+    /// TLS certificate chain (PEM); with --tls-key, the server speaks HTTPS only.
+    #[arg(long, value_name = "FILE.pem")]
+    pub tls_cert: Option<PathBuf>,
+    /// TLS private key (PEM) of --tls-cert.
+    #[arg(long, value_name = "FILE.pem")]
+    pub tls_key: Option<PathBuf>,
 }
 
 /// What a probe-set command does with bad rows and where its figures go.

@@ -7,6 +7,7 @@
 pub mod args;
 mod bank_commands;
 pub mod config_file;
+mod keys_command;
 mod probe_commands;
 pub mod progress;
 mod score_command;
@@ -19,7 +20,7 @@ use std::process::ExitCode;
 use anyhow::Context;
 
 use crate::runtime::LibrarySearch;
-use args::{BankCommand, Command};
+use args::{BankCommand, Command, KeysCommand};
 use config_file::ArgsError;
 
 /// Parses `argv` and runs the command; the error chain is for `main` to print.
@@ -46,6 +47,7 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Command::Bank(BankCommand::Import(a)) => bank_commands::import(a),
         Command::Bank(BankCommand::Query(a)) => bank_commands::query(a),
         Command::Bank(BankCommand::EmbedMissing(a)) => bank_commands::embed_missing(a),
+        Command::Keys(KeysCommand::New(a)) => keys_command::new_key(a),
     }
 }
 

@@ -13,7 +13,10 @@ use crate::batching::BatchSettings;
 use crate::encoders::{load_bundles, ModelSettings};
 use crate::intake::limits::Limits;
 use crate::metrics::Registry;
-use crate::server::listen::{open_file_limit, ConnectionSettings};
+use crate::server::access::host::HostPolicy;
+use crate::server::access::rate::KeyRates;
+use crate::server::access::{Access, KeySet};
+use crate::server::listen::{open_file_limit, ConnectionSettings, Tls};
 use crate::service::{Running, ServiceConfig, DEFAULT_BANK_DUMP_SECONDS};
 
 /// Encoder settings from the flags, checked (offline commands pass
@@ -117,9 +120,31 @@ fn connection_settings(a: &ServeArgs) -> anyhow::Result<ConnectionSettings> {
     Ok(settings)
 }
 
+/// Who may use the server, from the flags, checked: without keys, only a
+/// loopback address unless the network is declared trusted.
+fn access(a: &ServeArgs) -> anyhow::Result<Access> {
+    let flags = &a.access;
+    let keys = flags.keys.as_deref().map(KeySet::load).transpose()?;
+    if keys.is_none() && !a.listen.ip().is_loopback() && !flags.trust_network {
+        bail!(
+            "--listen {} is not a loopback address and no --keys file is given: anyone who can \
+             reach it could append to the caption bank, save reward maps and read image \
+             embeddings. Give --keys FILE (`befit keys new` makes keys), or --trust-network if \
+             every host that can reach this address is trusted",
+            a.listen
+        );
+    }
+    let hosts = HostPolicy::new(a.listen.ip(), &flags.allow_hosts);
+    let rates = KeyRates::new(flags.key_rate, flags.key_burst);
+    Ok(Access::new(keys, Some(hosts), rates))
+}
+
 pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     let config = service_config(&a)?;
     let connections = connection_settings(&a)?;
+    let access = Arc::new(access(&a)?);
+    let tls = Tls::from_files(a.access.tls_cert.as_deref(), a.access.tls_key.as_deref())?;
+    let scheme = if tls.is_some() { "https" } else { "http" };
     let env = ort_environment(a.runtime.ort_lib.clone())?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
@@ -132,13 +157,15 @@ pub fn serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         let local = listener.local_addr()?;
         let mut running = Running::start(config, env, Arc::new(Registry::default()))?;
         // Tests and scripts read this line to learn the port when asked for port 0.
-        eprintln!("befit: listening on http://{local}");
-        tracing::info!(%local, "listening; loading bundles");
+        eprintln!("befit: listening on {scheme}://{local}");
+        tracing::info!(%local, keys = access.has_keys(), tls = tls.is_some(), "listening; loading bundles");
         let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
-        let server = tokio::spawn(crate::server::run(
+        let app = crate::server::app_with(running.service().clone(), access);
+        let server = tokio::spawn(crate::server::listen::serve(
             listener,
-            running.service().clone(),
+            app,
             connections,
+            tls,
             async move {
                 let _ = stop_rx.await;
             },

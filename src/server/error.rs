@@ -32,6 +32,9 @@ pub enum ErrorCode {
     BadJson,
     InvalidField,
     OverLimit,
+    KeyRequired,
+    ScopeMissing,
+    CrossOrigin,
     PathRefused,
     UnknownImage,
     UnknownModel,
@@ -43,8 +46,10 @@ pub enum ErrorCode {
     SlowBody,
     BodyTooLarge,
     UnsupportedMediaType,
+    HostRefused,
     BadImage,
     ImageTooLarge,
+    RateLimited,
     Overloaded,
     NotReady,
     StorageFull,
@@ -53,10 +58,13 @@ pub enum ErrorCode {
 
 impl ErrorCode {
     /// Every code, in the order of the API doc's table.
-    pub const ALL: [ErrorCode; 20] = [
+    pub const ALL: [ErrorCode; 25] = [
         ErrorCode::BadJson,
         ErrorCode::InvalidField,
         ErrorCode::OverLimit,
+        ErrorCode::KeyRequired,
+        ErrorCode::ScopeMissing,
+        ErrorCode::CrossOrigin,
         ErrorCode::PathRefused,
         ErrorCode::UnknownImage,
         ErrorCode::UnknownModel,
@@ -68,8 +76,10 @@ impl ErrorCode {
         ErrorCode::SlowBody,
         ErrorCode::BodyTooLarge,
         ErrorCode::UnsupportedMediaType,
+        ErrorCode::HostRefused,
         ErrorCode::BadImage,
         ErrorCode::ImageTooLarge,
+        ErrorCode::RateLimited,
         ErrorCode::Overloaded,
         ErrorCode::NotReady,
         ErrorCode::StorageFull,
@@ -82,7 +92,12 @@ impl ErrorCode {
             ErrorCode::BadJson | ErrorCode::InvalidField | ErrorCode::OverLimit => {
                 StatusCode::BAD_REQUEST
             }
-            ErrorCode::PathRefused => StatusCode::FORBIDDEN,
+            ErrorCode::KeyRequired => StatusCode::UNAUTHORIZED,
+            ErrorCode::ScopeMissing | ErrorCode::CrossOrigin | ErrorCode::PathRefused => {
+                StatusCode::FORBIDDEN
+            }
+            ErrorCode::HostRefused => StatusCode::MISDIRECTED_REQUEST,
+            ErrorCode::RateLimited => StatusCode::TOO_MANY_REQUESTS,
             ErrorCode::UnknownImage
             | ErrorCode::UnknownModel
             | ErrorCode::UnknownMap
@@ -105,6 +120,11 @@ impl ErrorCode {
             ErrorCode::BadJson => "bad_json",
             ErrorCode::InvalidField => "invalid_field",
             ErrorCode::OverLimit => "over_limit",
+            ErrorCode::KeyRequired => "key_required",
+            ErrorCode::ScopeMissing => "scope_missing",
+            ErrorCode::CrossOrigin => "cross_origin",
+            ErrorCode::HostRefused => "host_refused",
+            ErrorCode::RateLimited => "rate_limited",
             ErrorCode::PathRefused => "path_refused",
             ErrorCode::UnknownImage => "unknown_image",
             ErrorCode::UnknownModel => "unknown_model",
@@ -265,6 +285,12 @@ impl IntoResponse for ApiError {
                 header::RETRY_AFTER,
                 HeaderValue::from(self.retry_after.unwrap_or(RETRY_AFTER_SECONDS)),
             );
+        }
+        if self.status() == StatusCode::UNAUTHORIZED {
+            // The challenge RFC 6750 §3 asks a 401 to carry.
+            response
+                .headers_mut()
+                .insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
         }
         response
     }

@@ -6,8 +6,11 @@
 //! [`ConnectionSettings::max_connections`] are open at once (the rest wait in
 //! the kernel's accept queue, so descriptors never run out), and shutdown
 //! drains for at most [`ConnectionSettings::drain`] before closing what is left.
+//! With a [`Tls`] acceptor (`--tls-cert`, `--tls-key`) each connection first
+//! completes a TLS handshake (rustls), within the header timeout.
 
 use std::future::Future;
+use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::Duration;
 
@@ -17,9 +20,14 @@ use axum::Router;
 use hyper::body::Incoming;
 use hyper_util::rt::{TokioIo, TokioTimer};
 use hyper_util::service::TowerToHyperService;
+use tokio::io::{AsyncRead, AsyncWrite};
 use tokio::net::TcpListener;
 use tokio::sync::{watch, Semaphore};
 use tokio::task::JoinSet;
+use tokio_rustls::rustls;
+use tokio_rustls::rustls::pki_types::pem::PemObject;
+use tokio_rustls::rustls::pki_types::{CertificateDer, PrivateKeyDer};
+use tokio_rustls::TlsAcceptor;
 use tower::ServiceExt;
 
 /// Default time to send a request's headers, from a connection's opening or its previous answer.
@@ -85,11 +93,82 @@ impl ConnectionSettings {
     }
 }
 
-/// Serves `app` on `listener` until `shutdown` resolves, then drains.
+/// A certificate or key that could not be used for TLS.
+#[derive(Debug, thiserror::Error)]
+pub enum TlsError {
+    #[error("give both --tls-cert and --tls-key, or neither")]
+    Half,
+    #[error("reading {what} {}: {source}", path.display())]
+    Pem {
+        what: &'static str,
+        path: PathBuf,
+        #[source]
+        source: rustls::pki_types::pem::Error,
+    },
+    #[error("--tls-cert {}: no certificate in the file (PEM `CERTIFICATE` blocks)", path.display())]
+    NoCertificate { path: PathBuf },
+    #[error("the certificate and key can not serve TLS: {0}")]
+    Config(#[from] rustls::Error),
+}
+
+/// What TLS connections are accepted with.
+#[derive(Clone)]
+pub struct Tls(TlsAcceptor);
+
+impl Tls {
+    /// TLS from a PEM certificate chain and its PEM private key; `None` when
+    /// neither is given.
+    pub fn from_files(cert: Option<&Path>, key: Option<&Path>) -> Result<Option<Tls>, TlsError> {
+        let (cert, key) = match (cert, key) {
+            (None, None) => return Ok(None),
+            (Some(cert), Some(key)) => (cert, key),
+            _ => return Err(TlsError::Half),
+        };
+        fn pem(
+            what: &'static str,
+            path: &Path,
+        ) -> impl Fn(rustls::pki_types::pem::Error) -> TlsError {
+            let path = path.to_path_buf();
+            move |source| TlsError::Pem {
+                what,
+                path: path.clone(),
+                source,
+            }
+        }
+        let chain = CertificateDer::pem_file_iter(cert)
+            .map_err(pem("--tls-cert", cert))?
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(pem("--tls-cert", cert))?;
+        if chain.is_empty() {
+            return Err(TlsError::NoCertificate {
+                path: cert.to_path_buf(),
+            });
+        }
+        let key = PrivateKeyDer::from_pem_file(key).map_err(pem("--tls-key", key))?;
+        let mut config = rustls::ServerConfig::builder_with_provider(Arc::new(
+            rustls::crypto::ring::default_provider(),
+        ))
+        .with_safe_default_protocol_versions()?
+        .with_no_client_auth()
+        .with_single_cert(chain, key)?;
+        config.alpn_protocols = vec![b"http/1.1".to_vec()];
+        Ok(Some(Tls(TlsAcceptor::from(Arc::new(config)))))
+    }
+}
+
+impl std::fmt::Debug for Tls {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Tls")
+    }
+}
+
+/// Serves `app` on `listener` (over TLS when `tls` is given) until
+/// `shutdown` resolves, then drains.
 pub async fn serve(
     listener: TcpListener,
     app: Router,
     settings: ConnectionSettings,
+    tls: Option<Tls>,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
     let slots = Arc::new(Semaphore::new(settings.max_connections.max(1)));
@@ -115,26 +194,19 @@ pub async fn serve(
         };
         let _ = stream.set_nodelay(true);
         let app = app.clone();
-        let mut stop = stop_rx.clone();
+        let stop = stop_rx.clone();
         let header_timeout = settings.header_timeout;
+        let tls = tls.clone();
         connections.spawn(async move {
-            let service = app.map_request(|r: Request<Incoming>| r.map(Body::new));
-            let service = TowerToHyperService::new(service);
-            let mut builder = hyper::server::conn::http1::Builder::new();
-            builder
-                .timer(TokioTimer::new())
-                .header_read_timeout(header_timeout);
-            let connection = builder.serve_connection(TokioIo::new(stream), service);
-            let mut connection = std::pin::pin!(connection);
-            loop {
-                tokio::select! {
-                    _ = connection.as_mut() => break,
-                    changed = stop.changed() => {
-                        connection.as_mut().graceful_shutdown();
-                        if changed.is_err() {
-                            // The loop is gone; finish this connection as it is.
-                            let _ = connection.as_mut().await;
-                            break;
+            match tls {
+                None => serve_connection(stream, app, header_timeout, stop).await,
+                Some(Tls(acceptor)) => {
+                    // A handshake is held to the header timeout, as slow headers are.
+                    match tokio::time::timeout(header_timeout, acceptor.accept(stream)).await {
+                        Ok(Ok(stream)) => serve_connection(stream, app, header_timeout, stop).await,
+                        Ok(Err(e)) => tracing::debug!(error = %e, "TLS handshake failed"),
+                        Err(_) => {
+                            tracing::debug!("TLS handshake took longer than the header timeout")
                         }
                     }
                 }
@@ -158,6 +230,38 @@ pub async fn serve(
         connections.shutdown().await;
     }
     Ok(())
+}
+
+/// Serves one connection's requests until it closes, or gracefully once `stop` changes.
+async fn serve_connection<I>(
+    io: I,
+    app: Router,
+    header_timeout: Duration,
+    mut stop: watch::Receiver<bool>,
+) where
+    I: AsyncRead + AsyncWrite + Unpin + Send + 'static,
+{
+    let service = app.map_request(|r: Request<Incoming>| r.map(Body::new));
+    let service = TowerToHyperService::new(service);
+    let mut builder = hyper::server::conn::http1::Builder::new();
+    builder
+        .timer(TokioTimer::new())
+        .header_read_timeout(header_timeout);
+    let connection = builder.serve_connection(TokioIo::new(io), service);
+    let mut connection = std::pin::pin!(connection);
+    loop {
+        tokio::select! {
+            _ = connection.as_mut() => break,
+            changed = stop.changed() => {
+                connection.as_mut().graceful_shutdown();
+                if changed.is_err() {
+                    // The loop is gone; finish this connection as it is.
+                    let _ = connection.as_mut().await;
+                    break;
+                }
+            }
+        }
+    }
 }
 
 /// The soft limit on open files, where the platform says.
@@ -193,6 +297,33 @@ mod tests {
             ..ConnectionSettings::default()
         };
         assert!(fitted.check(Some(1024)).is_ok());
+    }
+
+    #[test]
+    fn tls_takes_a_certificate_and_its_key_or_says_what_is_wrong() {
+        let dir = tempfile::tempdir().unwrap();
+        let made = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+        let cert = dir.path().join("cert.pem");
+        let key = dir.path().join("key.pem");
+        std::fs::write(&cert, made.cert.pem()).unwrap();
+        std::fs::write(&key, made.key_pair.serialize_pem()).unwrap();
+        assert!(Tls::from_files(None, None).unwrap().is_none());
+        assert!(Tls::from_files(Some(&cert), Some(&key)).unwrap().is_some());
+        assert!(matches!(
+            Tls::from_files(Some(&cert), None),
+            Err(TlsError::Half)
+        ));
+        // The key given as the certificate: no CERTIFICATE block in it.
+        let e = Tls::from_files(Some(&key), Some(&key)).unwrap_err();
+        assert!(matches!(e, TlsError::NoCertificate { .. }), "{e}");
+        // Another certificate's key does not match this certificate.
+        let other = rcgen::generate_simple_self_signed(vec!["localhost".to_string()]).unwrap();
+        let wrong = dir.path().join("wrong.pem");
+        std::fs::write(&wrong, other.key_pair.serialize_pem()).unwrap();
+        let e = Tls::from_files(Some(&cert), Some(&wrong)).unwrap_err();
+        assert!(matches!(e, TlsError::Config(_)), "{e}");
+        let e = Tls::from_files(Some(&cert), Some(&dir.path().join("absent.pem"))).unwrap_err();
+        assert!(e.to_string().contains("--tls-key"), "{e}");
     }
 
     #[test]

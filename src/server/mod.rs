@@ -10,8 +10,10 @@
 //! it on a bound listener ([`listen`]: header timeout, connection cap, drain)
 //! until `shutdown` resolves. Handlers parse, check, call the domain and shape
 //! the answer; [`error`] maps every domain error to the API's codes. The API is
-//! documented in `proto-free-api.md`.
+//! documented in `proto-free-api.md`. Before any of that, [`access`] checks
+//! `Host`, `Origin`, the API key and its scope, and the key's rate.
 
+pub mod access;
 pub mod body;
 pub mod error;
 pub mod json;
@@ -20,6 +22,7 @@ pub mod routes;
 mod shed_log;
 
 use std::future::Future;
+use std::sync::Arc;
 use std::time::Instant;
 
 use axum::error_handling::HandleErrorLayer;
@@ -37,8 +40,14 @@ pub use crate::intake::limits::Limits;
 use crate::service::Service;
 use error::{ApiError, ErrorCode};
 
-/// The router with every route and layer.
+/// The router with every route and layer, open to every caller (for
+/// in-process use and tests; `befit serve` uses [`app_with`]).
 pub fn app(state: Service) -> Router {
+    app_with(state, Arc::new(access::Access::default()))
+}
+
+/// The router with every route and layer, behind `access`'s checks.
+pub fn app_with(state: Service, access: Arc<access::Access>) -> Router {
     let limits = state.limits().clone();
     // Watching the service must work while it is overloaded: these routes are
     // cheap, and skip the load shedding, concurrency limit and timeout.
@@ -84,6 +93,8 @@ pub fn app(state: Service) -> Router {
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(limits.max_body_bytes))
         .with_state(state.clone())
+        // After routing (it needs the matched route), before any body is read.
+        .layer(middleware::from_fn_with_state(access, access::guard))
         .layer(middleware::from_fn_with_state(state, record))
         // Failures are counted and summarised by `record`; internal errors log themselves once.
         .layer(TraceLayer::new_for_http().on_failure(()))
@@ -100,7 +111,7 @@ pub async fn run(
     settings: listen::ConnectionSettings,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    listen::serve(listener, app(state), settings, shutdown).await
+    listen::serve(listener, app(state), settings, None, shutdown).await
 }
 
 async fn not_found() -> ApiError {

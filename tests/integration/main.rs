@@ -5,6 +5,7 @@
 mod util;
 
 mod abuse;
+mod access;
 mod bank;
 mod bank_limits;
 mod binary;

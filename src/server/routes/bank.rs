@@ -4,6 +4,7 @@
 use std::sync::Arc;
 
 use axum::extract::{Query, State};
+use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 use serde_json::{json, Value};
@@ -17,6 +18,7 @@ use crate::encoders::Model;
 use crate::intake::image_source::{sources, ImageRef};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
+use crate::server::access::{self, Caller};
 use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::ApiJson;
 use crate::service::Service;
@@ -71,6 +73,7 @@ fn model_bank(service: &Service, model: &Model) -> Result<Arc<ModelBank>, ApiErr
 
 pub async fn append(
     State(service): State<Service>,
+    caller: Option<Extension<Caller>>,
     ApiJson(request): ApiJson<AppendRequest>,
 ) -> Result<Json<Value>, ApiError> {
     let engine = service.engine()?;
@@ -107,6 +110,7 @@ pub async fn append(
         .collect();
     // Answers only after the commit: the store syncs fully before append returns.
     let appended = blocking(move || bank.append(&new).map_err(ApiError::from)).await?;
+    access::audit(caller.as_deref(), "bank.append", appended.len());
     let out: Vec<AppendedOut> = appended
         .iter()
         .map(|a| AppendedOut {

@@ -6,6 +6,7 @@ use axum::body::Bytes;
 use axum::extract::rejection::BytesRejection;
 use axum::extract::State;
 use axum::http::{header, HeaderMap};
+use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 
@@ -13,6 +14,7 @@ use crate::encoders::{ImageSource, Registered};
 use crate::intake::image_source::{sources, ImageRef};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
+use crate::server::access::{self, Caller};
 use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::{body_rejection, is_json, parse_json};
 use crate::service::Service;
@@ -58,6 +60,7 @@ const RAW_IMAGE_TYPES: [&str; 4] = [
 
 pub async fn register(
     State(service): State<Service>,
+    caller: Option<Extension<Caller>>,
     headers: HeaderMap,
     body: Result<Bytes, BytesRejection>,
 ) -> Result<Json<RegisterResponse>, ApiError> {
@@ -110,6 +113,7 @@ pub async fn register(
         },
     ))
     .await?;
+    access::audit(caller.as_deref(), "images.register", registered.len());
     Ok(Json(RegisterResponse {
         images: registered.into_iter().map(RegisteredOut::from).collect(),
     }))

@@ -5,6 +5,7 @@ use std::path::Path;
 use std::sync::Arc;
 
 use axum::extract::State;
+use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 use serde_json::Value;
@@ -15,6 +16,7 @@ use crate::encoders::{Engine, Model};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
 use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
+use crate::server::access::{self, Caller, Scope};
 use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
 use crate::service::maps::{valid_map_name, MAX_MAP_NAME};
@@ -155,6 +157,7 @@ pub async fn calibration(
 
 pub async fn drift(
     State(service): State<Service>,
+    caller: Option<Extension<Caller>>,
     ApiJson(request): ApiJson<DriftRequest>,
 ) -> Result<Json<DriftResponse>, ApiError> {
     let engine = service.engine()?;
@@ -166,6 +169,8 @@ pub async fn drift(
         .model(Some(&request.to))
         .map_err(|e| ApiError::from(e).at("to"))?;
     if let Some(save) = &request.save_map {
+        // Saving a map changes every later run's rewards: an administration write.
+        access::require(caller.as_deref(), Scope::Admin)?;
         if !valid_map_name(&save.name) {
             let problem = Problem::MapName { max: MAX_MAP_NAME };
             return Err(Invalid::new("save_map.name", problem).into());
@@ -197,6 +202,7 @@ pub async fn drift(
                 map: fit.map.clone(),
             };
             service.maps().save(&save.name, map, save.replace)?;
+            access::audit(caller.as_deref(), "maps.save", 1);
             Some(save.name)
         }
         None => None,

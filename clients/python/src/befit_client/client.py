@@ -115,11 +115,13 @@ class Client:
       raises :class:`ModelMismatchError`. None: no pinning (the digests of
       the chunks of one call must still agree).
     - ``timeout``: seconds for each socket operation.
-    - ``retry``: when to retry (default ``RetryPolicy()``: 503 answers,
+    - ``retry``: when to retry (default ``RetryPolicy()``: 503 and 429 answers,
       dropped connections and timeouts).
     - ``limits``: the server's limits, used to split requests (default: read
       once from the server's ``GET /v1/limits`` on first use; ``Limits()``, the
       server's defaults, for a server without that route).
+    - ``key``: the API key of a server started with ``--keys`` (default:
+      ``$BEFIT_API_KEY``; none for a server without keys).
     - ``max_workers``: chunks of one call sent at once (the server batches
       concurrent requests together, so 2-4 can help on a big call).
 
@@ -137,8 +139,9 @@ class Client:
         limits: Optional[Limits] = None,
         max_workers: int = 1,
         transport: Optional[Transport] = None,
+        key: Optional[str] = None,
     ) -> None:
-        self.transport = transport or Transport(url, timeout=timeout, retry=retry or RetryPolicy())
+        self.transport = transport or Transport(url, timeout=timeout, retry=retry or RetryPolicy(), key=key)
         self.model = model
         self._limits: Optional[Limits] = limits
         self.max_workers = max(1, int(max_workers))

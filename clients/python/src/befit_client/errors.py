@@ -102,6 +102,37 @@ class ImageTooLargeError(ApiError):
     code_name = "image_too_large"
 
 
+class KeyRequiredError(ApiError):
+    """401 ``key_required``: the server has keys and the request had no valid
+    one (give ``key=`` or set ``BEFIT_API_KEY``)."""
+
+    code_name = "key_required"
+
+
+class ScopeMissingError(ApiError):
+    """403 ``scope_missing``: the key lacks the scope the route needs."""
+
+    code_name = "scope_missing"
+
+
+class CrossOriginError(ApiError):
+    code_name = "cross_origin"
+
+
+class HostRefusedError(ApiError):
+    """421 ``host_refused``: the server does not answer to the host name in
+    the URL (its operator adds names with ``--allow-host``)."""
+
+    code_name = "host_refused"
+
+
+class RateLimitedError(ApiError):
+    """429 ``rate_limited``: the key is over its rate; retried by default,
+    after the answer's ``Retry-After``."""
+
+    code_name = "rate_limited"
+
+
 class OverloadedError(ApiError):
     """503 ``overloaded``: the server shed the request; retried by default."""
 
@@ -134,6 +165,11 @@ ERROR_CLASSES: Dict[str, Type[ApiError]] = {
         UnsupportedMediaTypeError,
         BadImageError,
         ImageTooLargeError,
+        KeyRequiredError,
+        ScopeMissingError,
+        CrossOriginError,
+        HostRefusedError,
+        RateLimitedError,
         OverloadedError,
         NotReadyError,
         InternalError,

@@ -139,15 +139,16 @@ class ShardedClient:
         sleep: Callable[[float], None] = time.sleep,
         clock: Callable[[], float] = time.monotonic,
         rng: Optional[random.Random] = None,
+        key: Optional[str] = None,
     ) -> None:
         if isinstance(urls, str) or not urls:
             raise ValueError("ShardedClient takes a list of one or more replica URLs")
         self.replicas: Dict[str, Client] = {}
         for url in urls:
-            replica = Client(url, model=model, timeout=timeout, retry=REPLICA_RETRY, limits=limits)
+            replica = Client(url, model=model, timeout=timeout, retry=REPLICA_RETRY, limits=limits, key=key)
             self.replicas.setdefault(replica.transport.base_url, replica)
         self.bank = (
-            Client(bank_url, model=model, timeout=timeout, retry=retry or RetryPolicy(), limits=limits)
+            Client(bank_url, model=model, timeout=timeout, retry=retry or RetryPolicy(), limits=limits, key=key)
             if bank_url is not None
             else None
         )

@@ -1,6 +1,7 @@
 """HTTP with retries: one keep-alive connection per thread, exponential
-backoff with jitter on 503 answers and dropped connections, ``Retry-After``
-honoured.
+backoff with jitter on 503 and 429 answers and dropped connections,
+``Retry-After`` honoured; the API key, when there is one, in
+``Authorization: Bearer``.
 
 Every route the client uses is safe to repeat (rewards and vectors are pure
 functions of the request, image registration is idempotent), so a request
@@ -12,7 +13,9 @@ from __future__ import annotations
 import email.utils
 import http.client
 import logging
+import os
 import random
+import ssl
 import socket
 import threading
 import time
@@ -45,7 +48,8 @@ class RetryPolicy:
     jitter: float = 0.5
     max_retry_after: float = 60.0
     deadline: Optional[float] = 300.0
-    retry_statuses: FrozenSet[int] = field(default_factory=lambda: frozenset({503}))
+    # 503: shed or loading; 429: over the key's rate. Both say when to come back.
+    retry_statuses: FrozenSet[int] = field(default_factory=lambda: frozenset({503, 429}))
     retry_on_timeout: bool = True
     # A refused connection before this transport ever had an answer means no
     # server is listening: fail at once instead of retrying for seconds. Once
@@ -73,6 +77,18 @@ class RetryPolicy:
 
 
 NO_RETRY = RetryPolicy(max_attempts=1)
+
+#: The environment variable a key is read from when none is given.
+KEY_ENV = "BEFIT_API_KEY"
+
+
+def resolve_key(key: Optional[str]) -> Optional[str]:
+    """The key given, else ``$BEFIT_API_KEY``, else None (a server without keys)."""
+    if key is None:
+        key = os.environ.get(KEY_ENV) or None
+    if key is not None and (not key.strip() or any(c in key for c in "\r\n")):
+        raise ValueError(f"an API key is one line of text (from `befit keys new`); check key= or ${KEY_ENV}")
+    return key.strip() if key is not None else None
 
 
 def parse_retry_after(value: Optional[str], now: Optional[float] = None) -> Optional[float]:
@@ -115,8 +131,10 @@ class Transport:
     """Sends requests to one befit server, retrying as ``retry`` says.
 
     ``timeout`` bounds each socket operation (connect, each send, each read),
-    in seconds. ``sleep``, ``clock`` and ``rng`` can be replaced (tests,
-    simulations).
+    in seconds. ``key`` is the API key (default: ``$BEFIT_API_KEY``); it is
+    sent on every request and never logged. ``ssl_context`` verifies an
+    ``https`` server (e.g. one trusting a private CA's certificate).
+    ``sleep``, ``clock`` and ``rng`` can be replaced (tests, simulations).
     """
 
     def __init__(
@@ -128,6 +146,8 @@ class Transport:
         sleep: Callable[[float], None] = time.sleep,
         rng: Optional[random.Random] = None,
         clock: Callable[[], float] = time.monotonic,
+        key: Optional[str] = None,
+        ssl_context: Optional[ssl.SSLContext] = None,
     ) -> None:
         parts = urllib.parse.urlsplit(url if "://" in url else "http://" + url)
         if parts.scheme not in ("http", "https") or not parts.hostname:
@@ -139,6 +159,8 @@ class Transport:
         self.timeout = timeout
         self.retry = retry or RetryPolicy()
         self.user_agent = user_agent
+        self._key = resolve_key(key)
+        self.ssl_context = ssl_context
         self.sleep = sleep
         self.clock = clock
         self.rng = rng or random.Random()
@@ -149,6 +171,14 @@ class Transport:
         self.retries_done = 0
         self.answered = False  # some request got an HTTP answer
 
+    def __repr__(self) -> str:
+        # The key stays out of reprs, and so out of logs and tracebacks.
+        return f"Transport({self.base_url!r}, key={'set' if self._key else None})"
+
+    @property
+    def has_key(self) -> bool:
+        return self._key is not None
+
     @property
     def base_url(self) -> str:
         return f"{self.scheme}://{self.host}:{self.port}{self.prefix}"
@@ -156,8 +186,10 @@ class Transport:
     def _connection(self) -> http.client.HTTPConnection:
         conn = getattr(self._local, "conn", None)
         if conn is None:
-            cls = http.client.HTTPSConnection if self.scheme == "https" else http.client.HTTPConnection
-            conn = cls(self.host, self.port, timeout=self.timeout)
+            if self.scheme == "https":
+                conn = http.client.HTTPSConnection(self.host, self.port, timeout=self.timeout, context=self.ssl_context)
+            else:
+                conn = http.client.HTTPConnection(self.host, self.port, timeout=self.timeout)
             self._local.conn = conn
         return conn
 
@@ -199,6 +231,8 @@ class Transport:
         of the last attempt (:class:`ApiError` or :class:`TransportError`)."""
         policy = retry or self.retry
         headers = {"User-Agent": self.user_agent, "Accept": "application/json"}
+        if self._key is not None:
+            headers["Authorization"] = f"Bearer {self._key}"
         if body is not None:
             headers["Content-Type"] = content_type
         started = self.clock()
