@@ -8,10 +8,10 @@ use super::contrast::{contrast_report, ContrastReport};
 use super::hinge::{hinge_report, HingeReport, DEFAULT_BATCH_IMAGES, DEFAULT_MARGIN};
 use super::pairs::{ProbeVectors, Similarities};
 use super::retrieval::{retrieval_report, RetrievalReport};
-use super::summary::Distribution;
+use super::summary::{round_range, Distribution};
 use super::StatsError;
 
-/// Default number of histogram bins over [-1, 1] (width 0.05).
+/// Default number of histogram bins over the report's round range.
 pub const DEFAULT_HISTOGRAM_BINS: usize = 40;
 
 /// Most histogram bins accepted; more would only bloat reports.
@@ -25,7 +25,8 @@ pub struct CalibrationOptions {
     pub margin: f64,
     /// Images per batch for the batch-averaged hinge losses, at least 2.
     pub batch_images: usize,
-    /// Histogram bins over [-1, 1], 1 to [`MAX_HISTOGRAM_BINS`].
+    /// Histogram bins over the report's round range of cosines
+    /// ([`round_range`]), 1 to [`MAX_HISTOGRAM_BINS`].
     pub histogram_bins: usize,
 }
 
@@ -153,14 +154,31 @@ pub fn calibrate(
 ) -> Result<CalibrationReport, StatsError> {
     options.validate()?;
     vectors.check()?;
-    calibrate_checked(vectors, &vectors.similarities(), options)
+    let sims = vectors.similarities();
+    let range = cosine_range(&[&sims]);
+    calibrate_checked(vectors, &sims, options, range)
 }
 
-/// [`calibrate`] on vectors already checked, with their similarities.
+/// The round histogram range ([`round_range`]) enclosing every cosine of
+/// the given similarities: all image-caption pairs and all contrast pairs.
+pub(crate) fn cosine_range(all: &[&Similarities]) -> (f64, f64) {
+    let (min, max) = all
+        .iter()
+        .flat_map(|sims| sims.s.iter().chain(&sims.contrast_cos))
+        .filter(|v| v.is_finite())
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
+            (lo.min(v), hi.max(v))
+        });
+    round_range(min, max)
+}
+
+/// [`calibrate`] on vectors already checked, with their similarities and
+/// the histograms' range.
 pub(crate) fn calibrate_checked(
     v: &ProbeVectors,
     sims: &Similarities,
     options: &CalibrationOptions,
+    range: (f64, f64),
 ) -> Result<CalibrationReport, StatsError> {
     let n = v.image_count();
     if n < 2 {
@@ -186,15 +204,21 @@ pub(crate) fn calibrate_checked(
     let contrast_true: Vec<f64> = v.contrast_from.iter().map(|&c| sims.true_cos[c]).collect();
 
     let cosines = CosineReport {
-        true_pairs: Distribution::of(sims.true_cos.clone(), bins, "true-pair cosines")?,
-        hardest_negatives: Distribution::of(hardest_per_pair, bins, "hardest-negative cosines")?,
-        all_negatives: Distribution::of(all_negatives, bins, "negative cosines")?,
+        true_pairs: Distribution::of(sims.true_cos.clone(), bins, range, "true-pair cosines")?,
+        hardest_negatives: Distribution::of(
+            hardest_per_pair,
+            bins,
+            range,
+            "hardest-negative cosines",
+        )?,
+        all_negatives: Distribution::of(all_negatives, bins, range, "negative cosines")?,
         contrasts: if sims.contrast_cos.is_empty() {
             None
         } else {
             Some(Distribution::of(
                 sims.contrast_cos.clone(),
                 bins,
+                range,
                 "contrast cosines",
             )?)
         },
