@@ -47,7 +47,9 @@ pub use continuity::{ContinuityError, ContinuityMap, FittedMap};
 pub use drift::{drift, DriftOptions, DriftReport};
 pub use export::{calibration_export, drift_export, write_json, CalibrationExport, DriftExport};
 pub use pairs::ProbeVectors;
-pub use report::{calibration_html, drift_html};
+pub use report::{
+    calibration_html, drift_headline, drift_html, sha256_hex, HeadlineThresholds, Provenance,
+};
 pub use reward_map::{MapBundle, RewardMap, RewardMapError};
 
 /// Why a statistic could not be computed; each message says what to change.
