@@ -17,6 +17,41 @@ pub const DEFAULT_HISTOGRAM_BINS: usize = 40;
 /// Most histogram bins accepted; more would only bloat reports.
 pub const MAX_HISTOGRAM_BINS: usize = 2000;
 
+/// Example pairs listed per kind (lowest true pairs, lost contrasts): a
+/// screenful to look at, not a statistic.
+pub const EXAMPLE_PAIRS: usize = 8;
+
+/// One pair shown as an example, with its image and captions.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ExamplePair {
+    /// The image, as named in the probe set.
+    pub image: String,
+    /// Line of the image's row in the probe file.
+    pub image_line: usize,
+    /// The true caption.
+    pub caption: String,
+    /// cos(image, true caption).
+    pub true_cos: f64,
+    /// For a contrast: the altered caption; null for a true pair.
+    pub contrast: Option<String>,
+    /// For a contrast: what was changed.
+    pub changed: Option<String>,
+    /// For a contrast: cos(image, contrast).
+    pub contrast_cos: Option<f64>,
+}
+
+/// Pairs to look at: where the reward is least sure, and where it is wrong.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Examples {
+    /// The [`EXAMPLE_PAIRS`] true pairs of lowest cosine, lowest first, ties
+    /// by caption order.
+    pub lowest_true: Vec<ExamplePair>,
+    /// Up to [`EXAMPLE_PAIRS`] contrasts not beaten by their true caption
+    /// (contrast cosine >= true cosine), by increasing true - contrast gap,
+    /// ties by contrast order.
+    pub lost_contrasts: Vec<ExamplePair>,
+}
+
 /// Settings of a calibration.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
@@ -142,6 +177,8 @@ pub struct CalibrationReport {
     pub contrast: ContrastReport,
     /// Suggested reward scales.
     pub suggested: SuggestedCalibration,
+    /// Pairs to look at.
+    pub examples: Examples,
 }
 
 /// Calibrates one bundle: every figure of [`CalibrationReport`].
@@ -223,6 +260,7 @@ pub(crate) fn calibrate_checked(
             )?)
         },
     };
+    let examples = examples(v, sims, &contrast_true);
     let suggested = suggest(
         cosines.true_pairs.quantiles.p50,
         cosines.hardest_negatives.quantiles.p50,
@@ -241,7 +279,53 @@ pub(crate) fn calibrate_checked(
         retrieval: retrieval_report(s, &v.caption_image),
         contrast: contrast_report(&contrast_true, &sims.contrast_cos, &v.contrast_labels),
         suggested,
+        examples,
     })
+}
+
+fn examples(v: &ProbeVectors, sims: &Similarities, contrast_true: &[f64]) -> Examples {
+    let true_pair = |c: usize| {
+        let i = v.caption_image[c];
+        ExamplePair {
+            image: v.image_names[i].clone(),
+            image_line: v.image_lines[i],
+            caption: v.caption_texts[c].clone(),
+            true_cos: sims.true_cos[c],
+            contrast: None,
+            changed: None,
+            contrast_cos: None,
+        }
+    };
+    let mut order: Vec<usize> = (0..sims.true_cos.len()).collect();
+    order.sort_by(|&a, &b| {
+        sims.true_cos[a]
+            .total_cmp(&sims.true_cos[b])
+            .then(a.cmp(&b))
+    });
+    let lowest_true = order
+        .into_iter()
+        .take(EXAMPLE_PAIRS)
+        .map(true_pair)
+        .collect();
+    let gap = |k: usize| contrast_true[k] - sims.contrast_cos[k];
+    let mut lost: Vec<usize> = (0..contrast_true.len())
+        .filter(|&k| gap(k) <= 0.0)
+        .collect();
+    lost.sort_by(|&a, &b| gap(a).total_cmp(&gap(b)).then(a.cmp(&b)));
+    let lost_contrasts = lost
+        .into_iter()
+        .take(EXAMPLE_PAIRS)
+        .map(|k| ExamplePair {
+            contrast: Some(v.contrast_texts[k].clone()),
+            changed: Some(v.contrast_labels[k].clone()),
+            contrast_cos: Some(sims.contrast_cos[k]),
+            ..true_pair(v.contrast_from[k])
+        })
+        .collect();
+    Examples {
+        lowest_true,
+        lost_contrasts,
+    }
 }
 
 fn suggest(median_true: f64, median_hardest_negative: f64) -> SuggestedCalibration {
@@ -304,6 +388,10 @@ mod tests {
         assert!((r.suggested.affine.as_ref().unwrap().a - 20.0).abs() < 1e-9);
         assert_eq!(r.counts.captions, 3);
         assert!(r.cosines.contrasts.is_none());
+        // Lowest true pair: c2 (0.3), then c1 (0.65), then c0 (0.8).
+        let lowest: Vec<f64> = r.examples.lowest_true.iter().map(|e| e.true_cos).collect();
+        assert_eq!(lowest, vec![0.3, 0.65, 0.8]);
+        assert!(r.examples.lost_contrasts.is_empty());
     }
 
     #[test]

@@ -211,6 +211,32 @@ def cosine_range(*vs):
     return round_range(np.concatenate([np.concatenate([v.s.ravel(), v.contrast_cos]) for v in vs]))
 
 
+EXAMPLE_PAIRS = 8
+
+
+def examples(v):
+    """docs/statistics.md, `examples`: lowest true pairs; contrasts not beaten."""
+    raw = v.raw
+
+    def pair(c):
+        i = int(v.caption_image[c])
+        return {"image": raw["image_names"][i], "image_line": raw["image_lines"][i],
+                "caption": raw["caption_texts"][c], "true_cos": float(v.true_cos[c])}
+
+    lowest = [pair(int(c)) for c in np.lexsort((np.arange(v.m), v.true_cos))[:EXAMPLE_PAIRS]]
+    t = v.true_cos[v.contrast_from]
+    gap = t - v.contrast_cos
+    lost_idx = np.nonzero(gap <= 0)[0]
+    lost_idx = lost_idx[np.lexsort((lost_idx, gap[lost_idx]))][:EXAMPLE_PAIRS]
+    lost = []
+    for k in lost_idx:
+        p = pair(int(v.contrast_from[k]))
+        p.update({"contrast": raw["contrast_texts"][k], "changed": raw["contrast_labels"][k],
+                  "contrast_cos": float(v.contrast_cos[k])})
+        lost.append(p)
+    return {"lowest_true": lowest, "lost_contrasts": lost}
+
+
 def calibration(v, options, rng):
     """`rng` is the histogram range befit used, checked against
     cosine_range by the caller, so that bin edges are the same doubles."""
@@ -242,6 +268,7 @@ def calibration(v, options, rng):
         "cosines": cosines,
         "retrieval": retrieval_report(v),
         "contrast": contrast_report(v),
+        "examples": examples(v),
         "suggested": {
             "median_true": m_t,
             "median_hardest_negative": m_h,

@@ -178,6 +178,8 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
     ));
     out.push_str("<p class=\"note\">Means per positive pair. SH: sum of hinges; MH: max of hinges (hardest negative); captions/images: the caption-negative and image-negative terms.</p>");
 
+    examples(r, out);
+
     out.push_str("<h2>Contrast captions</h2>");
     let ct = &r.contrast;
     if ct.overall.count == 0 {
@@ -241,6 +243,57 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
     out.push_str(&svg::roc_curves(
         "ROC of true against contrast cosines, per changed fact",
         &curves,
+    ));
+}
+
+/// The lowest true pairs and the contrasts the reward got wrong.
+fn examples(r: &CalibrationReport, out: &mut String) {
+    out.push_str("<h2>Pairs to look at</h2>");
+    let ex = &r.examples;
+    let rows: Vec<Vec<String>> = ex
+        .lowest_true
+        .iter()
+        .map(|e| {
+            vec![
+                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_text(&e.caption),
+                td(number(e.true_cos)),
+            ]
+        })
+        .collect();
+    out.push_str("<p>The true pairs of lowest cosine:</p>");
+    out.push_str(&table(&["image", "true caption", "cosine"], &rows));
+    if ex.lost_contrasts.is_empty() {
+        out.push_str("<p>Every contrast scored strictly below its true caption.</p>");
+        return;
+    }
+    let rows: Vec<Vec<String>> = ex
+        .lost_contrasts
+        .iter()
+        .map(|e| {
+            vec![
+                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_text(e.changed.as_deref().unwrap_or("")),
+                td_text(&e.caption),
+                td_text(e.contrast.as_deref().unwrap_or("")),
+                td(number(e.true_cos)),
+                td(maybe(e.contrast_cos)),
+            ]
+        })
+        .collect();
+    out.push_str(
+        "<p>Contrasts the reward got wrong (scored at or above the true caption), worst first:</p>",
+    );
+    out.push_str(&table(
+        &[
+            "image",
+            "changed",
+            "true caption",
+            "contrast",
+            "true cos",
+            "contrast cos",
+        ],
+        &rows,
     ));
 }
 
