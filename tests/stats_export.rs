@@ -18,7 +18,7 @@ use std::path::{Path, PathBuf};
 use befit::probe::{embed_probe, EmbedOptions, ImageFiles, LoadOptions, ProbeSet};
 use befit::stats::{
     calibrate, calibration_export, calibration_html, drift_export, drift_html, write_json,
-    CalibrationOptions, DriftOptions, ProbeVectors,
+    CalibrationOptions, DriftOptions, MapBundle, ProbeVectors, Provenance,
 };
 use befit::vectors::{EmbedError, Embedder};
 use ndarray::Array2;
@@ -340,6 +340,18 @@ fn lattice_pair(rng: &mut Rng) -> (ProbeVectors, ProbeVectors) {
     (a, b)
 }
 
+/// Provenance of a synthetic set: made-up digests, no probe file.
+fn provenance(ids: &[&str]) -> Provenance {
+    let bundles = ids
+        .iter()
+        .map(|id| MapBundle {
+            id: id.to_string(),
+            digest: "sha256:synthetic".into(),
+        })
+        .collect();
+    Provenance::now(bundles, befit::stats::sha256_hex(b"synthetic"), 0)
+}
+
 fn export_dir() -> PathBuf {
     std::env::var_os("BEFIT_EXPORT_DIR")
         .map(PathBuf::from)
@@ -388,12 +400,15 @@ fn write_reference_exports() {
     // The pages, to look at; not checked by the reference test.
     std::fs::write(
         dir.join("calibration-realistic.html"),
-        calibration_html(&realistic.report),
+        calibration_html(&realistic.report, &provenance(&["blocks@v1"])),
     )
     .unwrap();
     std::fs::write(
         dir.join("drift-realistic.html"),
-        drift_html(&drift_realistic.report),
+        drift_html(
+            &drift_realistic.report,
+            &provenance(&["blocks@v1", "blocks@v2"]),
+        ),
     )
     .unwrap();
 
@@ -517,6 +532,10 @@ fn probe_file_to_report() {
     assert_eq!(report.counts.images, 5);
     assert_eq!(report.counts.captions, 10);
     assert_eq!(report.contrast.by_label["colour"].count, 5);
-    let html = calibration_html(&report);
+    let bytes = std::fs::read(&file).unwrap();
+    let html = calibration_html(
+        &report,
+        &Provenance::now(vec![], befit::stats::sha256_hex(&bytes), 6),
+    );
     assert!(html.contains("hashing@v1"));
 }

@@ -75,6 +75,23 @@ pub(crate) fn progress_bar(label: &str) -> ProgressBar {
     bar
 }
 
+/// The probe file's provenance: sha256 of its bytes and its non-blank lines.
+fn probe_provenance(
+    path: &Path,
+    bundles: Vec<stats::MapBundle>,
+) -> anyhow::Result<stats::Provenance> {
+    let bytes = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+    let rows = bytes
+        .split(|&b| b == b'\n')
+        .filter(|line| line.iter().any(|b| !b.is_ascii_whitespace()))
+        .count();
+    Ok(stats::Provenance::now(
+        bundles,
+        stats::sha256_hex(&bytes),
+        rows,
+    ))
+}
+
 fn load_probe(path: &Path, skip_bad: bool) -> anyhow::Result<ProbeSet> {
     let loaded = ProbeSet::load(
         path,
@@ -139,13 +156,15 @@ pub fn calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
     options.validate()?;
     let set = load_probe(&a.probe, a.output.skip_bad)?;
     let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
+    let bundle = model.map_bundle();
     let vectors = embed(&model, &set, a.output.skip_bad)?;
     let report = stats::calibrate(&vectors, &options)?;
     if let Some(warning) = small_probe_warning(report.counts.images) {
         eprintln!("befit: warning: {warning}");
     }
     if let Some(path) = &a.output.report {
-        write_text(path, &stats::calibration_html(&report))?;
+        let provenance = probe_provenance(&a.probe, vec![bundle])?;
+        write_text(path, &stats::calibration_html(&report, &provenance))?;
         eprintln!("befit: report written to {}", path.display());
     }
     if let Some(path) = &a.output.export {
@@ -190,7 +209,8 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
         eprintln!("befit: warning: {warning}");
     }
     if let Some(path) = &a.output.report {
-        write_text(path, &stats::drift_html(&report))?;
+        let provenance = probe_provenance(&a.probe, vec![ends.1.clone(), ends.0.clone()])?;
+        write_text(path, &stats::drift_html(&report, &provenance))?;
         eprintln!("befit: report written to {}", path.display());
     }
     if let Some(path) = &a.output.export {

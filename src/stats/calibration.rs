@@ -8,14 +8,49 @@ use super::contrast::{contrast_report, ContrastReport};
 use super::hinge::{hinge_report, HingeReport, DEFAULT_BATCH_IMAGES, DEFAULT_MARGIN};
 use super::pairs::{ProbeVectors, Similarities};
 use super::retrieval::{retrieval_report, RetrievalReport};
-use super::summary::Distribution;
+use super::summary::{round_range, Distribution};
 use super::StatsError;
 
-/// Default number of histogram bins over [-1, 1] (width 0.05).
+/// Default number of histogram bins over the report's round range.
 pub const DEFAULT_HISTOGRAM_BINS: usize = 40;
 
 /// Most histogram bins accepted; more would only bloat reports.
 pub const MAX_HISTOGRAM_BINS: usize = 2000;
+
+/// Example pairs listed per kind (lowest true pairs, lost contrasts): a
+/// screenful to look at, not a statistic.
+pub const EXAMPLE_PAIRS: usize = 8;
+
+/// One pair shown as an example, with its image and captions.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ExamplePair {
+    /// The image, as named in the probe set.
+    pub image: String,
+    /// Line of the image's row in the probe file.
+    pub image_line: usize,
+    /// The true caption.
+    pub caption: String,
+    /// cos(image, true caption).
+    pub true_cos: f64,
+    /// For a contrast: the altered caption; null for a true pair.
+    pub contrast: Option<String>,
+    /// For a contrast: what was changed.
+    pub changed: Option<String>,
+    /// For a contrast: cos(image, contrast).
+    pub contrast_cos: Option<f64>,
+}
+
+/// Pairs to look at: where the reward is least sure, and where it is wrong.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Examples {
+    /// The [`EXAMPLE_PAIRS`] true pairs of lowest cosine, lowest first, ties
+    /// by caption order.
+    pub lowest_true: Vec<ExamplePair>,
+    /// Up to [`EXAMPLE_PAIRS`] contrasts not beaten by their true caption
+    /// (contrast cosine >= true cosine), by increasing true - contrast gap,
+    /// ties by contrast order.
+    pub lost_contrasts: Vec<ExamplePair>,
+}
 
 /// Settings of a calibration.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -25,7 +60,8 @@ pub struct CalibrationOptions {
     pub margin: f64,
     /// Images per batch for the batch-averaged hinge losses, at least 2.
     pub batch_images: usize,
-    /// Histogram bins over [-1, 1], 1 to [`MAX_HISTOGRAM_BINS`].
+    /// Histogram bins over the report's round range of cosines
+    /// ([`round_range`]), 1 to [`MAX_HISTOGRAM_BINS`].
     pub histogram_bins: usize,
 }
 
@@ -141,6 +177,8 @@ pub struct CalibrationReport {
     pub contrast: ContrastReport,
     /// Suggested reward scales.
     pub suggested: SuggestedCalibration,
+    /// Pairs to look at.
+    pub examples: Examples,
 }
 
 /// Calibrates one bundle: every figure of [`CalibrationReport`].
@@ -153,14 +191,31 @@ pub fn calibrate(
 ) -> Result<CalibrationReport, StatsError> {
     options.validate()?;
     vectors.check()?;
-    calibrate_checked(vectors, &vectors.similarities(), options)
+    let sims = vectors.similarities();
+    let range = cosine_range(&[&sims]);
+    calibrate_checked(vectors, &sims, options, range)
 }
 
-/// [`calibrate`] on vectors already checked, with their similarities.
+/// The round histogram range ([`round_range`]) enclosing every cosine of
+/// the given similarities: all image-caption pairs and all contrast pairs.
+pub(crate) fn cosine_range(all: &[&Similarities]) -> (f64, f64) {
+    let (min, max) = all
+        .iter()
+        .flat_map(|sims| sims.s.iter().chain(&sims.contrast_cos))
+        .filter(|v| v.is_finite())
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
+            (lo.min(v), hi.max(v))
+        });
+    round_range(min, max)
+}
+
+/// [`calibrate`] on vectors already checked, with their similarities and
+/// the histograms' range.
 pub(crate) fn calibrate_checked(
     v: &ProbeVectors,
     sims: &Similarities,
     options: &CalibrationOptions,
+    range: (f64, f64),
 ) -> Result<CalibrationReport, StatsError> {
     let n = v.image_count();
     if n < 2 {
@@ -186,19 +241,26 @@ pub(crate) fn calibrate_checked(
     let contrast_true: Vec<f64> = v.contrast_from.iter().map(|&c| sims.true_cos[c]).collect();
 
     let cosines = CosineReport {
-        true_pairs: Distribution::of(sims.true_cos.clone(), bins, "true-pair cosines")?,
-        hardest_negatives: Distribution::of(hardest_per_pair, bins, "hardest-negative cosines")?,
-        all_negatives: Distribution::of(all_negatives, bins, "negative cosines")?,
+        true_pairs: Distribution::of(sims.true_cos.clone(), bins, range, "true-pair cosines")?,
+        hardest_negatives: Distribution::of(
+            hardest_per_pair,
+            bins,
+            range,
+            "hardest-negative cosines",
+        )?,
+        all_negatives: Distribution::of(all_negatives, bins, range, "negative cosines")?,
         contrasts: if sims.contrast_cos.is_empty() {
             None
         } else {
             Some(Distribution::of(
                 sims.contrast_cos.clone(),
                 bins,
+                range,
                 "contrast cosines",
             )?)
         },
     };
+    let examples = examples(v, sims, &contrast_true);
     let suggested = suggest(
         cosines.true_pairs.quantiles.p50,
         cosines.hardest_negatives.quantiles.p50,
@@ -217,7 +279,53 @@ pub(crate) fn calibrate_checked(
         retrieval: retrieval_report(s, &v.caption_image),
         contrast: contrast_report(&contrast_true, &sims.contrast_cos, &v.contrast_labels),
         suggested,
+        examples,
     })
+}
+
+fn examples(v: &ProbeVectors, sims: &Similarities, contrast_true: &[f64]) -> Examples {
+    let true_pair = |c: usize| {
+        let i = v.caption_image[c];
+        ExamplePair {
+            image: v.image_names[i].clone(),
+            image_line: v.image_lines[i],
+            caption: v.caption_texts[c].clone(),
+            true_cos: sims.true_cos[c],
+            contrast: None,
+            changed: None,
+            contrast_cos: None,
+        }
+    };
+    let mut order: Vec<usize> = (0..sims.true_cos.len()).collect();
+    order.sort_by(|&a, &b| {
+        sims.true_cos[a]
+            .total_cmp(&sims.true_cos[b])
+            .then(a.cmp(&b))
+    });
+    let lowest_true = order
+        .into_iter()
+        .take(EXAMPLE_PAIRS)
+        .map(true_pair)
+        .collect();
+    let gap = |k: usize| contrast_true[k] - sims.contrast_cos[k];
+    let mut lost: Vec<usize> = (0..contrast_true.len())
+        .filter(|&k| gap(k) <= 0.0)
+        .collect();
+    lost.sort_by(|&a, &b| gap(a).total_cmp(&gap(b)).then(a.cmp(&b)));
+    let lost_contrasts = lost
+        .into_iter()
+        .take(EXAMPLE_PAIRS)
+        .map(|k| ExamplePair {
+            contrast: Some(v.contrast_texts[k].clone()),
+            changed: Some(v.contrast_labels[k].clone()),
+            contrast_cos: Some(sims.contrast_cos[k]),
+            ..true_pair(v.contrast_from[k])
+        })
+        .collect();
+    Examples {
+        lowest_true,
+        lost_contrasts,
+    }
 }
 
 fn suggest(median_true: f64, median_hardest_negative: f64) -> SuggestedCalibration {
@@ -280,6 +388,10 @@ mod tests {
         assert!((r.suggested.affine.as_ref().unwrap().a - 20.0).abs() < 1e-9);
         assert_eq!(r.counts.captions, 3);
         assert!(r.cosines.contrasts.is_none());
+        // Lowest true pair: c2 (0.3), then c1 (0.65), then c0 (0.8).
+        let lowest: Vec<f64> = r.examples.lowest_true.iter().map(|e| e.true_cos).collect();
+        assert_eq!(lowest, vec![0.3, 0.65, 0.8]);
+        assert!(r.examples.lost_contrasts.is_empty());
     }
 
     #[test]

@@ -6,6 +6,9 @@ use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
 
+use super::intervals::{wilson, Interval};
+use super::roc::{roc, Roc};
+
 /// How often true captions beat their contrasts, for one label or overall.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ContrastFigures {
@@ -20,6 +23,13 @@ pub struct ContrastFigures {
     /// Mean of cos(image, true caption) - cos(image, contrast); null when
     /// there are no pairs.
     pub mean_gap: Option<f64>,
+    /// 95 % Wilson score interval of `rate` (see [`super::intervals`]);
+    /// null when there are no pairs.
+    pub rate_interval: Option<Interval>,
+    /// Area under the ROC curve of the true captions' cosines against the
+    /// contrasts' cosines, unpaired (see [`super::roc`]); null when there are
+    /// no pairs.
+    pub auc: Option<f64>,
 }
 
 /// Contrast figures overall and per `changed` label.
@@ -29,6 +39,9 @@ pub struct ContrastReport {
     pub overall: ContrastFigures,
     /// Per label, in label order.
     pub by_label: BTreeMap<String, ContrastFigures>,
+    /// ROC curve of the true captions' cosines against the contrasts' per
+    /// label, in label order.
+    pub roc: BTreeMap<String, Roc>,
 }
 
 #[derive(Default)]
@@ -37,6 +50,8 @@ struct Tally {
     wins: usize,
     ties: usize,
     gap_sum: f64,
+    true_cos: Vec<f64>,
+    contrast_cos: Vec<f64>,
 }
 
 impl Tally {
@@ -45,6 +60,12 @@ impl Tally {
         self.wins += usize::from(true_cos > contrast_cos);
         self.ties += usize::from(true_cos == contrast_cos);
         self.gap_sum += true_cos - contrast_cos;
+        self.true_cos.push(true_cos);
+        self.contrast_cos.push(contrast_cos);
+    }
+
+    fn roc(&self) -> Option<Roc> {
+        roc(&self.true_cos, &self.contrast_cos)
     }
 
     fn figures(&self) -> ContrastFigures {
@@ -56,6 +77,8 @@ impl Tally {
             ties: self.ties,
             rate: some(self.wins as f64 / n),
             mean_gap: some(self.gap_sum / n),
+            rate_interval: wilson(self.wins, self.count),
+            auc: self.roc().map(|r| r.auc),
         }
     }
 }
@@ -75,6 +98,10 @@ pub(crate) fn contrast_report(
     }
     ContrastReport {
         overall: overall.figures(),
+        roc: by_label
+            .iter()
+            .filter_map(|(k, v)| Some((k.to_string(), v.roc()?)))
+            .collect(),
         by_label: by_label
             .into_iter()
             .map(|(k, v)| (k.to_string(), v.figures()))
@@ -102,6 +129,14 @@ mod tests {
         assert!((shape.mean_gap.unwrap() + 0.3).abs() < 1e-12);
         assert!((r.overall.rate.unwrap() - 1.0 / 3.0).abs() < 1e-12);
         assert!((r.overall.mean_gap.unwrap() + 0.1 / 3.0).abs() < 1e-12);
+        // colour's ROC: positives {0.8, 0.5} against negatives {0.6, 0.5}:
+        // 0.8 beats both (2), 0.5 ties 0.5 (0.5): 2.5 / 4 (the Mann-Whitney
+        // count of Hanley and McNeil 1982).
+        assert!((colour.auc.unwrap() - 0.625).abs() < 1e-12);
+        assert_eq!(r.roc["colour"].points.last(), Some(&[1.0, 1.0]));
+        // Wilson interval of 1 win in 2 pairs is symmetric about 1/2.
+        let i = colour.rate_interval.unwrap();
+        assert!((i.low + i.high - 1.0).abs() < 1e-12);
     }
 
     #[test]
@@ -110,5 +145,6 @@ mod tests {
         assert_eq!(r.overall.count, 0);
         assert_eq!(r.overall.rate, None);
         assert!(r.by_label.is_empty());
+        assert_eq!((r.overall.rate_interval, r.overall.auc), (None, None));
     }
 }

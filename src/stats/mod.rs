@@ -11,6 +11,8 @@
 //! - [`hinge`]: VSE++ sum- and max-of-hinges losses, margin violations.
 //! - [`retrieval`]: R@K, median and mean rank, rsum.
 //! - [`contrast`]: true caption against its one-fact contrast.
+//! - [`intervals`]: Wilson score intervals of rates and recalls.
+//! - [`roc`]: ROC curve and AUC of true against contrast cosines.
 //! - [`calibration`]: all of the above for one bundle, and suggested scales.
 //! - [`agreement`]: Spearman, Kendall tau-b, two-sample Kolmogorov-Smirnov.
 //! - [`spaces`]: linear CKA and orthogonal Procrustes, on [`svd`].
@@ -29,10 +31,12 @@ pub mod contrast;
 pub mod drift;
 pub mod export;
 pub mod hinge;
+pub mod intervals;
 pub mod pairs;
 pub mod report;
 pub mod retrieval;
 pub mod reward_map;
+pub mod roc;
 pub mod spaces;
 pub mod summary;
 pub mod svd;
@@ -43,7 +47,9 @@ pub use continuity::{ContinuityError, ContinuityMap, FittedMap};
 pub use drift::{drift, DriftOptions, DriftReport};
 pub use export::{calibration_export, drift_export, write_json, CalibrationExport, DriftExport};
 pub use pairs::ProbeVectors;
-pub use report::{calibration_html, drift_html};
+pub use report::{
+    calibration_html, drift_headline, drift_html, sha256_hex, HeadlineThresholds, Provenance,
+};
 pub use reward_map::{MapBundle, RewardMap, RewardMapError};
 
 /// Why a statistic could not be computed; each message says what to change.

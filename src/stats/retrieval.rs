@@ -9,6 +9,7 @@
 use ndarray::Array2;
 use serde::{Deserialize, Serialize};
 
+use super::intervals::{wilson, Interval};
 use super::summary::median;
 
 /// Retrieval figures of one direction.
@@ -27,6 +28,20 @@ pub struct RetrievalFigures {
     pub median_rank: f64,
     /// Mean of the 1-based ranks.
     pub mean_rank: f64,
+    /// 95 % Wilson score intervals of the three recalls, in percent (see
+    /// [`super::intervals`]); the queries are taken as independent trials.
+    pub intervals: RecallIntervals,
+}
+
+/// Confidence intervals of R@1, R@5 and R@10, in percent.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RecallIntervals {
+    /// Of R@1.
+    pub r_at_1: Interval,
+    /// Of R@5.
+    pub r_at_5: Interval,
+    /// Of R@10.
+    pub r_at_10: Interval,
 }
 
 /// Retrieval in both directions.
@@ -70,7 +85,17 @@ pub(crate) fn text_to_image_ranks(s: &Array2<f64>, caption_image: &[usize]) -> V
 
 fn figures(ranks: &[usize]) -> RetrievalFigures {
     let n = ranks.len() as f64;
-    let recall = |k: usize| 100.0 * ranks.iter().filter(|&&r| r <= k).count() as f64 / n;
+    let hits = |k: usize| ranks.iter().filter(|&&r| r <= k).count();
+    let recall = |k: usize| 100.0 * hits(k) as f64 / n;
+    // Retrieval is only computed with at least one query.
+    let interval = |k: usize| {
+        wilson(hits(k), ranks.len())
+            .unwrap_or(Interval {
+                low: 0.0,
+                high: 1.0,
+            })
+            .scaled(100.0)
+    };
     let as_f64: Vec<f64> = ranks.iter().map(|&r| r as f64).collect();
     RetrievalFigures {
         queries: ranks.len(),
@@ -79,6 +104,11 @@ fn figures(ranks: &[usize]) -> RetrievalFigures {
         r_at_10: recall(10),
         median_rank: median(&as_f64),
         mean_rank: as_f64.iter().sum::<f64>() / n,
+        intervals: RecallIntervals {
+            r_at_1: interval(1),
+            r_at_5: interval(5),
+            r_at_10: interval(10),
+        },
     }
 }
 

@@ -1,15 +1,99 @@
 //! Summaries of a list of cosines: mean, population standard deviation,
 //! quantiles by numpy's default ("linear") method, and a fixed-bin histogram
-//! that counts exactly as `numpy.histogram` does.
+//! that counts exactly as `numpy.histogram` does, over a range with round
+//! ends that encloses the data (so the series do not pile into one corner
+//! of [-1, 1]).
 
 use serde::{Deserialize, Serialize};
 
 use super::StatsError;
 
-/// Lower edge of every cosine histogram.
-pub const HISTOGRAM_LOW: f64 = -1.0;
-/// Upper edge of every cosine histogram.
-pub const HISTOGRAM_HIGH: f64 = 1.0;
+/// Most steps of a round range: about ten ticks on an axis, the number a
+/// reader takes in at a glance (common practice, no source).
+pub const MAX_ROUND_STEPS: usize = 10;
+
+/// A round step: `mantissa` (1, 2 or 5) times ten to the `exponent`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct RoundStep {
+    mantissa: i64,
+    exponent: i32,
+}
+
+impl RoundStep {
+    /// The smallest step of 1, 2 or 5 times a power of ten that cuts `span`
+    /// into at most `max_steps` steps.
+    pub fn covering(span: f64, max_steps: usize) -> RoundStep {
+        let max_steps = max_steps.max(1) as f64;
+        for exponent in -6..=9 {
+            for mantissa in [1, 2, 5] {
+                let step = RoundStep { mantissa, exponent };
+                if span / step.size() <= max_steps {
+                    return step;
+                }
+            }
+        }
+        RoundStep {
+            mantissa: 1,
+            exponent: 10,
+        }
+    }
+
+    /// `k` steps from 0, as the double nearest the decimal value (0.35, not
+    /// 7 * 0.05 = 0.35000000000000003).
+    pub fn multiple(self, k: i64) -> f64 {
+        let whole = (k * self.mantissa) as f64;
+        if self.exponent < 0 {
+            whole / 10f64.powi(-self.exponent)
+        } else {
+            whole * 10f64.powi(self.exponent)
+        }
+    }
+
+    /// The step's size.
+    pub fn size(self) -> f64 {
+        self.multiple(1)
+    }
+
+    /// Decimals that print every multiple exactly.
+    pub fn decimals(self) -> usize {
+        (-self.exponent).max(0) as usize
+    }
+
+    /// The multiples of the step within [lo, hi].
+    pub fn multiples_within(self, lo: f64, hi: f64) -> Vec<f64> {
+        let size = self.size();
+        let first = (lo / size - 1e-9).ceil() as i64;
+        let last = (hi / size + 1e-9).floor() as i64;
+        (first..=last).map(|k| self.multiple(k)).collect()
+    }
+}
+
+/// The histogram range of cosines between `min` and `max`: multiples of a
+/// [`RoundStep`] (at most [`MAX_ROUND_STEPS`] of them) enclosing both,
+/// within [-1, 1]; [-1, 1] itself when the bounds are not finite.
+pub fn round_range(min: f64, max: f64) -> (f64, f64) {
+    if !(min.is_finite() && max.is_finite()) || min > max {
+        return (-1.0, 1.0);
+    }
+    let step = RoundStep::covering(max - min, MAX_ROUND_STEPS);
+    let size = step.size();
+    // The slack keeps 0.12 / 0.01 = 11.999999999999998 at 12.
+    let first = (min / size + 1e-9).floor() as i64;
+    let mut last = (max / size - 1e-9).ceil() as i64;
+    if last <= first {
+        last = first + 1;
+    }
+    let (mut low, mut high) = (step.multiple(first).max(-1.0), step.multiple(last).min(1.0));
+    if low >= high {
+        // Every value at 1 (or -1): one step below (or above) it.
+        if high >= 1.0 {
+            low = 1.0 - size;
+        } else {
+            high = -1.0 + size;
+        }
+    }
+    (low, high)
+}
 
 /// The quantiles reported for every distribution, as fractions.
 pub const QUANTILE_LEVELS: [f64; 7] = [0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99];
@@ -63,14 +147,20 @@ pub struct Distribution {
     pub max: f64,
     /// Quantiles, linear interpolation between order statistics.
     pub quantiles: Quantiles,
-    /// Histogram over [-1, 1].
+    /// Histogram over a round range enclosing every cosine of the report
+    /// ([`round_range`]), shared by the report's distributions.
     pub histogram: Histogram,
 }
 
 impl Distribution {
     /// Summarises `values` (consumed: they are sorted in place) with a
-    /// histogram of `bins` bins over [-1, 1].
-    pub fn of(mut values: Vec<f64>, bins: usize, what: &'static str) -> Result<Self, StatsError> {
+    /// histogram of `bins` bins over `range`.
+    pub fn of(
+        mut values: Vec<f64>,
+        bins: usize,
+        range: (f64, f64),
+        what: &'static str,
+    ) -> Result<Self, StatsError> {
         if values.is_empty() {
             return Err(StatsError::Empty { what });
         }
@@ -98,7 +188,7 @@ impl Distribution {
             min: values[0],
             max: values[values.len() - 1],
             quantiles,
-            histogram: histogram(&values, bins, HISTOGRAM_LOW, HISTOGRAM_HIGH),
+            histogram: histogram(&values, bins, range.0, range.1),
         })
     }
 }
@@ -194,7 +284,7 @@ mod tests {
         // Worked by hand: [1, 2, 3, 4] has mean 2.5, squared deviations
         // 2.25 + 0.25 + 0.25 + 2.25 = 5, population variance 5/4, std sqrt(1.25)
         // (the sample std, ddof = 1, would be sqrt(5/3)).
-        let d = Distribution::of(vec![4.0, 1.0, 3.0, 2.0], 4, "test").unwrap();
+        let d = Distribution::of(vec![4.0, 1.0, 3.0, 2.0], 4, (0.0, 4.0), "test").unwrap();
         assert_eq!(d.count, 4);
         assert!((d.mean - 2.5).abs() < 1e-15);
         assert!((d.std - 1.25f64.sqrt()).abs() < 1e-15);
@@ -205,11 +295,11 @@ mod tests {
     #[test]
     fn empty_or_nan_lists_are_refused() {
         assert!(matches!(
-            Distribution::of(vec![], 4, "x"),
+            Distribution::of(vec![], 4, (-1.0, 1.0), "x"),
             Err(StatsError::Empty { .. })
         ));
         assert!(matches!(
-            Distribution::of(vec![0.0, f64::NAN], 4, "x"),
+            Distribution::of(vec![0.0, f64::NAN], 4, (-1.0, 1.0), "x"),
             Err(StatsError::NotFinite { .. })
         ));
     }
@@ -235,6 +325,28 @@ mod tests {
         assert_eq!(h.counts[20], 1);
         assert_eq!(h.counts[18], 1);
         assert_eq!(h.counts.iter().sum::<u64>(), 3);
+    }
+
+    #[test]
+    fn round_ranges_enclose_the_data_on_round_ends() {
+        // Worked by hand: 0.31 to 0.97 spans 0.66; steps of 0.05 would take
+        // 14, of 0.1 take 7 (<= 10): floor(3.1) = 3 -> 0.3, ceil(9.7) = 10 -> 1.0.
+        assert_eq!(round_range(0.31, 0.97), (0.3, 1.0));
+        // 0.12 to 0.215 spans 0.095: step 0.01, 0.12 to 0.22.
+        assert_eq!(round_range(0.12, 0.215), (0.12, 0.22));
+        // -0.93 to 0.98 by 0.2: -1.0 to 1.0.
+        assert_eq!(round_range(-0.93, 0.98), (-1.0, 1.0));
+        // One value: one step around it; 1.0 alone gets the step below.
+        let (lo, hi) = round_range(0.5, 0.5);
+        assert!(lo <= 0.5 && hi > 0.5 && hi - lo < 1e-5, "{lo} {hi}");
+        let (lo, hi) = round_range(1.0, 1.0);
+        assert!(lo < 1.0 && hi == 1.0);
+        assert_eq!(round_range(f64::NAN, 1.0), (-1.0, 1.0));
+        // Multiples print as the decimals they are.
+        let step = RoundStep::covering(0.66, 10);
+        assert_eq!((step.size(), step.decimals()), (0.1, 1));
+        assert_eq!(step.multiples_within(0.3, 0.65), vec![0.3, 0.4, 0.5, 0.6]);
+        assert_eq!(RoundStep::covering(37.0, 5).size(), 10.0);
     }
 
     #[test]

@@ -4,6 +4,9 @@
 
 use std::fmt::Write as _;
 
+use super::intervals::Interval;
+use super::summary::RoundStep;
+
 /// Escapes text for HTML element content and attribute values.
 pub(crate) fn escape(text: &str) -> String {
     let mut out = String::with_capacity(text.len());
@@ -134,13 +137,25 @@ pub(crate) fn legend(series: &[(&str, &str)]) -> String {
     out
 }
 
-fn ticks(lo: f64, hi: f64, count: usize, decimals: usize) -> Vec<(f64, String)> {
-    (0..=count)
-        .map(|k| {
-            let v = lo + (hi - lo) * k as f64 / count as f64;
-            (v, format!("{v:.decimals$}"))
-        })
+/// Ticks at the round multiples within [lo, hi], at most about `count`
+/// of them, printed with the decimals the step needs (0.35, not 0.3500).
+fn ticks(lo: f64, hi: f64, count: usize) -> Vec<(f64, String)> {
+    let step = RoundStep::covering(hi - lo, count);
+    let decimals = step.decimals();
+    step.multiples_within(lo, hi)
+        .into_iter()
+        .map(|v| (v, format!("{v:.decimals$}")))
         .collect()
+}
+
+/// [lo, hi] widened to the round step's multiples around it.
+fn round_out(lo: f64, hi: f64, count: usize) -> (f64, f64) {
+    let step = RoundStep::covering(hi - lo, count);
+    let size = step.size();
+    (
+        step.multiple((lo / size + 1e-9).floor() as i64),
+        step.multiple((hi / size - 1e-9).ceil() as i64),
+    )
 }
 
 /// One histogram series: a label, the counts per bin over [low, high], a colour.
@@ -168,7 +183,12 @@ pub(crate) fn histograms(title: &str, series: &[HistogramSeries]) -> String {
         .fold(0.0f64, |m, &v| m.max(v))
         .max(1e-9)
         * 1.1;
-    let (low, high) = series.first().map_or((-1.0, 1.0), |s| (s.low, s.high));
+    let (low, high) = series
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), s| {
+            (a.min(s.low), b.max(s.high))
+        });
+    let (low, high) = if low < high { (low, high) } else { (-1.0, 1.0) };
     let frame = Frame {
         x: (low, high),
         y: (0.0, top),
@@ -178,8 +198,8 @@ pub(crate) fn histograms(title: &str, series: &[HistogramSeries]) -> String {
     open(&mut out, HEIGHT, title);
     frame.axes(
         &mut out,
-        &ticks(low, high, 8, 2),
-        &ticks(0.0, top, 4, 3),
+        &ticks(low, high, 10),
+        &ticks(0.0, top, 4),
         "cosine",
         "fraction of pairs",
     );
@@ -199,48 +219,6 @@ pub(crate) fn histograms(title: &str, series: &[HistogramSeries]) -> String {
     out + &legend(&labels)
 }
 
-/// Grouped bars: for each group label, one bar per series (label, colour),
-/// values in `[0, y_max]`.
-pub(crate) fn bars(
-    title: &str,
-    groups: &[(String, Vec<f64>)],
-    series: &[(&str, &str)],
-    y_max: f64,
-    y_label: &str,
-) -> String {
-    let frame = Frame {
-        x: (0.0, groups.len().max(1) as f64),
-        y: (0.0, y_max),
-        height: HEIGHT,
-    };
-    let mut out = String::new();
-    open(&mut out, HEIGHT, title);
-    let x_ticks: Vec<(f64, String)> = groups
-        .iter()
-        .enumerate()
-        .map(|(g, (label, _))| (g as f64 + 0.5, label.clone()))
-        .collect();
-    frame.axes(&mut out, &x_ticks, &ticks(0.0, y_max, 4, 0), "", y_label);
-    let per = series.len().max(1) as f64;
-    for (g, (_, values)) in groups.iter().enumerate() {
-        for (k, (&v, (_, colour))) in values.iter().zip(series).enumerate() {
-            let x0 = g as f64 + 0.1 + 0.8 * k as f64 / per;
-            let x1 = x0 + 0.8 / per;
-            let v = v.clamp(0.0, y_max);
-            let (px0, px1, py) = (frame.px(x0), frame.px(x1), frame.py(v));
-            let _ = write!(
-                out,
-                r#"<rect x="{px0:.1}" y="{py:.1}" width="{:.1}" height="{:.1}" fill="{colour}"><title>{:.2}</title></rect>"#,
-                (px1 - px0 - 1.0).max(1.0),
-                (frame.py(0.0) - py).max(0.0),
-                v
-            );
-        }
-    }
-    out.push_str("</svg>");
-    out + &legend(series)
-}
-
 /// A labelled line drawn over a scatter.
 pub(crate) struct Curve<'a> {
     pub label: &'a str,
@@ -248,24 +226,30 @@ pub(crate) struct Curve<'a> {
     pub colour: &'a str,
 }
 
-/// A square scatter of `points` (x, y) over [lo, hi]^2 with the diagonal
-/// dashed and `curves` drawn over it.
+/// One coloured group of scatter points.
+pub(crate) struct PointGroup<'a> {
+    pub label: &'a str,
+    pub colour: &'a str,
+    pub points: Vec<[f64; 2]>,
+}
+
+/// A square scatter of point groups (x, y) over [lo, hi]^2 with the
+/// diagonal dashed and `curves` drawn over it.
 pub(crate) fn scatter(
     title: &str,
-    points: &[[f64; 2]],
+    groups: &[PointGroup],
     curves: &[Curve],
     x_label: &str,
     y_label: &str,
 ) -> String {
-    let (lo, hi) = points
+    let (lo, hi) = groups
         .iter()
-        .flatten()
+        .flat_map(|g| g.points.iter().flatten())
         .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| {
             (a.min(v), b.max(v))
         });
     let (lo, hi) = if lo < hi {
-        let pad = (hi - lo) * 0.05;
-        (lo - pad, hi + pad)
+        round_out(lo, hi, 8)
     } else {
         (-1.0, 1.0)
     };
@@ -279,18 +263,21 @@ pub(crate) fn scatter(
     open(&mut out, height, title);
     frame.axes(
         &mut out,
-        &ticks(lo, hi, 6, 2),
-        &ticks(lo, hi, 6, 2),
+        &ticks(lo, hi, 8),
+        &ticks(lo, hi, 8),
         x_label,
         y_label,
     );
-    for p in points {
-        let _ = write!(
-            out,
-            r##"<circle cx="{:.1}" cy="{:.1}" r="1.8" fill="#555" fill-opacity="0.35"/>"##,
-            frame.px(p[0]),
-            frame.py(p[1])
-        );
+    for g in groups {
+        for p in &g.points {
+            let _ = write!(
+                out,
+                r#"<circle cx="{:.1}" cy="{:.1}" r="1.8" fill="{}" fill-opacity="0.45"/>"#,
+                frame.px(p[0]),
+                frame.py(p[1]),
+                g.colour
+            );
+        }
     }
     frame.polyline(&mut out, &[(lo, lo), (hi, hi)], "#999", true);
     for curve in curves {
@@ -302,9 +289,106 @@ pub(crate) fn scatter(
         frame.polyline(&mut out, &clipped, curve.colour, false);
     }
     out.push_str("</svg>");
-    let mut labels: Vec<(&str, &str)> = vec![("y = x", "#999")];
+    let mut labels: Vec<(&str, &str)> = groups.iter().map(|g| (g.label, g.colour)).collect();
+    labels.push(("y = x", "#999"));
     labels.extend(curves.iter().map(|c| (c.label, c.colour)));
     out + &legend(&labels)
+}
+
+/// ROC curves on the unit square, the chance diagonal dashed.
+pub(crate) fn roc_curves(title: &str, curves: &[Curve]) -> String {
+    let height = WIDTH - LEFT - RIGHT + TOP + BOTTOM;
+    let frame = Frame {
+        x: (0.0, 1.0),
+        y: (0.0, 1.0),
+        height,
+    };
+    let mut out = String::new();
+    open(&mut out, height, title);
+    frame.axes(
+        &mut out,
+        &ticks(0.0, 1.0, 5),
+        &ticks(0.0, 1.0, 5),
+        "false-positive rate (contrasts above the threshold)",
+        "true-positive rate (true captions above it)",
+    );
+    frame.polyline(&mut out, &[(0.0, 0.0), (1.0, 1.0)], "#999", true);
+    for curve in curves {
+        frame.polyline(&mut out, &curve.points, curve.colour, false);
+    }
+    out.push_str("</svg>");
+    let mut labels: Vec<(&str, &str)> = curves.iter().map(|c| (c.label, c.colour)).collect();
+    labels.push(("chance", "#999"));
+    out + &legend(&labels)
+}
+
+/// One estimate with its interval, for [`estimates`].
+pub(crate) struct Estimate {
+    pub value: f64,
+    pub interval: Option<Interval>,
+}
+
+/// Dots with interval whiskers, one per series in each group, on a value
+/// axis that starts at the round value below the lowest bound (not at 0),
+/// so that rates of 97 and 99 % are told apart; ends at most at `y_max`.
+pub(crate) fn estimates(
+    title: &str,
+    groups: &[(String, Vec<Estimate>)],
+    series: &[(&str, &str)],
+    y_max: f64,
+    y_label: &str,
+) -> String {
+    let bounds = groups.iter().flat_map(|(_, e)| e).flat_map(|e| {
+        let (lo, hi) = e.interval.map_or((e.value, e.value), |i| (i.low, i.high));
+        [lo, hi]
+    });
+    let (lo, hi) = bounds.fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), v| {
+        (a.min(v), b.max(v))
+    });
+    let (lo, hi) = if lo.is_finite() && lo < hi {
+        let (lo, hi) = round_out(lo, hi, 5);
+        (lo.max(0.0), hi.min(y_max))
+    } else {
+        (0.0, y_max)
+    };
+    let frame = Frame {
+        x: (0.0, groups.len().max(1) as f64),
+        y: (lo, hi),
+        height: HEIGHT,
+    };
+    let mut out = String::new();
+    open(&mut out, HEIGHT, title);
+    let x_ticks: Vec<(f64, String)> = groups
+        .iter()
+        .enumerate()
+        .map(|(g, (label, _))| (g as f64 + 0.5, label.clone()))
+        .collect();
+    frame.axes(&mut out, &x_ticks, &ticks(lo, hi, 5), "", y_label);
+    let per = series.len().max(1) as f64;
+    for (g, (_, values)) in groups.iter().enumerate() {
+        for (k, (e, (_, colour))) in values.iter().zip(series).enumerate() {
+            let x = frame.px(g as f64 + 0.2 + 0.6 * (k as f64 + 0.5) / per);
+            if let Some(i) = e.interval {
+                let _ = write!(
+                    out,
+                    r#"<line x1="{x:.1}" y1="{:.1}" x2="{x:.1}" y2="{:.1}" stroke="{colour}" stroke-width="2"/>"#,
+                    frame.py(i.low.clamp(lo, hi)),
+                    frame.py(i.high.clamp(lo, hi)),
+                );
+            }
+            let interval = e
+                .interval
+                .map_or_else(String::new, |i| format!(" ({:.1} to {:.1})", i.low, i.high));
+            let _ = write!(
+                out,
+                r#"<circle cx="{x:.1}" cy="{:.1}" r="4" fill="{colour}"><title>{:.1}{interval}</title></circle>"#,
+                frame.py(e.value.clamp(lo, hi)),
+                e.value,
+            );
+        }
+    }
+    out.push_str("</svg>");
+    out + &legend(series)
 }
 
 #[cfg(test)]
@@ -320,19 +404,46 @@ mod tests {
     }
 
     #[test]
-    fn bars_scale_to_the_axis() {
-        // A value of half the axis is drawn half as high as the plot area.
-        let svg = bars(
+    fn estimates_axis_starts_near_the_data_not_at_zero() {
+        // Rates 97 and 99 % with intervals from 93.1 to 99.8: at most five
+        // round steps cover them in steps of 2 (6.9 / 2 <= 5), from 92 to
+        // 100, so a tick reads 92 and none 0.
+        let e = |value, low, high| Estimate {
+            value,
+            interval: Some(Interval { low, high }),
+        };
+        let svg = estimates(
             "t",
-            &[("R@1".into(), vec![50.0])],
-            &[("a", "#000")],
+            &[(
+                "colour".into(),
+                vec![e(97.0, 93.1, 98.9), e(99.0, 96.4, 99.8)],
+            )],
+            &[("a", "#000"), ("b", "#111")],
             100.0,
             "%",
         );
-        let full = HEIGHT - TOP - BOTTOM;
-        assert!(
-            svg.contains(&format!(r#"height="{:.1}""#, full / 2.0)),
-            "{svg}"
+        assert!(svg.contains(">92<") && svg.contains(">100<"), "{svg}");
+        assert!(!svg.contains(">0<"), "{svg}");
+        // The dot of 97 sits 5/8 of the way up the plot area.
+        let y = HEIGHT - BOTTOM - 0.625 * (HEIGHT - TOP - BOTTOM);
+        assert!(svg.contains(&format!(r#"cy="{y:.1}" r="4""#)), "{svg}");
+    }
+
+    #[test]
+    fn histogram_ticks_are_round() {
+        let svg = histograms(
+            "t",
+            &[HistogramSeries {
+                label: "x",
+                low: 0.3,
+                high: 1.0,
+                counts: &[1, 2, 3, 4],
+                colour: "#000",
+            }],
         );
+        for tick in ["0.3", "0.5", "0.8", "1.0"] {
+            assert!(svg.contains(&format!(">{tick}<")), "{tick}: {svg}");
+        }
+        assert!(!svg.contains("0.39"), "{svg}");
     }
 }

@@ -131,3 +131,70 @@ async fn a_saved_drift_map_rescales_rewards() {
         "{e}"
     );
 }
+
+#[tokio::test(flavor = "multi_thread")]
+async fn html_format_answers_the_report_page_with_its_provenance() {
+    let state = state();
+    let rows = probe_json(30);
+    let body = json!({"probe": rows.clone(), "format": "html"});
+    let (status, headers, _) = call(
+        &state,
+        "POST",
+        "/v1/calibration",
+        "application/json",
+        serde_json::to_vec(&body).unwrap(),
+    )
+    .await;
+    assert_eq!(status, 200);
+    assert_eq!(headers["content-type"], "text/html; charset=utf-8");
+    let page = html(&state, "/v1/calibration", &body).await;
+    assert!(page.starts_with("<!DOCTYPE html>"), "{page}");
+    assert!(page.contains("Calibration of blocks@v1"));
+    // Provenance: the sha256 of the rows as JSON Lines (compact JSON, keys
+    // sorted as serde_json writes a parsed object, newline after each),
+    // computed here with sha2 independently of the route, and the row count.
+    let mut lines = String::new();
+    for row in &rows {
+        lines.push_str(&serde_json::to_string(row).unwrap());
+        lines.push('\n');
+    }
+    let digest = befit::stats::sha256_hex(lines.as_bytes());
+    assert!(page.contains(&digest), "probe sha256 {digest} missing");
+    assert!(page.contains("30 rows"));
+    assert!(page.contains(env!("CARGO_PKG_VERSION")));
+
+    let body = json!({"from": "blocks@v1", "to": "blocks@v1", "probe": rows, "format": "html"});
+    let page = html(&state, "/v1/drift", &body).await;
+    assert!(
+        page.contains("class=\"headline\">Rewards move by"),
+        "{page}"
+    );
+    assert_eq!(page.matches("<details>").count(), 2);
+
+    // An unknown format is a field error, in JSON.
+    let (status, e) = post_json(
+        &state,
+        "/v1/calibration",
+        &json!({"probe": probe_json(3), "format": "pdf"}),
+    )
+    .await;
+    assert_eq!(status, 400, "{e}");
+    assert!(e["error"]["message"].to_string().contains("format"), "{e}");
+}
+
+async fn html(state: &befit::service::Service, uri: &str, body: &Value) -> String {
+    use axum::body::Body;
+    use http_body_util::BodyExt;
+    use tower::ServiceExt;
+    let request = axum::http::Request::post(uri)
+        .header("content-type", "application/json")
+        .body(Body::from(serde_json::to_vec(body).unwrap()))
+        .unwrap();
+    let response = befit::server::app(state.clone())
+        .oneshot(request)
+        .await
+        .unwrap();
+    assert_eq!(response.status(), 200);
+    let bytes = response.into_body().collect().await.unwrap().to_bytes();
+    String::from_utf8(bytes.to_vec()).unwrap()
+}

@@ -5,9 +5,12 @@ Each function follows the definition in docs/statistics.md, written the
 plain numpy way rather than mirroring the Rust code.
 """
 
+import math
+
 import numpy as np
 from scipy import linalg, stats
 from sklearn.isotonic import IsotonicRegression
+from sklearn.metrics import roc_auc_score, roc_curve
 
 QUANTILE_LEVELS = [0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99]
 QUANTILE_NAMES = ["p01", "p05", "p25", "p50", "p75", "p95", "p99"]
@@ -50,9 +53,47 @@ class Vectors:
         return np.vstack([self.captions, self.contrasts])
 
 
-def distribution(x, bins):
+def round_range(values):
+    """docs/statistics.md, "Histograms": the smallest step of 1, 2 or 5 times
+    a power of ten that cuts max - min into at most 10 steps; the multiples
+    of it at or below the smallest and at or above the largest cosine, within
+    [-1, 1]."""
+    lo, hi = float(np.min(values)), float(np.max(values))
+    for exponent in range(-6, 10):
+        step = next((m * 10.0**exponent for m in (1, 2, 5) if (hi - lo) / (m * 10.0**exponent) <= 10), None)
+        if step is not None:
+            break
+    decimals = max(0, 1 - math.floor(math.log10(step)))
+    low = round(math.floor(lo / step + 1e-9) * step, decimals)
+    high = round(math.ceil(hi / step - 1e-9) * step, decimals)
+    if high <= low:
+        high = round(low + step, decimals)
+    low, high = max(low, -1.0), min(high, 1.0)
+    if low >= high:
+        low, high = (1.0 - step, 1.0) if high >= 1.0 else (-1.0, -1.0 + step)
+    return low, high
+
+
+def wilson(k, n, scale=1.0):
+    """scipy's Wilson score interval (no continuity correction), 95 %."""
+    if n == 0:
+        return None
+    ci = stats.binomtest(int(k), int(n)).proportion_ci(confidence_level=0.95, method="wilson")
+    return {"low": float(ci.low) * scale, "high": float(ci.high) * scale}
+
+
+def roc(t, c):
+    """scikit-learn's ROC of true cosines (positives) against contrast cosines."""
+    y = np.concatenate([np.ones(len(t)), np.zeros(len(c))])
+    scores = np.concatenate([t, c])
+    fpr, tpr, _ = roc_curve(y, scores, drop_intermediate=False)
+    return {"auc": float(roc_auc_score(y, scores)), "points": [[float(a), float(b)] for a, b in zip(fpr, tpr)]}
+
+
+def distribution(x, bins, rng):
     x = np.asarray(x, dtype=np.float64)
-    counts, _ = np.histogram(np.clip(x, -1.0, 1.0), bins=bins, range=(-1.0, 1.0))
+    low, high = rng
+    counts, _ = np.histogram(np.clip(x, low, high), bins=bins, range=(low, high))
     q = np.quantile(x, QUANTILE_LEVELS)  # method="linear", numpy's default
     return {
         "count": int(x.size),
@@ -61,7 +102,7 @@ def distribution(x, bins):
         "min": float(np.min(x)),
         "max": float(np.max(x)),
         "quantiles": dict(zip(QUANTILE_NAMES, map(float, q))),
-        "histogram": {"low": -1.0, "high": 1.0, "counts": [int(c) for c in counts]},
+        "histogram": {"low": low, "high": high, "counts": [int(c) for c in counts]},
     }
 
 
@@ -116,7 +157,9 @@ def hinge_report(v, margin, batch_images):
 
 def retrieval_figures(ranks):
     ranks = np.asarray(ranks, dtype=np.float64)
+    hits = {k: int(np.sum(ranks <= k)) for k in (1, 5, 10)}
     return {
+        "intervals": {f"r_at_{k}": wilson(hits[k], ranks.size, 100.0) for k in (1, 5, 10)},
         "queries": int(ranks.size),
         "r_at_1": 100.0 * float(np.mean(ranks <= 1)),
         "r_at_5": 100.0 * float(np.mean(ranks <= 5)),
@@ -140,8 +183,10 @@ def retrieval_report(v):
 def contrast_figures(t, c):
     t, c = np.asarray(t), np.asarray(c)
     if t.size == 0:
-        return {"count": 0, "wins": 0, "ties": 0, "rate": None, "mean_gap": None}
+        return {"count": 0, "wins": 0, "ties": 0, "rate": None, "mean_gap": None, "rate_interval": None, "auc": None}
     return {
+        "rate_interval": wilson(np.sum(t > c), t.size),
+        "auc": roc(t, c)["auc"],
         "count": int(t.size),
         "wins": int(np.sum(t > c)),
         "ties": int(np.sum(t == c)),
@@ -153,23 +198,57 @@ def contrast_figures(t, c):
 def contrast_report(v):
     t = v.true_cos[v.contrast_from]
     labels = np.asarray(v.labels, dtype=object)
-    by_label = {}
+    by_label, curves = {}, {}
     for label in sorted(set(v.labels)):
         mask = labels == label
         by_label[label] = contrast_figures(t[mask], v.contrast_cos[mask])
-    return {"overall": contrast_figures(t, v.contrast_cos), "by_label": by_label}
+        curves[label] = roc(t[mask], v.contrast_cos[mask])
+    return {"overall": contrast_figures(t, v.contrast_cos), "by_label": by_label, "roc": curves}
 
 
-def calibration(v, options):
+def cosine_range(*vs):
+    """The histogram range of a report: every image-caption and contrast cosine."""
+    return round_range(np.concatenate([np.concatenate([v.s.ravel(), v.contrast_cos]) for v in vs]))
+
+
+EXAMPLE_PAIRS = 8
+
+
+def examples(v):
+    """docs/statistics.md, `examples`: lowest true pairs; contrasts not beaten."""
+    raw = v.raw
+
+    def pair(c):
+        i = int(v.caption_image[c])
+        return {"image": raw["image_names"][i], "image_line": raw["image_lines"][i],
+                "caption": raw["caption_texts"][c], "true_cos": float(v.true_cos[c])}
+
+    lowest = [pair(int(c)) for c in np.lexsort((np.arange(v.m), v.true_cos))[:EXAMPLE_PAIRS]]
+    t = v.true_cos[v.contrast_from]
+    gap = t - v.contrast_cos
+    lost_idx = np.nonzero(gap <= 0)[0]
+    lost_idx = lost_idx[np.lexsort((lost_idx, gap[lost_idx]))][:EXAMPLE_PAIRS]
+    lost = []
+    for k in lost_idx:
+        p = pair(int(v.contrast_from[k]))
+        p.update({"contrast": raw["contrast_texts"][k], "changed": raw["contrast_labels"][k],
+                  "contrast_cos": float(v.contrast_cos[k])})
+        lost.append(p)
+    return {"lowest_true": lowest, "lost_contrasts": lost}
+
+
+def calibration(v, options, rng):
+    """`rng` is the histogram range befit used, checked against
+    cosine_range by the caller, so that bin edges are the same doubles."""
     bins = options["histogram_bins"]
     own = v.caption_image[None, :] == np.arange(v.n)[:, None]
     negatives = np.where(own, -np.inf, v.s)
     hardest = negatives.max(axis=1)[v.caption_image]
     cosines = {
-        "true_pairs": distribution(v.true_cos, bins),
-        "hardest_negatives": distribution(hardest, bins),
-        "all_negatives": distribution(v.s[~own], bins),
-        "contrasts": distribution(v.contrast_cos, bins) if v.contrast_cos.size else None,
+        "true_pairs": distribution(v.true_cos, bins, rng),
+        "hardest_negatives": distribution(hardest, bins, rng),
+        "all_negatives": distribution(v.s[~own], bins, rng),
+        "contrasts": distribution(v.contrast_cos, bins, rng) if v.contrast_cos.size else None,
     }
     m_t = float(np.quantile(v.true_cos, 0.5))
     m_h = float(np.quantile(hardest, 0.5))
@@ -189,6 +268,7 @@ def calibration(v, options):
         "cosines": cosines,
         "retrieval": retrieval_report(v),
         "contrast": contrast_report(v),
+        "examples": examples(v),
         "suggested": {
             "median_true": m_t,
             "median_hardest_negative": m_h,

@@ -79,10 +79,22 @@ def test_exported_vectors_are_unit_length():
                     np.testing.assert_allclose(np.linalg.norm(m, axis=1), 1.0, atol=1e-12, err_msg=f"{path} {side} {name}")
 
 
+def histogram_range(report, expected, path):
+    """befit's histogram range, after checking it is the documented round
+    range; every distribution of a report shares it."""
+    ranges = {(d["histogram"]["low"], d["histogram"]["high"]) for d in report["cosines"].values() if d}
+    assert len(ranges) == 1, f"{path}: histograms over different ranges {ranges}"
+    (low, high), = ranges
+    assert_close([low, high], list(expected), f"{path} histogram range")
+    return low, high
+
+
 @pytest.mark.parametrize("path", exports("calibration"), ids=lambda p: p.stem)
 def test_calibration_matches_reference(path):
     data = load(path)
-    expected = ref.calibration(ref.Vectors(data["vectors"]), data["options"])
+    v = ref.Vectors(data["vectors"])
+    rng = histogram_range(data["report"], ref.cosine_range(v), "report")
+    expected = ref.calibration(v, data["options"], rng)
     assert_close(data["report"], expected)
 
 
@@ -91,8 +103,20 @@ def test_drift_calibrations_match_reference(path):
     data = load(path)
     options = data["options"]["calibration"]
     report = data["report"]
-    assert_close(report["from"], ref.calibration(ref.Vectors(data["from"]), options), "report.from")
-    assert_close(report["to"], ref.calibration(ref.Vectors(data["to"]), options), "report.to")
+    a, b = ref.Vectors(data["from"]), ref.Vectors(data["to"])
+    # One range over both bundles' cosines, so the histograms share bins.
+    rng = histogram_range(report["from"], ref.cosine_range(a, b), "report.from")
+    assert histogram_range(report["to"], rng, "report.to") == rng
+    assert_close(report["from"], ref.calibration(a, options, rng), "report.from")
+    assert_close(report["to"], ref.calibration(b, options, rng), "report.to")
+
+
+def test_round_range_examples():
+    # Worked by hand (docs/statistics.md, "Histograms"), the same as the unit
+    # test in src/stats/summary.rs: the reference's own definition is right.
+    assert ref.round_range([0.31, 0.97]) == (0.3, 1.0)
+    assert ref.round_range([0.12, 0.215]) == (0.12, 0.22)
+    assert ref.round_range([-0.93, 0.98]) == (-1.0, 1.0)
 
 
 def pair_cosines(data):

@@ -5,6 +5,8 @@ use std::path::Path;
 use std::sync::Arc;
 
 use axum::extract::State;
+use axum::http::header::CONTENT_TYPE;
+use axum::response::{IntoResponse, Response};
 use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
@@ -23,8 +25,36 @@ use crate::service::maps::{valid_map_name, MAX_MAP_NAME};
 use crate::service::Service;
 use crate::stats::{
     self, CalibrationOptions, CalibrationReport, DriftOptions, DriftReport, MapBundle,
-    ProbeVectors, RewardMap,
+    ProbeVectors, Provenance, RewardMap,
 };
+
+/// What a statistics route answers: the JSON report, or the same HTML page
+/// as `befit calibrate --report` / `befit drift --report`.
+#[derive(Deserialize, Default, Clone, Copy, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum ReportFormat {
+    /// The JSON body of `docs/statistics.md`.
+    #[default]
+    Json,
+    /// One self-contained HTML page, `text/html`.
+    Html,
+}
+
+/// sha256 of the request's probe rows as JSON Lines: each row compact JSON
+/// (keys in sorted order, as serde_json writes a parsed object), ended by a
+/// newline. A file of such lines has the same digest under the CLI.
+fn probe_sha256(rows: &[Value]) -> String {
+    let mut lines = String::new();
+    for row in rows {
+        lines.push_str(&row.to_string());
+        lines.push('\n');
+    }
+    stats::sha256_hex(lines.as_bytes())
+}
+
+fn html_page(page: String) -> Response {
+    ([(CONTENT_TYPE, "text/html; charset=utf-8")], page).into_response()
+}
 
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -35,6 +65,8 @@ pub struct CalibrationRequest {
     options: CalibrationOptions,
     #[serde(default)]
     skip_bad: bool,
+    #[serde(default)]
+    format: ReportFormat,
 }
 
 #[derive(Serialize)]
@@ -55,6 +87,8 @@ pub struct DriftRequest {
     #[serde(default)]
     skip_bad: bool,
     save_map: Option<SaveMap>,
+    #[serde(default)]
+    format: ReportFormat,
 }
 
 /// Keeps the fitted map under a name `/v1/rewards` accepts as `remap`.
@@ -137,10 +171,11 @@ async fn embed_with(
 pub async fn calibration(
     State(service): State<Service>,
     ApiJson(request): ApiJson<CalibrationRequest>,
-) -> Result<Json<CalibrationResponse>, ApiError> {
+) -> Result<Response, ApiError> {
     let engine = service.engine()?;
     request.options.validate()?;
     let model = engine.model(request.model.as_deref())?;
+    let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let (vectors, dropped) = embed_with(engine, model, Arc::new(set), request.skip_bad).await?;
     skipped.extend(dropped);
@@ -148,18 +183,23 @@ pub async fn calibration(
     let report = tokio::task::spawn_blocking(move || stats::calibrate(&vectors, &options))
         .await
         .map_err(ApiError::internal)??;
+    if request.format == ReportFormat::Html {
+        let provenance = Provenance::now(vec![map_bundle(model)], probe_sha256, probe_rows);
+        return Ok(html_page(stats::calibration_html(&report, &provenance)));
+    }
     Ok(Json(CalibrationResponse {
         model: ModelRef::of(model),
         skipped: skipped.iter().map(|s| s.to_string()).collect(),
         report,
-    }))
+    })
+    .into_response())
 }
 
 pub async fn drift(
     State(service): State<Service>,
     caller: Option<Extension<Caller>>,
     ApiJson(request): ApiJson<DriftRequest>,
-) -> Result<Json<DriftResponse>, ApiError> {
+) -> Result<Response, ApiError> {
     let engine = service.engine()?;
     request.options.validate()?;
     let from = engine
@@ -180,6 +220,7 @@ pub async fn drift(
             .check_free(&save.name, save.replace)
             .map_err(|e| ApiError::from(e).at("save_map.name"))?;
     }
+    let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
     let (a, dropped_a) = embed_with(engine, from, Arc::clone(&set), request.skip_bad).await?;
@@ -207,13 +248,19 @@ pub async fn drift(
         }
         None => None,
     };
+    if request.format == ReportFormat::Html {
+        let bundles = vec![map_bundle(from), map_bundle(to)];
+        let provenance = Provenance::now(bundles, probe_sha256, probe_rows);
+        return Ok(html_page(stats::drift_html(&report, &provenance)));
+    }
     Ok(Json(DriftResponse {
         from: ModelRef::of(from),
         to: ModelRef::of(to),
         skipped: skipped.iter().map(|s| s.to_string()).collect(),
         saved_map,
         report,
-    }))
+    })
+    .into_response())
 }
 
 fn map_bundle(model: &Model) -> MapBundle {

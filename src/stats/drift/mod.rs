@@ -9,7 +9,7 @@ use ndarray::{concatenate, Array2, Axis};
 use serde::{Deserialize, Serialize};
 
 use super::agreement::{kendall_tau_b, ks_two_sample, spearman_rho, KsTest};
-use super::calibration::{calibrate_checked, CalibrationOptions, CalibrationReport};
+use super::calibration::{calibrate_checked, cosine_range, CalibrationOptions, CalibrationReport};
 use super::continuity::{ContinuityMap, FittedMap};
 use super::pairs::ProbeVectors;
 use super::spaces::{linear_cka, procrustes, ProcrustesFit};
@@ -247,8 +247,10 @@ pub fn drift(
     to.check()?;
     same_probe(from, to)?;
     let (sa, sb) = (from.similarities(), to.similarities());
-    let cal_from = calibrate_checked(from, &sa, &options.calibration)?;
-    let cal_to = calibrate_checked(to, &sb, &options.calibration)?;
+    // One histogram range for both, so their histograms share bins.
+    let range = cosine_range(&[&sa, &sb]);
+    let cal_from = calibrate_checked(from, &sa, &options.calibration, range)?;
+    let cal_to = calibrate_checked(to, &sb, &options.calibration, range)?;
 
     let m = from.caption_count();
     let cos_a: Vec<f64> = sa

@@ -3,11 +3,16 @@
 
 use std::fmt::Write as _;
 
-use super::page::{maybe, number, page, table, td, td_text};
+use super::page::{
+    affine_formula, maybe, maybe_percent, number, page, percent, percent_interval, table, td,
+    td_text,
+};
+use super::provenance::Provenance;
 use crate::stats::calibration::CalibrationReport;
 use crate::stats::hinge::HingeFigures;
+use crate::stats::retrieval::RetrievalFigures;
 use crate::stats::summary::Distribution;
-use crate::stats::svg::{self, escape, HistogramSeries, PALETTE};
+use crate::stats::svg::{self, escape, Curve, Estimate, HistogramSeries, PALETTE};
 
 fn distribution_row(name: &str, d: &Distribution) -> Vec<String> {
     let q = &d.quantiles;
@@ -34,7 +39,7 @@ fn hinge_rows(name: &str, f: &HingeFigures) -> Vec<String> {
         td(number(f.max_of_hinges)),
         td(number(f.max_of_hinges_caption_negatives)),
         td(number(f.max_of_hinges_image_negatives)),
-        td(number(100.0 * f.violation_rate)),
+        td(percent(100.0 * f.violation_rate)),
     ]
 }
 
@@ -82,11 +87,10 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
         &["scale", "value", "meaning"],
         &[
             vec![
-                td_text("affine a, b"),
-                td(s.affine.as_ref().map_or_else(
-                    || "n/a".into(),
-                    |a| format!("a = {}, b = {}", number(a.a), number(a.b)),
-                )),
+                td_text("affine"),
+                td(s.affine
+                    .as_ref()
+                    .map_or_else(|| "n/a".into(), |a| affine_formula(a.a, a.b))),
                 td_text(
                     "a c + b sends the median hardest negative to 0 and the median true pair to 1",
                 ),
@@ -125,28 +129,13 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
 
     out.push_str("<h2>Retrieval</h2>");
     let (i2t, t2i) = (&r.retrieval.image_to_text, &r.retrieval.text_to_image);
-    out.push_str(&svg::bars(
-        "recall at K",
-        &[
-            ("R@1".into(), vec![i2t.r_at_1, t2i.r_at_1]),
-            ("R@5".into(), vec![i2t.r_at_5, t2i.r_at_5]),
-            ("R@10".into(), vec![i2t.r_at_10, t2i.r_at_10]),
-        ],
+    out.push_str(&svg::estimates(
+        "recall at K with 95 % Wilson intervals",
+        &recall_groups(&[i2t, t2i]),
         &[("image to text", PALETTE[0]), ("text to image", PALETTE[1])],
         100.0,
         "recall %",
     ));
-    let retrieval_row = |name: &str, f: &crate::stats::retrieval::RetrievalFigures| {
-        vec![
-            td_text(name),
-            td(f.queries.to_string()),
-            td(number(f.r_at_1)),
-            td(number(f.r_at_5)),
-            td(number(f.r_at_10)),
-            td(number(f.median_rank)),
-            td(number(f.mean_rank)),
-        ]
-    };
     out.push_str(&table(
         &[
             "direction",
@@ -164,8 +153,8 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
     ));
     let _ = write!(
         out,
-        "<p>rsum (sum of the six recalls, percentage points): <b>{}</b>. A caption or image ranks above the true one only with a strictly greater cosine.</p>",
-        number(r.retrieval.rsum)
+        "<p>rsum (sum of the six recalls, percentage points): <b>{}</b>. A caption or image ranks above the true one only with a strictly greater cosine. Brackets: 95 % Wilson score intervals (Wilson 1927), queries taken as independent trials.</p>",
+        percent(r.retrieval.rsum)
     );
 
     let h = &r.hinge;
@@ -189,55 +178,180 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
     ));
     out.push_str("<p class=\"note\">Means per positive pair. SH: sum of hinges; MH: max of hinges (hardest negative); captions/images: the caption-negative and image-negative terms.</p>");
 
+    examples(r, out);
+
     out.push_str("<h2>Contrast captions</h2>");
     let ct = &r.contrast;
     if ct.overall.count == 0 {
         out.push_str("<p>The probe set has no contrast captions.</p>");
-    } else {
-        let groups: Vec<(String, Vec<f64>)> = ct
-            .by_label
-            .iter()
-            .map(|(label, f)| (label.clone(), vec![100.0 * f.rate.unwrap_or(0.0)]))
-            .collect();
-        out.push_str(&svg::bars(
-            "true caption beats contrast, per changed fact",
-            &groups,
-            &[("true caption strictly above contrast", PALETTE[2])],
-            100.0,
+        return;
+    }
+    let groups: Vec<(String, Vec<Estimate>)> = ct
+        .by_label
+        .iter()
+        .map(|(label, f)| (label.clone(), vec![contrast_estimate(f)]))
+        .collect();
+    out.push_str(&svg::estimates(
+        "true caption beats contrast, per changed fact, with 95 % Wilson intervals",
+        &groups,
+        &[("true caption strictly above contrast", PALETTE[2])],
+        100.0,
+        "rate %",
+    ));
+    let row = |name: String, f: &crate::stats::contrast::ContrastFigures| {
+        vec![
+            name,
+            td(f.count.to_string()),
+            td(f.wins.to_string()),
+            td(f.ties.to_string()),
+            td(maybe_percent(f.rate)),
+            td(percent_interval(f.rate_interval.map(|i| i.scaled(100.0)))),
+            td(maybe(f.auc)),
+            td(maybe(f.mean_gap)),
+        ]
+    };
+    let mut rows: Vec<Vec<String>> = ct
+        .by_label
+        .iter()
+        .map(|(label, f)| row(td_text(label), f))
+        .collect();
+    rows.push(row("<td><b>all</b></td>".into(), &ct.overall));
+    out.push_str(&table(
+        &[
+            "changed",
+            "pairs",
+            "wins",
+            "ties",
             "rate %",
-        ));
-        let mut rows: Vec<Vec<String>> = ct
-            .by_label
-            .iter()
-            .map(|(label, f)| {
-                vec![
-                    td_text(label),
-                    td(f.count.to_string()),
-                    td(f.wins.to_string()),
-                    td(f.ties.to_string()),
-                    td(maybe(f.rate.map(|v| 100.0 * v))),
-                    td(maybe(f.mean_gap)),
-                ]
-            })
-            .collect();
-        let o = &ct.overall;
-        rows.push(vec![
-            "<td><b>all</b></td>".into(),
-            td(o.count.to_string()),
-            td(o.wins.to_string()),
-            td(o.ties.to_string()),
-            td(maybe(o.rate.map(|v| 100.0 * v))),
-            td(maybe(o.mean_gap)),
-        ]);
-        out.push_str(&table(
-            &["changed", "pairs", "wins", "ties", "rate %", "mean gap"],
-            &rows,
-        ));
+            "95 % interval",
+            "AUC",
+            "mean gap",
+        ],
+        &rows,
+    ));
+    out.push_str("<p class=\"note\">rate: the true caption's cosine strictly above its contrast's, for the same image (paired). Interval: Wilson score, 95 % (Wilson 1927). AUC: area under the ROC curve of the true captions' cosines against the contrasts' cosines, unpaired (Hanley and McNeil 1982); 0.5 is chance.</p>");
+    let curves: Vec<Curve> = ct
+        .roc
+        .iter()
+        .zip(PALETTE.iter().cycle())
+        .map(|((label, roc), colour)| Curve {
+            label,
+            points: roc.points.iter().map(|p| (p[0], p[1])).collect(),
+            colour,
+        })
+        .collect();
+    out.push_str(&svg::roc_curves(
+        "ROC of true against contrast cosines, per changed fact",
+        &curves,
+    ));
+}
+
+/// The lowest true pairs and the contrasts the reward got wrong.
+fn examples(r: &CalibrationReport, out: &mut String) {
+    out.push_str("<h2>Pairs to look at</h2>");
+    let ex = &r.examples;
+    let rows: Vec<Vec<String>> = ex
+        .lowest_true
+        .iter()
+        .map(|e| {
+            vec![
+                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_text(&e.caption),
+                td(number(e.true_cos)),
+            ]
+        })
+        .collect();
+    out.push_str("<p>The true pairs of lowest cosine:</p>");
+    out.push_str(&table(&["image", "true caption", "cosine"], &rows));
+    if ex.lost_contrasts.is_empty() {
+        out.push_str("<p>Every contrast scored strictly below its true caption.</p>");
+        return;
+    }
+    let rows: Vec<Vec<String>> = ex
+        .lost_contrasts
+        .iter()
+        .map(|e| {
+            vec![
+                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_text(e.changed.as_deref().unwrap_or("")),
+                td_text(&e.caption),
+                td_text(e.contrast.as_deref().unwrap_or("")),
+                td(number(e.true_cos)),
+                td(maybe(e.contrast_cos)),
+            ]
+        })
+        .collect();
+    out.push_str(
+        "<p>Contrasts the reward got wrong (scored at or above the true caption), worst first:</p>",
+    );
+    out.push_str(&table(
+        &[
+            "image",
+            "changed",
+            "true caption",
+            "contrast",
+            "true cos",
+            "contrast cos",
+        ],
+        &rows,
+    ));
+}
+
+/// One estimate per recall, for the interval chart.
+pub(super) fn recall_groups(directions: &[&RetrievalFigures]) -> Vec<(String, Vec<Estimate>)> {
+    let at = |f: &RetrievalFigures, k: usize| match k {
+        1 => (f.r_at_1, f.intervals.r_at_1),
+        5 => (f.r_at_5, f.intervals.r_at_5),
+        _ => (f.r_at_10, f.intervals.r_at_10),
+    };
+    [1, 5, 10]
+        .into_iter()
+        .map(|k| {
+            let values = directions
+                .iter()
+                .map(|f| {
+                    let (value, interval) = at(f, k);
+                    Estimate {
+                        value,
+                        interval: Some(interval),
+                    }
+                })
+                .collect();
+            (format!("R@{k}"), values)
+        })
+        .collect()
+}
+
+/// A contrast rate in percent with its interval.
+pub(super) fn contrast_estimate(f: &crate::stats::contrast::ContrastFigures) -> Estimate {
+    Estimate {
+        value: 100.0 * f.rate.unwrap_or(0.0),
+        interval: f.rate_interval.map(|i| i.scaled(100.0)),
     }
 }
 
-/// The calibration report as one self-contained HTML page.
-pub fn calibration_html(report: &CalibrationReport) -> String {
+fn retrieval_row(name: &str, f: &RetrievalFigures) -> Vec<String> {
+    let with = |v: f64, i: crate::stats::intervals::Interval| {
+        td(format!(
+            "{} <span class=\"note\">[{}]</span>",
+            percent(v),
+            percent_interval(Some(i))
+        ))
+    };
+    vec![
+        td_text(name),
+        td(f.queries.to_string()),
+        with(f.r_at_1, f.intervals.r_at_1),
+        with(f.r_at_5, f.intervals.r_at_5),
+        with(f.r_at_10, f.intervals.r_at_10),
+        td(number(f.median_rank)),
+        td(number(f.mean_rank)),
+    ]
+}
+
+/// The calibration report as one self-contained HTML page, with where its
+/// numbers come from.
+pub fn calibration_html(report: &CalibrationReport, provenance: &Provenance) -> String {
     let mut body = String::new();
     let _ = write!(
         body,
@@ -248,6 +362,7 @@ pub fn calibration_html(report: &CalibrationReport) -> String {
         report.counts.contrasts,
         report.counts.dimension
     );
+    body.push_str(&provenance.html());
     calibration_sections(report, &mut body);
     page(&format!("befit calibration: {}", report.bundle), &body)
 }

@@ -4,11 +4,101 @@
 
 use std::fmt::Write as _;
 
-use super::calibration::calibration_sections;
-use super::page::{maybe, number, page, table, td, td_text};
+use serde::{Deserialize, Serialize};
+
+use super::calibration::{calibration_sections, contrast_estimate, recall_groups};
+use super::page::{affine_formula, maybe, number, page, percent, table, td, td_text};
+use super::provenance::Provenance;
 use crate::stats::continuity::ContinuityMap;
 use crate::stats::drift::{DriftReport, PairKind};
-use crate::stats::svg::{self, escape, Curve, HistogramSeries, PALETTE};
+use crate::stats::summary::median;
+use crate::stats::svg::{self, escape, Curve, HistogramSeries, PointGroup, PALETTE};
+
+/// When the drift headline calls a swap safe. Defaults are common practice
+/// for reward models, with no published source; `docs/statistics.md`
+/// explains each.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct HeadlineThresholds {
+    /// Least Spearman rho over all pairs: below it the bundles disagree on
+    /// which captions fit better, and no map can fix that.
+    pub min_spearman: f64,
+    /// Largest RMSE of the monotone map (cosine units) still called small:
+    /// the reward error a run keeps after remapping.
+    pub max_map_rmse: f64,
+    /// Largest fall of the overall contrast rate, in percentage points.
+    pub max_contrast_drop: f64,
+}
+
+impl Default for HeadlineThresholds {
+    fn default() -> Self {
+        HeadlineThresholds {
+            min_spearman: 0.9,
+            max_map_rmse: 0.02,
+            max_contrast_drop: 1.0,
+        }
+    }
+}
+
+/// One sentence on a drift: how far rewards move, what error is left after
+/// the map, and whether the swap looks safe against `t`.
+pub fn drift_headline(r: &DriftReport, t: &HeadlineThresholds) -> String {
+    let moves: Vec<f64> = r
+        .scatter
+        .points
+        .iter()
+        .map(|p| (p[0] - p[1]).abs())
+        .collect();
+    let typical = if moves.is_empty() {
+        "an unmeasured amount (no pairs sampled)".to_string()
+    } else {
+        format!("a median of {} in cosine", number(median(&moves)))
+    };
+    let rho = r.agreement.all_pairs.spearman_rho;
+    let rmse = r.continuity.monotone.rmse;
+    let drop = match (r.from.contrast.overall.rate, r.to.contrast.overall.rate) {
+        (Some(a), Some(b)) => Some(100.0 * (a - b)),
+        _ => None,
+    };
+    let mut problems = Vec::new();
+    if rho.is_none_or(|v| v < t.min_spearman) {
+        problems.push(format!(
+            "rank agreement (Spearman {}) is below {}",
+            maybe(rho),
+            number(t.min_spearman)
+        ));
+    }
+    if rmse.is_nan() || rmse > t.max_map_rmse {
+        problems.push(format!(
+            "the map leaves an RMSE of {} above {}",
+            number(rmse),
+            number(t.max_map_rmse)
+        ));
+    }
+    if let Some(d) = drop.filter(|d| *d > t.max_contrast_drop) {
+        problems.push(format!(
+            "the contrast rate falls by {} points (more than {})",
+            percent(d),
+            percent(t.max_contrast_drop)
+        ));
+    }
+    let verdict = if problems.is_empty() {
+        format!(
+            "the swap looks safe (Spearman {} at least {}, map RMSE at most {}, contrast rate down at most {} points)",
+            maybe(rho),
+            number(t.min_spearman),
+            number(t.max_map_rmse),
+            percent(t.max_contrast_drop)
+        )
+    } else {
+        format!("the swap needs a look: {}", problems.join("; "))
+    };
+    format!(
+        "Rewards move by {typical} from {} to {}; after the monotone map an RMSE of {} is left; {verdict}.",
+        r.from_bundle,
+        r.to_bundle,
+        number(rmse)
+    )
+}
 
 /// Points along a continuity map over [lo, hi], for drawing.
 fn curve(map: &ContinuityMap, lo: f64, hi: f64) -> Vec<(f64, f64)> {
@@ -28,25 +118,30 @@ fn curve(map: &ContinuityMap, lo: f64, hi: f64) -> Vec<(f64, f64)> {
     }
 }
 
-/// The drift report as one self-contained HTML page.
-pub fn drift_html(report: &DriftReport) -> String {
+/// The drift report as one self-contained HTML page: a headline against
+/// the default [`HeadlineThresholds`], where the numbers come from, then
+/// the figures; the two full calibrations folded away at the end.
+pub fn drift_html(report: &DriftReport, provenance: &Provenance) -> String {
     let r = report;
     let (from, to) = (escape(&r.from_bundle), escape(&r.to_bundle));
     let mut b = String::new();
     let _ = write!(
         b,
-        "<h1>Drift from {from} to {to}</h1><p>{} images, {} true captions, {} contrast captions ({} pairs); dimension {} to {}.</p>",
+        "<h1>Drift from {from} to {to}</h1><p class=\"headline\">{}</p><p>{} images, {} true captions, {} contrast captions ({} pairs); dimension {} to {}.</p>",
+        escape(&drift_headline(r, &HeadlineThresholds::default())),
         r.counts.images, r.counts.captions, r.counts.contrasts, r.counts.pairs, r.counts.dimension_from, r.counts.dimension_to
     );
+    b.push_str(&provenance.html());
 
     agreement(r, &mut b);
     continuity(r, &mut b);
     before_and_after(r, &mut b);
     moved_pairs_and_figures(r, &mut b);
-    let _ = write!(b, "<h2>Calibration of {from}</h2>");
-    calibration_sections(&r.from, &mut b);
-    let _ = write!(b, "<h2>Calibration of {to}</h2>");
-    calibration_sections(&r.to, &mut b);
+    for (name, cal) in [(&from, &r.from), (&to, &r.to)] {
+        let _ = write!(b, "<details><summary>Full calibration of {name}</summary>");
+        calibration_sections(cal, &mut b);
+        b.push_str("</details>");
+    }
     page(
         &format!("befit drift: {} to {}", r.from_bundle, r.to_bundle),
         &b,
@@ -130,9 +225,31 @@ fn continuity(r: &DriftReport, b: &mut String) {
             (a.min(v), z.max(v))
         });
     let (lo, hi) = if lo < hi { (lo, hi) } else { (-1.0, 1.0) };
+    // Pairs 0..M are true pairs, the rest contrasts; the sample keeps every
+    // stride-th pair in order.
+    let stride = r.scatter.stride.max(1);
+    let (mut trues, mut contrasts) = (Vec::new(), Vec::new());
+    for (k, p) in r.scatter.points.iter().enumerate() {
+        if k * stride < r.counts.captions {
+            trues.push(*p);
+        } else {
+            contrasts.push(*p);
+        }
+    }
     b.push_str(&svg::scatter(
         "old cosine against new cosine, with the fitted maps",
-        &r.scatter.points,
+        &[
+            PointGroup {
+                label: "true pairs",
+                colour: PALETTE[0],
+                points: trues,
+            },
+            PointGroup {
+                label: "contrast pairs",
+                colour: PALETTE[3],
+                points: contrasts,
+            },
+        ],
         &[
             Curve {
                 label: "affine map",
@@ -178,7 +295,16 @@ fn continuity(r: &DriftReport, b: &mut String) {
     b.push_str(&table(
         &["map", "pairs", "RMSE", "max error", "map (JSON)"],
         &[
-            fit_row("affine (least squares)", &r.continuity.affine),
+            fit_row(
+                &format!(
+                    "affine (least squares): {}",
+                    match r.continuity.affine.map {
+                        ContinuityMap::Affine { a, b } => affine_formula(a, b),
+                        ContinuityMap::Monotone { .. } => String::new(),
+                    }
+                ),
+                &r.continuity.affine,
+            ),
             fit_row("monotone (isotonic)", &r.continuity.monotone),
         ],
     ));
@@ -223,34 +349,18 @@ fn before_and_after(r: &DriftReport, b: &mut String) {
 
     b.push_str("<h2>Retrieval before and after</h2>");
     let (fa, fb) = (&r.from.retrieval, &r.to.retrieval);
-    b.push_str(&svg::bars(
-        "recall at K under both bundles",
-        &[
-            (
-                "i2t R@1".into(),
-                vec![fa.image_to_text.r_at_1, fb.image_to_text.r_at_1],
-            ),
-            (
-                "i2t R@5".into(),
-                vec![fa.image_to_text.r_at_5, fb.image_to_text.r_at_5],
-            ),
-            (
-                "i2t R@10".into(),
-                vec![fa.image_to_text.r_at_10, fb.image_to_text.r_at_10],
-            ),
-            (
-                "t2i R@1".into(),
-                vec![fa.text_to_image.r_at_1, fb.text_to_image.r_at_1],
-            ),
-            (
-                "t2i R@5".into(),
-                vec![fa.text_to_image.r_at_5, fb.text_to_image.r_at_5],
-            ),
-            (
-                "t2i R@10".into(),
-                vec![fa.text_to_image.r_at_10, fb.text_to_image.r_at_10],
-            ),
-        ],
+    let mut groups = Vec::new();
+    for (direction, one, other) in [
+        ("i2t", &fa.image_to_text, &fb.image_to_text),
+        ("t2i", &fa.text_to_image, &fb.text_to_image),
+    ] {
+        for (label, values) in recall_groups(&[one, other]) {
+            groups.push((format!("{direction} {label}"), values));
+        }
+    }
+    b.push_str(&svg::estimates(
+        "recall at K under both bundles, with 95 % Wilson intervals",
+        &groups,
         &[(&r.from_bundle, PALETTE[0]), (&r.to_bundle, PALETTE[1])],
         100.0,
         "recall %",
@@ -258,21 +368,21 @@ fn before_and_after(r: &DriftReport, b: &mut String) {
 
     if r.counts.contrasts > 0 {
         b.push_str("<h2>Contrast rates before and after</h2>");
-        let groups: Vec<(String, Vec<f64>)> = r
+        let groups: Vec<(String, Vec<svg::Estimate>)> = r
             .from
             .contrast
             .by_label
             .iter()
-            .map(|(label, f)| {
-                let after = r.to.contrast.by_label.get(label).and_then(|g| g.rate);
-                (
+            .filter_map(|(label, f)| {
+                let after = r.to.contrast.by_label.get(label)?;
+                Some((
                     label.clone(),
-                    vec![100.0 * f.rate.unwrap_or(0.0), 100.0 * after.unwrap_or(0.0)],
-                )
+                    vec![contrast_estimate(f), contrast_estimate(after)],
+                ))
             })
             .collect();
-        b.push_str(&svg::bars(
-            "true caption beats contrast, per changed fact",
+        b.push_str(&svg::estimates(
+            "true caption beats contrast, per changed fact, with 95 % Wilson intervals",
             &groups,
             &[(&r.from_bundle, PALETTE[0]), (&r.to_bundle, PALETTE[1])],
             100.0,

@@ -4,14 +4,17 @@
 //!
 //! - `page`: the frame, style sheet, tables, number formatting, escaping.
 //! - `calibration`: one bundle's page, and its sections the drift page reuses.
-//! - `drift`: two bundles compared.
+//! - `drift`: two bundles compared, under a one-sentence headline.
+//! - `provenance`: bundles, probe digest, version and time on every page.
 
 mod calibration;
 mod drift;
 mod page;
+mod provenance;
 
 pub use calibration::calibration_html;
-pub use drift::drift_html;
+pub use drift::{drift_headline, drift_html, HeadlineThresholds};
+pub use provenance::{rfc3339_utc, sha256_hex, Provenance};
 
 #[cfg(test)]
 mod tests {
@@ -33,6 +36,18 @@ mod tests {
         v
     }
 
+    fn provenance() -> Provenance {
+        let bundle = |id: &str| crate::stats::MapBundle {
+            id: id.into(),
+            digest: "sha256:<d>".into(),
+        };
+        Provenance::now(
+            vec![bundle("<b>evil</b>"), bundle("new")],
+            sha256_hex(b"abc"),
+            2,
+        )
+    }
+
     fn assert_clean(html: &str) {
         assert!(html.starts_with("<!DOCTYPE html>"));
         assert!(!html.contains("<script"), "unescaped script");
@@ -46,9 +61,13 @@ mod tests {
     #[test]
     fn calibration_page_escapes_text_and_stays_offline() {
         let r = calibrate(&hostile(), &CalibrationOptions::default()).unwrap();
-        let html = calibration_html(&r);
+        let html = calibration_html(&r, &provenance());
         assert_clean(&html);
         assert!(html.contains("&lt;b&gt;evil&lt;/b&gt;"));
+        // Provenance: the digest escaped, the probe's sha256, the version.
+        assert!(html.contains("sha256:&lt;d&gt;"));
+        assert!(html.contains("ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"));
+        assert!(html.contains(&format!("befit {}", env!("CARGO_PKG_VERSION"))));
         assert!(html.contains("&lt;colour&gt;"));
         assert!(
             html.matches("<svg").count() >= 3,
@@ -60,8 +79,16 @@ mod tests {
     fn drift_page_escapes_captions_and_draws_the_scatter() {
         let v = hostile();
         let r = drift(&v, &v, &DriftOptions::default()).unwrap();
-        let html = drift_html(&r);
+        let html = drift_html(&r, &provenance());
         assert_clean(&html);
+        // The same bundle twice: nothing moves, the swap looks safe, and the
+        // two calibrations are folded away.
+        assert!(
+            html.contains("class=\"headline\">Rewards move by a median of 0 in cosine"),
+            "{html}"
+        );
+        assert!(html.contains("the swap looks safe"));
+        assert_eq!(html.matches("<details>").count(), 2);
         assert!(html.contains("&lt;script&gt;alert(&#39;x&#39;)&lt;/script&gt; &amp; co"));
         assert!(html.contains("a&quot;b.png"));
         assert!(html.contains("<circle"));

@@ -12,15 +12,51 @@ table{border-collapse:collapse;margin:.5em 0}td,th{padding:.2em .6em;border-bott
 th:first-child,td:first-child{text-align:left}td.text{text-align:left;max-width:28em}\
 .tick{font-size:10px;fill:#444}.label{font-size:12px;fill:#222}\
 .legend span{margin-right:1.2em;font-size:.9em}.legend i{display:inline-block;width:.9em;height:.9em;margin-right:.3em;vertical-align:-.1em}\
-.note{color:#555;font-size:.9em}code{font-size:.9em}";
+.note{color:#555;font-size:.9em}code{font-size:.9em;word-break:break-all}\
+.headline{font-size:1.1em;background:#f3f6fa;border-left:4px solid #0072B2;padding:.6em 1em}\
+details{margin:1em 0}summary{cursor:pointer;font-weight:600}img.thumb{width:64px;height:64px;object-fit:cover;vertical-align:middle}";
 
-/// A figure with four decimals, or "n/a".
+/// A figure to four decimals without trailing zeros (0.7, not 0.7000), or
+/// "n/a".
 pub(super) fn number(v: f64) -> String {
+    if !v.is_finite() {
+        return "n/a".into();
+    }
+    let text = format!("{v:.4}");
+    let text = text.trim_end_matches('0').trim_end_matches('.');
+    if text == "-0" {
+        "0".into()
+    } else {
+        text.into()
+    }
+}
+
+/// A percentage to one decimal (79.3), or "n/a".
+pub(super) fn percent(v: f64) -> String {
     if v.is_finite() {
-        format!("{v:.4}")
+        format!("{v:.1}")
     } else {
         "n/a".into()
     }
+}
+
+/// A fraction as a percentage to one decimal, or "n/a".
+pub(super) fn maybe_percent(fraction: Option<f64>) -> String {
+    fraction.map_or_else(|| "n/a".into(), |f| percent(100.0 * f))
+}
+
+/// An affine scale as a formula: `10.56 * c - 8.27`.
+pub(super) fn affine_formula(a: f64, b: f64) -> String {
+    let sign = if b < 0.0 { '-' } else { '+' };
+    format!("{a:.2} * c {sign} {:.2}", b.abs())
+}
+
+/// An interval in percent: "93.1 to 98.9".
+pub(super) fn percent_interval(i: Option<crate::stats::intervals::Interval>) -> String {
+    i.map_or_else(
+        || "n/a".into(),
+        |i| format!("{} to {}", percent(i.low), percent(i.high)),
+    )
 }
 
 /// An optional figure, or "n/a".
@@ -62,4 +98,21 @@ pub(super) fn td(v: impl AsRef<str>) -> String {
 /// A text cell, escaped.
 pub(super) fn td_text(v: &str) -> String {
     format!("<td class=\"text\">{}</td>", escape(v))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn numbers_print_without_padding_and_signs_fold_in() {
+        assert_eq!(number(0.7), "0.7");
+        assert_eq!(number(0.12345), "0.1235");
+        assert_eq!(number(-0.00001), "0");
+        assert_eq!(number(2.0), "2");
+        assert_eq!(percent(79.3), "79.3");
+        assert_eq!(maybe_percent(Some(0.97)), "97.0");
+        assert_eq!(affine_formula(10.5612, -8.2694), "10.56 * c - 8.27");
+        assert_eq!(affine_formula(1.0, 0.5), "1.00 * c + 0.50");
+    }
 }
