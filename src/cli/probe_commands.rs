@@ -126,23 +126,6 @@ fn embed(model: &OfflineModel, set: &ProbeSet, skip_bad: bool) -> anyhow::Result
     Ok(embedded.vectors)
 }
 
-/// Below this many probe images, figures move by whole points per image;
-/// common practice, no source: the bundled probe set has 1,000.
-const SMALL_PROBE_IMAGES: usize = 100;
-
-/// A warning for a probe set too small for its figures to mean much.
-fn small_probe_warning(images: usize) -> Option<String> {
-    (images < SMALL_PROBE_IMAGES).then(|| {
-        format!(
-            "only {images} probe images: R@1 by chance alone is 1/{images} = {:.1}%, one image moves \
-             R@K by {:.1} points, and the suggested scales rest on {images} true pairs; \
-             use {SMALL_PROBE_IMAGES} or more images for figures to rely on",
-            100.0 / images as f64,
-            100.0 / images as f64,
-        )
-    })
-}
-
 fn write_text(path: &Path, text: &str) -> anyhow::Result<()> {
     std::fs::write(path, text).with_context(|| format!("writing {}", path.display()))
 }
@@ -159,7 +142,7 @@ pub fn calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
     let bundle = model.map_bundle();
     let vectors = embed(&model, &set, a.output.skip_bad)?;
     let report = stats::calibrate(&vectors, &options)?;
-    if let Some(warning) = small_probe_warning(report.counts.images) {
+    if let Some(warning) = stats::small_probe_warning(report.counts.images) {
         eprintln!("befit: warning: {warning}");
     }
     if let Some(path) = &a.output.report {
@@ -205,7 +188,7 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
         )
     };
     let report = stats::drift(&from, &to, &options)?;
-    if let Some(warning) = small_probe_warning(from.images.nrows()) {
+    if let Some(warning) = stats::small_probe_warning(from.images.nrows()) {
         eprintln!("befit: warning: {warning}");
     }
     if let Some(path) = &a.output.report {

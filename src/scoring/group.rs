@@ -125,6 +125,23 @@ mod tests {
         })
     }
 
+    /// One group over the image (1, 0), no references.
+    fn score_on_x(
+        spec: &RewardSpec,
+        samples: &[Arc<CaptionVector>],
+        greedy: Option<&Arc<CaptionVector>>,
+        signals: Option<&[Signals]>,
+    ) -> GroupScores {
+        let vectors = GroupVectors {
+            image: &[1.0, 0.0],
+            samples,
+            references: &[],
+            greedy: greedy.map(|v| &**v),
+            signals,
+        };
+        score_group(spec, "img".into(), &vectors)
+    }
+
     #[derive(Debug)]
     struct Halve;
     impl Remap for Halve {
@@ -145,17 +162,7 @@ mod tests {
             caption([0.6, 0.8]),
             caption([0.0, 1.0]),
         ];
-        let out = score_group(
-            &spec,
-            "img".into(),
-            &GroupVectors {
-                image: &[1.0, 0.0],
-                samples: &samples,
-                references: &[],
-                greedy: None,
-                signals: None,
-            },
-        );
+        let out = score_on_x(&spec, &samples, None, None);
         let want = [(2.0, 1.25), (1.5, 0.5), (0.0, -1.75)];
         for (s, (reward, advantage)) in out.samples.iter().zip(want) {
             assert!(
@@ -170,17 +177,7 @@ mod tests {
         let spec = RewardSpec::new(Scale::Cosine, Baseline::Greedy, Some(Arc::new(Halve))).unwrap();
         let samples = [caption([0.8, 0.6])];
         let greedy = caption([0.6, 0.8]);
-        let out = score_group(
-            &spec,
-            "img".into(),
-            &GroupVectors {
-                image: &[1.0, 0.0],
-                samples: &samples,
-                references: &[],
-                greedy: Some(&greedy),
-                signals: None,
-            },
-        );
+        let out = score_on_x(&spec, &samples, Some(&greedy), None);
         // cosine stays raw (0.8); reward 0.4; greedy reward 0.3; advantage 0.1.
         assert!((out.samples[0].cosine - 0.8).abs() < 1e-6);
         assert!((out.samples[0].reward - 0.4).abs() < 1e-6);
@@ -210,17 +207,7 @@ mod tests {
             Signals::of_text("red cube", &[1, 2], None),
             Signals::of_text("a red cube here", &[1, 2, 3, 4], None),
         ];
-        let out = score_group(
-            &spec,
-            "img".into(),
-            &GroupVectors {
-                image: &[1.0, 0.0],
-                samples: &samples,
-                references: &[],
-                greedy: None,
-                signals: Some(&signals),
-            },
-        );
+        let out = score_on_x(&spec, &samples, None, Some(&signals));
         let got: Vec<(f32, f32)> = out
             .samples
             .iter()

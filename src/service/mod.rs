@@ -150,7 +150,7 @@ impl Service {
         let bank = CaptionBank::open(data_dir.root(), bank_config(&config.limits))?;
         let counts = high_water::Counts {
             images: store.image_count()?,
-            captions: bank.store().counts().map_err(BankError::from)?.captions,
+            captions: bank.store().caption_count().map_err(BankError::from)?,
         };
         high_water::check(data_dir.root(), counts, config.accept_smaller_stores)?;
         high_water::record(data_dir.root(), counts)?;
@@ -294,14 +294,12 @@ impl Service {
     /// The stores' counts as the new marks; a failure is logged (the data
     /// is safe; only the check at the next start is weaker).
     fn record_marks(&self) {
-        let counts = self.shared.store.image_count().ok().zip(
-            self.shared
-                .opened_bank
-                .store()
-                .counts()
-                .ok()
-                .map(|c| c.captions),
-        );
+        let counts = self
+            .shared
+            .store
+            .image_count()
+            .ok()
+            .zip(self.shared.opened_bank.store().caption_count().ok());
         let result = match counts {
             Some((images, captions)) => high_water::record(
                 self.shared.data_dir.root(),

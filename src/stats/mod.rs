@@ -117,3 +117,20 @@ pub enum StatsError {
         source: std::io::Error,
     },
 }
+
+/// Below this many probe images, figures move by whole points per image;
+/// common practice, no source: the bundled probe set has 1,000.
+pub const SMALL_PROBE_IMAGES: usize = 100;
+
+/// A warning for a probe set too small for its figures to mean much.
+pub fn small_probe_warning(images: usize) -> Option<String> {
+    (images < SMALL_PROBE_IMAGES).then(|| {
+        format!(
+            "only {images} probe images: R@1 by chance alone is 1/{images} = {:.1}%, one image moves \
+             R@K by {:.1} points, and the suggested scales rest on {images} true pairs; \
+             use {SMALL_PROBE_IMAGES} or more images for figures to rely on",
+            100.0 / images as f64,
+            100.0 / images as f64,
+        )
+    })
+}

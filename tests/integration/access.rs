@@ -470,18 +470,13 @@ fn without_keys_a_non_loopback_address_is_refused_unless_trusted() {
 
 /// `befit keys new` through the binary: the token on standard output, its hash in the file.
 fn new_key_by_binary(file: &Path, scope: &str, id: &str) -> String {
-    let out = Command::new(env!("CARGO_BIN_EXE_befit"))
-        .args(["keys", "new", "--keys"])
-        .arg(file)
-        .args(["--scope", scope, "--id", id])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
+    let stdout = stdout_of(
+        Command::new(env!("CARGO_BIN_EXE_befit"))
+            .args(["keys", "new", "--keys"])
+            .arg(file)
+            .args(["--scope", scope, "--id", id]),
     );
-    let token = String::from_utf8(out.stdout).unwrap().trim().to_string();
+    let token = String::from_utf8(stdout).unwrap().trim().to_string();
     let text = std::fs::read_to_string(file).unwrap();
     assert!(
         text.contains(&format!("{id} {scope} sha256:")) && !text.contains(&token),

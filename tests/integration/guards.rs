@@ -4,29 +4,9 @@
 //! field errors. `tests/client/test_guards.py` checks the same signals with
 //! an independent Python computation against the real binary.
 
-use axum::body::Body;
-use axum::http::Request;
-use http_body_util::BodyExt;
 use serde_json::{json, Value};
-use tower::ServiceExt;
 
 use crate::util::*;
-
-async fn raw_post(state: &befit::service::Service, uri: &str, body: &Value) -> (u16, String) {
-    let request = Request::builder()
-        .method("POST")
-        .uri(uri)
-        .header("content-type", "application/json")
-        .body(Body::from(serde_json::to_vec(body).unwrap()))
-        .unwrap();
-    let response = befit::server::app(state.clone())
-        .oneshot(request)
-        .await
-        .unwrap();
-    let status = response.status().as_u16();
-    let bytes = response.into_body().collect().await.unwrap().to_bytes();
-    (status, String::from_utf8(bytes.to_vec()).unwrap())
-}
 
 fn f(v: &Value) -> f64 {
     v.as_f64().unwrap()
@@ -79,7 +59,7 @@ async fn without_a_guard_the_answer_is_what_it_was() {
     let state = state();
     let captions = ["a big yellow square and a big purple cross", "cross cross"];
     let (status, plain) =
-        raw_post(&state, "/v1/rewards", &image_request(json!({}), &captions)).await;
+        post_text(&state, "/v1/rewards", &image_request(json!({}), &captions)).await;
     assert_eq!(status, 200, "{plain}");
     // The fields and their order before guards existed, and nothing else.
     for new in ["\"guard\"", "\"run\"", "\"warnings\"", "\"flagged\""] {
@@ -92,7 +72,7 @@ async fn without_a_guard_the_answer_is_what_it_was() {
     assert!(sample.windows(2).all(|w| w[0] < w[1]), "{plain}");
     // A guard with no penalties changes no number: the guarded answer with
     // its guard keys removed is the unguarded answer.
-    let (status, guarded) = raw_post(
+    let (status, guarded) = post_text(
         &state,
         "/v1/rewards",
         &image_request(json!({"guard": {}}), &captions),
@@ -342,31 +322,26 @@ async fn befit_score_applies_the_same_guard_as_the_route() {
     let dir = scratch_dir("score-guard");
     let input = dir.join("groups.jsonl");
     std::fs::write(&input, format!("{group}\n")).unwrap();
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
-        .args(["score", "--bundle"])
-        .arg(bundle_dir("blocks-v1"))
-        .arg("--input")
-        .arg(&input)
-        .arg("--image-root")
-        .arg(probe_dir())
-        .args([
-            "--scale",
-            "clip-s",
-            "--baseline",
-            "mean-of-others",
-            "--guard",
-        ])
-        .arg(guard.to_string())
-        .arg("--ort-lib")
-        .arg(ort_lib())
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
+    let stdout = stdout_of(
+        std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
+            .args(["score", "--bundle"])
+            .arg(bundle_dir("blocks-v1"))
+            .arg("--input")
+            .arg(&input)
+            .arg("--image-root")
+            .arg(probe_dir())
+            .args([
+                "--scale",
+                "clip-s",
+                "--baseline",
+                "mean-of-others",
+                "--guard",
+            ])
+            .arg(guard.to_string())
+            .arg("--ort-lib")
+            .arg(ort_lib()),
     );
-    let line: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let line: Value = serde_json::from_slice(&stdout).unwrap();
     // The command writes f32s widened to f64; the same numbers as f32.
     assert!(
         same(&line["samples"], &http["groups"][0]["samples"]),

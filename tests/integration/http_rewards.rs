@@ -164,9 +164,13 @@ async fn images_register_idempotently_from_raw_base64_and_path() {
     let (_, by_id) = post_json(&state, "/v1/rewards", &ask(json!({"id": expect}))).await;
     let (_, inline) = post_json(&state, "/v1/rewards", &ask(json!({"base64": b64(&bytes)}))).await;
     assert_eq!(by_id["groups"][0]["image"], expect);
-    assert_eq!(
-        inline["groups"][0]["samples"][0]["cosine"],
-        by_id["groups"][0]["samples"][0]["cosine"]
+    // The same image vector; the caption is encoded anew each time (no caption
+    // cache), in batches whose padding depends on concurrent tests, which moves
+    // float32 sums in the last bits only.
+    let cosine = |v: &Value| v["groups"][0]["samples"][0]["cosine"].as_f64().unwrap();
+    assert!(
+        (cosine(&inline) - cosine(&by_id)).abs() < 1e-6,
+        "{inline} vs {by_id}"
     );
 }
 

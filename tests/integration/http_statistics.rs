@@ -183,18 +183,7 @@ async fn html_format_answers_the_report_page_with_its_provenance() {
 }
 
 async fn html(state: &befit::service::Service, uri: &str, body: &Value) -> String {
-    use axum::body::Body;
-    use http_body_util::BodyExt;
-    use tower::ServiceExt;
-    let request = axum::http::Request::post(uri)
-        .header("content-type", "application/json")
-        .body(Body::from(serde_json::to_vec(body).unwrap()))
-        .unwrap();
-    let response = befit::server::app(state.clone())
-        .oneshot(request)
-        .await
-        .unwrap();
-    assert_eq!(response.status(), 200);
-    let bytes = response.into_body().collect().await.unwrap().to_bytes();
-    String::from_utf8(bytes.to_vec()).unwrap()
+    let (status, text) = post_text(state, uri, body).await;
+    assert_eq!(status, 200, "{text}");
+    text
 }

@@ -351,23 +351,18 @@ fn embed_missing_on_the_command_line_fills_a_second_bundle_once() {
         .collect();
     std::fs::write(&captions, lines).unwrap();
     let befit = |args: &[&str], bundle: &str| {
-        let out = Command::new(env!("CARGO_BIN_EXE_befit"))
-            .args(["bank"])
-            .args(args)
-            .arg("--bundle")
-            .arg(bundle_dir(bundle))
-            .arg("--data-dir")
-            .arg(data.join("d"))
-            .arg("--ort-lib")
-            .arg(ort_lib())
-            .output()
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
+        let stdout = stdout_of(
+            Command::new(env!("CARGO_BIN_EXE_befit"))
+                .args(["bank"])
+                .args(args)
+                .arg("--bundle")
+                .arg(bundle_dir(bundle))
+                .arg("--data-dir")
+                .arg(data.join("d"))
+                .arg("--ort-lib")
+                .arg(ort_lib()),
         );
-        serde_json::from_slice::<Value>(&out.stdout).unwrap()
+        serde_json::from_slice::<Value>(&stdout).unwrap()
     };
     let from = captions.to_str().unwrap();
     assert_eq!(befit(&["import", "--from", from], "blocks-v1")["added"], 5);

@@ -126,14 +126,38 @@ pub fn state() -> Service {
     state_with(&["blocks-v1"], Limits::default())
 }
 
-/// Sends one request through the router; returns status, headers and JSON body (Null when not JSON).
-pub async fn call(
+/// A POST of `body` as JSON through the router; status and the body as text
+/// (for answers whose bytes matter: key order, HTML).
+pub async fn post_text(state: &Service, uri: &str, body: &Value) -> (u16, String) {
+    let (status, bytes) = post_bytes(state, uri, body).await;
+    (status.as_u16(), String::from_utf8(bytes).unwrap())
+}
+
+async fn post_bytes(state: &Service, uri: &str, body: &Value) -> (StatusCode, Vec<u8>) {
+    let body = serde_json::to_vec(body).unwrap();
+    let (status, _, bytes) = call_raw(state, "POST", uri, "application/json", body).await;
+    (status, bytes)
+}
+
+/// Runs `command`, which must succeed (else its stderr is the failure); its stdout.
+pub fn stdout_of(command: &mut std::process::Command) -> Vec<u8> {
+    let out = command.output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    out.stdout
+}
+
+/// Sends one request through the router; returns status, headers and body bytes.
+pub async fn call_raw(
     state: &Service,
     method: &str,
     uri: &str,
     content_type: &str,
     body: Vec<u8>,
-) -> (StatusCode, axum::http::HeaderMap, Value) {
+) -> (StatusCode, axum::http::HeaderMap, Vec<u8>) {
     let request = Request::builder()
         .method(method)
         .uri(uri)
@@ -147,20 +171,28 @@ pub async fn call(
     let status = response.status();
     let headers = response.headers().clone();
     let bytes = response.into_body().collect().await.unwrap().to_bytes();
+    (status, headers, bytes.to_vec())
+}
+
+/// Sends one request through the router; returns status, headers and JSON body (Null when not JSON).
+pub async fn call(
+    state: &Service,
+    method: &str,
+    uri: &str,
+    content_type: &str,
+    body: Vec<u8>,
+) -> (StatusCode, axum::http::HeaderMap, Value) {
+    let (status, headers, bytes) = call_raw(state, method, uri, content_type, body).await;
     let json = serde_json::from_slice(&bytes).unwrap_or(Value::Null);
     (status, headers, json)
 }
 
 pub async fn post_json(state: &Service, uri: &str, body: &Value) -> (StatusCode, Value) {
-    let (status, _, json) = call(
-        state,
-        "POST",
-        uri,
-        "application/json",
-        serde_json::to_vec(body).unwrap(),
+    let (status, bytes) = post_bytes(state, uri, body).await;
+    (
+        status,
+        serde_json::from_slice(&bytes).unwrap_or(Value::Null),
     )
-    .await;
-    (status, json)
 }
 
 /// One probe row.

@@ -374,6 +374,14 @@ impl CaptionStore {
         })
     }
 
+    /// Captions stored (one query; what the high-water marks need).
+    pub fn caption_count(&self) -> Result<u64, StoreError> {
+        self.with_reader(|c| {
+            let n: i64 = c.query_row("SELECT count(*) FROM captions", [], |r| r.get(0))?;
+            Ok(n as u64)
+        })
+    }
+
     /// Row counts and file size.
     pub fn counts(&self) -> Result<StoreCounts, StoreError> {
         let (captions, vectors, tags) = self.with_reader(|c| {
