@@ -527,4 +527,33 @@ mod tests {
         ));
         assert_eq!(answer.code, ErrorCode::Internal);
     }
+
+    /// A shed by queued work tells the drain time, rounded up to whole
+    /// seconds (RFC 9110 section 10.2.3: Retry-After is whole seconds), at least 1.
+    #[test]
+    fn a_shed_by_queued_work_carries_its_drain_time() {
+        use std::time::Duration;
+        let retry_after = |d| {
+            ApiError::queue_full_for(d)
+                .into_response()
+                .headers()
+                .get(header::RETRY_AFTER)
+                .map(|v| v.to_str().unwrap().to_string())
+        };
+        assert_eq!(
+            retry_after(Duration::from_millis(2300)).as_deref(),
+            Some("3")
+        );
+        assert_eq!(
+            retry_after(Duration::from_millis(4000)).as_deref(),
+            Some("4")
+        );
+        assert_eq!(
+            retry_after(Duration::from_millis(200)).as_deref(),
+            Some("1")
+        );
+        // Other 503s keep the constant.
+        let other = ApiError::overloaded("x").into_response();
+        assert_eq!(other.headers()[header::RETRY_AFTER], "1");
+    }
 }
