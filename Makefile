@@ -65,9 +65,9 @@ PROBE := fixtures/probe/probe.jsonl
 test: $(ORT_LIB) $(VENV)/.ready lint
 	cargo test --locked
 	target/debug/befit calibrate --bundle fixtures/models/blocks-v1 --probe $(PROBE) \
-		--export $(STATS_EXPORT)/calibration-blocks-v1.json > /dev/null
+		--export $(STATS_EXPORT)/calibration-blocks-v1.json --report $(STATS_EXPORT)/calibration-blocks-v1.html > /dev/null
 	target/debug/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
-		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
+		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json --report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs
 	$(MAKE) --no-print-directory browser

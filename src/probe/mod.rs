@@ -7,6 +7,7 @@
 //! - [`load`]: JSON Lines in, every bad row reported by line.
 //! - [`embed`]: rows to vectors in batches, finding the row an encoder
 //!   failure comes from.
+//! - [`thumbnails`]: previews of the images a report shows as examples.
 
 use std::fmt;
 use std::path::PathBuf;
@@ -14,10 +15,12 @@ use std::path::PathBuf;
 pub mod embed;
 pub mod load;
 pub mod set;
+pub mod thumbnails;
 
 pub use embed::{embed_probe, EmbedOptions, EmbeddedProbe, ImageFiles, ProbeEncoder};
 pub use load::{LoadOptions, LoadedProbe};
 pub use set::{Contrast, ImageSource, ProbeRow, ProbeSet};
+pub use thumbnails::thumbnails;
 
 /// Most bad rows kept in a [`ProbeError::BadRows`]; the rest are only
 /// counted, so a wholly wrong file does not make a message of megabytes.

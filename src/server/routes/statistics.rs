@@ -144,6 +144,18 @@ fn parse_probe(
     Ok((loaded.set, loaded.skipped))
 }
 
+/// The example images' thumbnails, made on a blocking thread (files are read).
+async fn thumbnails(
+    engine: &Arc<Engine>,
+    set: Arc<ProbeSet>,
+    lines: std::collections::BTreeSet<usize>,
+) -> Result<stats::Thumbnails, ApiError> {
+    let engine = Arc::clone(engine);
+    tokio::task::spawn_blocking(move || engine.thumbnails(&set, &lines))
+        .await
+        .map_err(ApiError::internal)
+}
+
 /// Embeds the probe set with one model on a blocking thread.
 async fn embed_with(
     engine: &Arc<Engine>,
@@ -177,7 +189,8 @@ pub async fn calibration(
     let model = engine.model(request.model.as_deref())?;
     let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
-    let (vectors, dropped) = embed_with(engine, model, Arc::new(set), request.skip_bad).await?;
+    let set = Arc::new(set);
+    let (vectors, dropped) = embed_with(engine, model, Arc::clone(&set), request.skip_bad).await?;
     skipped.extend(dropped);
     let options = request.options;
     let report = tokio::task::spawn_blocking(move || stats::calibrate(&vectors, &options))
@@ -185,7 +198,13 @@ pub async fn calibration(
         .map_err(ApiError::internal)??;
     if request.format == ReportFormat::Html {
         let provenance = Provenance::now(vec![map_bundle(model)], probe_sha256, probe_rows);
-        return Ok(html_page(stats::calibration_html(&report, &provenance)));
+        let lines = stats::calibration_example_lines(&report);
+        let thumbnails = thumbnails(engine, set, lines).await?;
+        return Ok(html_page(stats::calibration_html(
+            &report,
+            &provenance,
+            &thumbnails,
+        )));
     }
     Ok(Json(CalibrationResponse {
         model: ModelRef::of(model),
@@ -224,7 +243,7 @@ pub async fn drift(
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
     let (a, dropped_a) = embed_with(engine, from, Arc::clone(&set), request.skip_bad).await?;
-    let (b, dropped_b) = embed_with(engine, to, set, request.skip_bad).await?;
+    let (b, dropped_b) = embed_with(engine, to, Arc::clone(&set), request.skip_bad).await?;
     skipped.extend(dropped_a);
     skipped.extend(dropped_b);
     let options = request.options;
@@ -251,7 +270,12 @@ pub async fn drift(
     if request.format == ReportFormat::Html {
         let bundles = vec![map_bundle(from), map_bundle(to)];
         let provenance = Provenance::now(bundles, probe_sha256, probe_rows);
-        return Ok(html_page(stats::drift_html(&report, &provenance)));
+        let thumbnails = thumbnails(engine, set, stats::drift_example_lines(&report)).await?;
+        return Ok(html_page(stats::drift_html(
+            &report,
+            &provenance,
+            &thumbnails,
+        )));
     }
     Ok(Json(DriftResponse {
         from: ModelRef::of(from),

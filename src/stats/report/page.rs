@@ -105,6 +105,19 @@ pub(super) fn td(v: impl AsRef<str>) -> String {
     format!("<td>{}</td>", v.as_ref())
 }
 
+/// The image cell of an example pair: its thumbnail when there is one, and
+/// its name and probe line.
+pub(super) fn td_image(image: &str, line: usize, thumbnails: &super::Thumbnails) -> String {
+    let name = escape(&format!("{image} (line {line})"));
+    match thumbnails.get(&line) {
+        // A data URI holds only base64 characters after its fixed prefix: nothing to escape.
+        Some(uri) => format!(
+            "<td class=\"text\"><img class=\"thumb\" src=\"{uri}\" alt=\"probe image at line {line}\"> {name}</td>"
+        ),
+        None => format!("<td class=\"text\">{name}</td>"),
+    }
+}
+
 /// A text cell, escaped.
 pub(super) fn td_text(v: &str) -> String {
     format!("<td class=\"text\">{}</td>", escape(v))
