@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl figures install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl figures screenshots install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -83,6 +83,17 @@ browser-deps:
 
 browser: build browser-deps
 	cd $(BROWSER_DIR) && BEFIT_BIN=$(abspath $(BIN)) node --test live.test.mjs
+
+# Screenshots in docs/ (README, docs/statistics.md): the live page as the browser test leaves it,
+# and both reports made by the real CLI on the bundled blocks models and probe set.
+screenshots: browser
+	target/release/befit calibrate --bundle fixtures/models/blocks-v1 --probe $(PROBE) \
+		--report $(STATS_EXPORT)/calibration-blocks-v1.html > /dev/null
+	target/release/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
+		--report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
+	cd $(BROWSER_DIR) && node report-shots.mjs $(abspath $(STATS_EXPORT))/calibration-blocks-v1.html \
+		$(abspath $(STATS_EXPORT))/drift-blocks-v1-v2.html $(abspath docs)
+	cp target/browser/live-1280.png docs/live-page.png
 
 # The policy-gradient example against a running `make serve`.
 # The examples' own small environment (numpy, matplotlib): no reference libraries needed.
