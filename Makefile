@@ -69,7 +69,7 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 	target/debug/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json --report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
 	cargo build --release --locked
-	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs
+	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs tests/tools
 	$(MAKE) --no-print-directory browser
 	$(MAKE) --no-print-directory cluster-test
 	$(MAKE) --no-print-directory image-test
