@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl figures screenshots install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl figures screenshots base-bundles install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -110,6 +110,18 @@ rl: $(EXAMPLES_VENV)/.ready
 # recorded runs again on the bundled models and rewrites every figure; `make test` checks them.
 figures: build $(EXAMPLES_VENV)/.ready
 	$(EXAMPLES_VENV)/bin/python tools/docfigures.py measure
+
+# Base-size bundles (ViT-B/32 shape, seeded random weights; fp32 and int8) for benchmarks, made
+# with the tools' own pinned environment (PyTorch, CPU). About 10 minutes on 2 cores; never CI.
+TOOLS_VENV := $(CACHE)/venv-tools
+$(TOOLS_VENV)/.ready: tools/requirements.txt
+	$(PYTHON) -m venv $(TOOLS_VENV)
+	$(TOOLS_VENV)/bin/python -m pip install --quiet --upgrade pip
+	$(TOOLS_VENV)/bin/python -m pip install --quiet -r tools/requirements.txt
+	touch $@
+
+base-bundles: $(TOOLS_VENV)/.ready
+	$(TOOLS_VENV)/bin/python tools/base_bundles.py --out $(CACHE)/bundles
 
 $(CACHE)/.bench-ready: $(VENV)/.ready bench/requirements.txt
 	$(VENV_PY) -m pip install --quiet -r bench/requirements.txt

@@ -8,6 +8,11 @@
 //!    AVX-512, NEON, SVE) at 64 and 512 dimensions, one pair and a scan of 100k rows.
 //! 3. Resampling: befit's Pillow-compatible bicubic resize of a 640x480 image to
 //!    224x168 (`befit::intake::resample::resize`); `run.py` times Pillow on the same size.
+//! 4. A whole image intake on one core: a 640x480 JPEG (`target/libraries/scene.jpg`, which
+//!    `run.py` writes with Pillow) decoded, brought to 224 px by shorter side and centre crop
+//!    (bicubic) and normalised with CLIP's mean and std, as a CLIP-layout bundle asks
+//!    (`befit::intake::image_tensor::tensor_from_bytes`); `run.py` does the same with Pillow
+//!    and numpy.
 //!
 //! Prints one JSON line per figure; `bench/libraries/run.py` prints the ratios.
 //! `cargo bench --bench libraries`
@@ -17,7 +22,9 @@ use std::sync::Arc;
 use std::time::Instant;
 
 use befit::bank::distance::dot;
-use befit::bundle::Filter;
+use befit::bundle::{Filter, ImageSpec, ResizeRule};
+use befit::intake::image_decode::ImageLimits;
+use befit::intake::image_tensor::tensor_from_bytes;
 use befit::intake::resample::resize;
 use befit::metrics::Registry;
 use prometheus_client::encoding::text::encode;
@@ -264,8 +271,35 @@ fn resampling() {
     );
 }
 
+fn intake() {
+    let path = std::path::Path::new("target/libraries/scene.jpg");
+    let Ok(jpeg) = std::fs::read(path) else {
+        eprintln!(
+            "{} missing (bench/libraries/run.py writes it): intake not timed",
+            path.display()
+        );
+        return;
+    };
+    let spec = ImageSpec {
+        file: String::new(),
+        input: String::new(),
+        output: String::new(),
+        size: 224,
+        resize: ResizeRule::ShorterThenCrop,
+        filter: Filter::Bicubic,
+        mean: [0.481_454_66, 0.457_827_5, 0.408_210_73],
+        std: [0.268_629_54, 0.261_302_6, 0.275_777_1],
+    };
+    let limits = ImageLimits::default();
+    let seconds = per_call(50, |_| {
+        black_box(tensor_from_bytes(&jpeg, &limits, &spec).expect("a readable JPEG"));
+    });
+    json("intake_jpeg_640x480_to_224", &[("befit_ms", seconds * 1e3)]);
+}
+
 fn main() {
     metrics();
     dots();
     resampling();
+    intake();
 }

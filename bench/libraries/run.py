@@ -8,6 +8,7 @@ above 1.0, befit is faster).
     python bench/libraries/run.py
 """
 
+import io
 import json
 import subprocess
 import sys
@@ -40,7 +41,43 @@ def pillow_resize_ms(calls=100):
     return best * 1e3
 
 
+SCENE = ROOT / "target" / "libraries" / "scene.jpg"
+MEAN = np.array([0.48145466, 0.4578275, 0.40821073], dtype=np.float32)
+STD = np.array([0.26862954, 0.26130258, 0.27577711], dtype=np.float32)
+
+
+def write_scene():
+    """A 640x480 photo-like JPEG for both sides: a probe scene enlarged, plus seeded noise."""
+    probe = ROOT / "fixtures" / "probe" / "images" / "00000.png"
+    rng = np.random.default_rng(5)
+    big = np.asarray(Image.open(probe).convert("RGB").resize((640, 480), Image.Resampling.BICUBIC), dtype=np.int16)
+    noisy = np.clip(big + rng.integers(-12, 13, size=big.shape), 0, 255).astype(np.uint8)
+    SCENE.parent.mkdir(parents=True, exist_ok=True)
+    Image.fromarray(noisy).save(SCENE, quality=90)
+
+
+def pillow_intake_ms(calls=50):
+    """Decode, shorter side to 224 (bicubic), centre crop, normalise: Pillow and numpy, one core."""
+    data = SCENE.read_bytes()
+    best = float("inf")
+    for _ in range(3):
+        start = time.perf_counter()
+        for _ in range(calls):
+            image = Image.open(io.BytesIO(data)).convert("RGB")
+            w, h = image.size
+            scale = 224 / min(w, h)
+            rw, rh = int(w * scale + 0.5), int(h * scale + 0.5)
+            image = image.resize((rw, rh), Image.Resampling.BICUBIC)
+            left, top = int((rw - 224) / 2 + 0.5), int((rh - 224) / 2 + 0.5)
+            image = image.crop((left, top, left + 224, top + 224))
+            x = (np.asarray(image, dtype=np.float32) / 255.0 - MEAN) / STD
+            np.ascontiguousarray(x.transpose(2, 0, 1))
+        best = min(best, (time.perf_counter() - start) / calls)
+    return best * 1e3
+
+
 def main():
+    write_scene()
     rows = befit_side()
     pillow_ms = pillow_resize_ms()
     table = [
@@ -58,6 +95,11 @@ def main():
     resize = next(r for r in rows if r["what"] == "resize_bicubic_640x480_to_224x168")["befit_ms"]
     label = "resize: bicubic 640x480 -> 224x168 (ms)"
     print(f"{label:58} {resize:10.3f} {pillow_ms:10.3f} {pillow_ms / resize:7.2f}  Pillow {Image.__version__}")
+    intake = next((r for r in rows if r["what"] == "intake_jpeg_640x480_to_224"), None)
+    if intake:
+        theirs = pillow_intake_ms()
+        label = "intake: JPEG 640x480 -> 224 crop, normalised (ms)"
+        print(f"{label:58} {intake['befit_ms']:10.3f} {theirs:10.3f} {theirs / intake['befit_ms']:7.2f}  Pillow + numpy")
 
 
 if __name__ == "__main__":

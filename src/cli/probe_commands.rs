@@ -279,8 +279,10 @@ fn summary_of_calibration(report: &stats::CalibrationReport) -> anyhow::Result<S
 
 fn summary_of_drift(report: &stats::DriftReport) -> anyhow::Result<String> {
     let v = serde_json::to_value(report)?;
+    // The verdict first, in one sentence, as the HTML report's headline.
     let mut out = format!(
-        "drift from {} to {}\n",
+        "{}\ndrift from {} to {}\n",
+        stats::drift_headline(report, &stats::HeadlineThresholds::default()),
         text(&v, "/from_bundle"),
         text(&v, "/to_bundle")
     );
