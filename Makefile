@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl figures screenshots base-bundles install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -167,6 +167,11 @@ cluster-test: build cluster-tools
 # About 2 minutes on a fresh machine (debootstrap makes the base), seconds after.
 image-test: image cluster-tools
 	BEFIT_IMAGE=$(IMAGE) $(VENV_PY) -m pytest -q tests/cluster/test_image.py
+
+# befit under abuse and faults on loopback (tests/soak/soak.py): 3x load, slow and idle clients,
+# image bombs, kill -9 during writes, damaged files; prints its figures. About 1 minute.
+soak: build $(VENV)/.ready
+	$(VENV_PY) tests/soak/soak.py --json target/soak.json
 
 # Rewards per second through one replica and through three (a measurement, not a test).
 cluster-throughput: build cluster-tools

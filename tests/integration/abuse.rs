@@ -464,10 +464,12 @@ async fn a_timed_out_drift_stops_encoding() {
     let at_answer = runs();
     assert!(at_answer > 0, "the drift had started encoding");
     tokio::time::sleep(Duration::from_millis(1500)).await;
-    // At most the batch each tower was running when the request went.
+    // At most what the probe batch in flight when the request went still
+    // asks of the encoders (256 captions, split into runs of 64 or fewer);
+    // without the flag, hundreds of runs follow.
     let later = runs();
     assert!(
-        later <= at_answer + 2,
+        later <= at_answer + 16,
         "encoder runs went on after the answer: {at_answer} then {later}"
     );
 }
