@@ -34,7 +34,7 @@ pub enum FilterWalk {
 impl FilterWalk {
     /// The way [`VectorIndex::search`] uses: over-fetching, by measurement
     /// (BENCHMARKS.md, "Tag filters"). hnsw_rs's filtered walk reaches
-    /// recall near 1 but answered 6 to 20 times fewer queries per second at
+    /// recall near 1 but answered 4 to 20 times fewer queries per second at
     /// 100k rows: with a filter its layer search gives up the early stop,
     /// expands every candidate it queued, and queues every neighbour closer
     /// than the worst allowed row kept (any neighbour while fewer than
