@@ -12,7 +12,8 @@ Bundles: the blocks toy (fixtures/models/blocks-v1) and the base-size CLIP bundl
 - images/s: POST /v1/images of probe images on a fresh data folder (decode, resize, encode,
   store) against the encoder alone on tensors prepared beforehand, batches of 16, 2 threads;
 - peak resident memory of the befit process (VmHWM).
-Then befit's thread layouts on base-fp32: workers x intra-op threads, 2 x 1 and 1 x 2.
+befit runs with its default thread layout (chosen by graph size). Then the layouts themselves,
+workers x intra-op threads, 2 x 1 and 1 x 2, on blocks-v1 and base-fp32.
 Ratios above 1.0 mean befit is faster. Figures also go to target/bench/base_size.json.
 """
 
@@ -52,12 +53,13 @@ def probe_rows(n: int) -> list[dict]:
     return [json.loads(line) for line in lines[:n]]
 
 
-def befit_side(bundle: Path, requests: list, image_rows: list[dict], workers: int, intra: int) -> dict:
-    """captions/s and images/s over HTTP, and the process's peak memory."""
+def befit_side(bundle: Path, requests: list, image_rows: list[dict], workers=None, intra=None) -> dict:
+    """captions/s and images/s over HTTP, and the process's peak memory; without `workers` and
+    `intra`, befit's default thread layout."""
+    layout = [] if workers is None else ["--workers", str(workers), "--intra-threads", str(intra)]
     with tempfile.TemporaryDirectory() as data_dir:
         port = free_port()
-        proc = start_befit(bundle, port, data_dir, ["--image-root", str(REPO / "fixtures/probe"),
-                                                    "--workers", str(workers), "--intra-threads", str(intra)])
+        proc = start_befit(bundle, port, data_dir, ["--image-root", str(REPO / "fixtures/probe"), *layout])
         try:
             client = Client(port)
             warm = client.post("/v1/images", {"images": [{"path": r["image"]} for r in image_rows[:4]]})
@@ -119,7 +121,7 @@ def main() -> int:
         n_requests, n_images = (40, 132) if toy else (6, 52)
         requests = [[[next(pool) for _ in range(SAMPLES)] for _ in range(GROUPS)] for _ in range(n_requests)]
         rows = probe_rows(n_images)
-        ours = befit_side(bundle, requests, rows, workers=2, intra=1)
+        ours = befit_side(bundle, requests, rows)
         alone = alone_side(bundle, requests, rows)
         figures[name] = {"befit": ours, "alone": alone}
         print(f"{name}: captions/s befit {ours['captions_per_s']:.0f} alone {alone['captions_per_s']:.0f} "
@@ -129,14 +131,16 @@ def main() -> int:
     f, q = figures["base-fp32"]["befit"], figures["base-int8"]["befit"]
     print(f"int8 / fp32 through befit: captions/s {q['captions_per_s'] / f['captions_per_s']:.2f}, "
           f"images/s {q['images_per_s'] / f['images_per_s']:.2f}, peak RSS {q['peak_rss_mb'] / f['peak_rss_mb']:.2f}")
-    requests = [[[next(pool) for _ in range(SAMPLES)] for _ in range(GROUPS)] for _ in range(6)]
-    rows = probe_rows(52)
     layouts = {}
-    for workers, intra in ((2, 1), (1, 2)):
-        layouts[f"{workers}x{intra}"] = befit_side(BUNDLES["base-fp32"], requests, rows, workers, intra)
-        r = layouts[f"{workers}x{intra}"]
-        print(f"base-fp32, {workers} workers x {intra} intra-op threads: captions/s {r['captions_per_s']:.0f}, "
-              f"images/s {r['images_per_s']:.1f}, peak RSS {r['peak_rss_mb']:.0f} MB", flush=True)
+    for name in ("blocks-v1", "base-fp32"):
+        n_requests, n_images = (40, 132) if name == "blocks-v1" else (6, 52)
+        requests = [[[next(pool) for _ in range(SAMPLES)] for _ in range(GROUPS)] for _ in range(n_requests)]
+        rows = probe_rows(n_images)
+        for workers, intra in ((2, 1), (1, 2)):
+            r = befit_side(BUNDLES[name], requests, rows, workers, intra)
+            layouts[f"{name} {workers}x{intra}"] = r
+            print(f"{name}, {workers} workers x {intra} intra-op threads: captions/s {r['captions_per_s']:.0f}, "
+                  f"images/s {r['images_per_s']:.1f}, peak RSS {r['peak_rss_mb']:.0f} MB", flush=True)
     figures["layouts"] = layouts
     out = REPO / "target" / "bench"
     out.mkdir(parents=True, exist_ok=True)

@@ -6,12 +6,13 @@
 //! - [`set`]: the rows in memory.
 //! - [`load`]: JSON Lines in, every bad row reported by line.
 //! - [`embed`]: rows to vectors in batches, finding the row an encoder
-//!   failure comes from.
+//!   failure comes from, stopping between batches when [`cancel`]led.
 //! - [`thumbnails`]: previews of the images a report shows as examples.
 
 use std::fmt;
 use std::path::PathBuf;
 
+pub mod cancel;
 pub mod embed;
 pub mod load;
 pub mod set;
@@ -133,6 +134,10 @@ pub enum ProbeError {
         /// The encoder's message.
         message: String,
     },
+    /// Whoever asked has gone (a request timed out or its client hung up):
+    /// the work stopped between two encoder batches.
+    #[error("stopped: whoever asked for this probe set's vectors has gone")]
+    Cancelled,
     /// The encoder returned an array of the wrong shape.
     #[error("the {tower} encoder returned {got:?} for a batch of {want_rows} of dimension {want_dimension}; the bundle's declared dimension does not match its graph")]
     Shape {

@@ -74,7 +74,10 @@ pub fn model(name: &str) -> Arc<Model> {
     let bundle = Bundle::open(&bundle_dir(dir)).unwrap_or_else(|e| panic!("{e}"));
     let defaults = ModelSettings::default();
     let settings = ModelSettings {
-        workers: 2,
+        layout: befit::encoders::ThreadLayout::Fixed {
+            workers: 2,
+            intra_threads: 1,
+        },
         caption_cache: if cached { defaults.caption_cache } else { 0 },
         ..defaults
     };

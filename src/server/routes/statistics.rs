@@ -17,6 +17,7 @@ use crate::encoders::offline::EngineProbeEncoder;
 use crate::encoders::{Engine, Model};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
+use crate::probe::cancel::Cancel;
 use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
 use crate::server::access::{self, Caller, Scope};
 use crate::server::error::ApiError;
@@ -162,6 +163,7 @@ async fn embed_with(
     model: &Arc<Model>,
     set: Arc<ProbeSet>,
     skip_bad: bool,
+    cancel: &Cancel,
 ) -> Result<(ProbeVectors, Vec<RowIssue>), ApiError> {
     let encoder = EngineProbeEncoder {
         engine: Arc::clone(engine),
@@ -171,6 +173,7 @@ async fn embed_with(
     let options = EmbedOptions {
         bundle: model.id.clone(),
         skip_bad,
+        cancel: cancel.clone(),
         ..EmbedOptions::default()
     };
     let embedded =
@@ -185,12 +188,16 @@ pub async fn calibration(
     ApiJson(request): ApiJson<CalibrationRequest>,
 ) -> Result<Response, ApiError> {
     let engine = service.engine()?;
+    // Dropped with this future (a timeout, a client gone): the embedding stops.
+    let cancel = Cancel::default();
+    let _stop_when_gone = cancel.on_drop();
     request.options.validate()?;
     let model = engine.model(request.model.as_deref())?;
     let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
-    let (vectors, dropped) = embed_with(engine, model, Arc::clone(&set), request.skip_bad).await?;
+    let (vectors, dropped) =
+        embed_with(engine, model, Arc::clone(&set), request.skip_bad, &cancel).await?;
     skipped.extend(dropped);
     let options = request.options;
     let report = tokio::task::spawn_blocking(move || stats::calibrate(&vectors, &options))
@@ -220,6 +227,9 @@ pub async fn drift(
     ApiJson(request): ApiJson<DriftRequest>,
 ) -> Result<Response, ApiError> {
     let engine = service.engine()?;
+    // Dropped with this future (a timeout, a client gone): the embedding stops.
+    let cancel = Cancel::default();
+    let _stop_when_gone = cancel.on_drop();
     request.options.validate()?;
     let from = engine
         .model(Some(&request.from))
@@ -242,8 +252,10 @@ pub async fn drift(
     let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
-    let (a, dropped_a) = embed_with(engine, from, Arc::clone(&set), request.skip_bad).await?;
-    let (b, dropped_b) = embed_with(engine, to, Arc::clone(&set), request.skip_bad).await?;
+    let (a, dropped_a) =
+        embed_with(engine, from, Arc::clone(&set), request.skip_bad, &cancel).await?;
+    let (b, dropped_b) =
+        embed_with(engine, to, Arc::clone(&set), request.skip_bad, &cancel).await?;
     skipped.extend(dropped_a);
     skipped.extend(dropped_b);
     let options = request.options;
