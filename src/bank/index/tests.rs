@@ -446,3 +446,39 @@ fn concurrent_inserts_and_searches_find_every_inserted_row() {
     assert!(searcher.join().unwrap() > 0);
     assert_eq!(index.stats().indexed, 4_000);
 }
+
+#[test]
+fn a_build_gives_up_when_asked_to_stop_and_the_next_open_builds_it() {
+    let root = tempfile::tempdir().unwrap();
+    let source = rows_of(&uniform_sphere(10_000, DIM, 12), 1);
+    let stop = std::sync::atomic::AtomicBool::new(false);
+    let started = std::time::Instant::now();
+    let asked = std::thread::scope(|s| {
+        // Asked to stop shortly after the build began (the service got SIGTERM).
+        s.spawn(|| {
+            std::thread::sleep(std::time::Duration::from_millis(30));
+            stop.store(true, std::sync::atomic::Ordering::Relaxed);
+        });
+        VectorIndex::open_until(
+            root.path(),
+            DIGEST_A,
+            DIM,
+            IndexParams::default(),
+            &source,
+            &stop,
+        )
+    });
+    let stopped_after = started.elapsed();
+    assert!(matches!(asked, Err(IndexError::Stopped)), "{asked:?}");
+    // The full build, for comparison (same rows, same machine, same run).
+    let started = std::time::Instant::now();
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let built_after = started.elapsed();
+    assert_eq!(index.len(), 10_000);
+    assert!(matches!(report.origin, GraphOrigin::Built { .. }));
+    assert!(
+        stopped_after * 3 < built_after,
+        "stopping took {stopped_after:?} of a {built_after:?} build"
+    );
+}
