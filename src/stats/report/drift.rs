@@ -71,9 +71,9 @@ pub fn drift_headline(r: &DriftReport, t: &HeadlineThresholds) -> String {
         ));
     }
     if rmse.is_nan() || rmse > t.max_map_rmse {
+        // The RMSE itself is stated just before the verdict.
         problems.push(format!(
-            "the map leaves an RMSE of {} above {}",
-            number(rmse),
+            "that error is above the {} allowed",
             number(t.max_map_rmse)
         ));
     }

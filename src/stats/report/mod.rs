@@ -159,4 +159,19 @@ mod tests {
             moved.len() + examples(&r.from) + examples(&r.to)
         );
     }
+
+    #[test]
+    fn a_headline_that_fails_says_why_once() {
+        let v = hostile();
+        let r = drift(&v, &v, &DriftOptions::default()).unwrap();
+        // Thresholds no drift can meet, so both reasons show.
+        let strict = HeadlineThresholds {
+            min_spearman: 1.5,
+            max_map_rmse: -1.0,
+            ..HeadlineThresholds::default()
+        };
+        let line = drift_headline(&r, &strict);
+        assert!(line.contains("the swap needs a look: rank agreement (Spearman 1) is below 1.5; that error is above the -1 allowed."), "{line}");
+        assert_eq!(line.matches("RMSE").count(), 1, "{line}");
+    }
 }
