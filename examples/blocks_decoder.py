@@ -52,6 +52,9 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
     p.add_argument("--url", default="http://127.0.0.1:7878")
     p.add_argument("--run", required=True, help="run name for befit's run watch")
     p.add_argument("--fluency-weight", type=float, default=0.0, help="guard fluency_weight (0: cosine only)")
+    p.add_argument(
+        "--penalties", type=json.loads, default=None, help="guard penalties as JSON, e.g. '{\"repeated_words\": ...}'"
+    )
     p.add_argument("--train-scenes", type=int, default=1500)
     p.add_argument("--probe-images", type=int, default=200, help="held-out probe scenes judged each step")
     p.add_argument("--pretrain-epochs", type=int, default=3)
@@ -61,6 +64,7 @@ def parse_args(argv: List[str]) -> argparse.Namespace:
     p.add_argument("--lr", type=float, default=1e-3, help="Adam step size of the RL phase")
     p.add_argument("--max-words", type=int, default=16)
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--thresholds", type=json.loads, default=None, help="run_thresholds of the run watch, as JSON")
     p.add_argument("--cache", type=Path, default=REPO / ".cache/blocks-decoder", help="rendered training scenes")
     p.add_argument("--log", type=Path, required=True, help="per-step metrics as JSON")
     return p.parse_args(argv)
@@ -207,7 +211,9 @@ def main(argv: List[str]) -> None:
     model = Decoder(feats.shape[1], len(vocab))
     pretrain(model, feats, enc, args.pretrain_epochs, args.seed)
     policy = GruPolicy(model, feats, vocab, args.max_words, args.lr)
-    guard = {"fluency_weight": args.fluency_weight} if args.fluency_weight > 0 else None
+    guard = {"fluency_weight": args.fluency_weight} if args.fluency_weight > 0 else {}
+    if args.penalties:
+        guard["penalties"] = args.penalties
 
     history: List[Dict[str, object]] = []
     started = time.monotonic()
@@ -224,7 +230,8 @@ def main(argv: List[str]) -> None:
             rng,
             run=args.run,
             step=step,
-            guard=guard,
+            guard=guard or None,
+            run_thresholds=args.thresholds if step == 0 else None,
             learn=step < args.steps,  # the last round only measures
         )
         rec["correct"] = float(np.mean([v.correct for v in verdicts]))
