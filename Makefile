@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl decoder-runs figures install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -65,11 +65,11 @@ PROBE := fixtures/probe/probe.jsonl
 test: $(ORT_LIB) $(VENV)/.ready lint
 	cargo test --locked
 	target/debug/befit calibrate --bundle fixtures/models/blocks-v1 --probe $(PROBE) \
-		--export $(STATS_EXPORT)/calibration-blocks-v1.json > /dev/null
+		--export $(STATS_EXPORT)/calibration-blocks-v1.json --report $(STATS_EXPORT)/calibration-blocks-v1.html > /dev/null
 	target/debug/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
-		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json > /dev/null
+		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json --report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
 	cargo build --release --locked
-	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs
+	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs tests/tools
 	$(MAKE) --no-print-directory browser
 	$(MAKE) --no-print-directory cluster-test
 	$(MAKE) --no-print-directory image-test
@@ -83,6 +83,17 @@ browser-deps:
 
 browser: build browser-deps
 	cd $(BROWSER_DIR) && BEFIT_BIN=$(abspath $(BIN)) node --test live.test.mjs
+
+# Screenshots in docs/ (README, docs/statistics.md): the live page as the browser test leaves it,
+# and both reports made by the real CLI on the bundled blocks models and probe set.
+screenshots: browser
+	target/release/befit calibrate --bundle fixtures/models/blocks-v1 --probe $(PROBE) \
+		--report $(STATS_EXPORT)/calibration-blocks-v1.html > /dev/null
+	target/release/befit drift --from fixtures/models/blocks-v1 --to fixtures/models/blocks-v2 --probe $(PROBE) \
+		--report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
+	cd $(BROWSER_DIR) && node report-shots.mjs $(abspath $(STATS_EXPORT))/calibration-blocks-v1.html \
+		$(abspath $(STATS_EXPORT))/drift-blocks-v1-v2.html $(abspath docs)
+	cp target/browser/live-1280.png docs/live-page.png
 
 # The policy-gradient example against a running `make serve`.
 # The examples' own small environment (numpy, matplotlib): no reference libraries needed.
@@ -114,6 +125,18 @@ decoder-runs: $(TORCH_VENV)/.ready
 # recorded runs again on the bundled models and rewrites every figure; `make test` checks them.
 figures: build $(EXAMPLES_VENV)/.ready
 	$(EXAMPLES_VENV)/bin/python tools/docfigures.py measure
+
+# Base-size bundles (ViT-B/32 shape, seeded random weights; fp32 and int8) for benchmarks, made
+# with the tools' own pinned environment (PyTorch, CPU). About 10 minutes on 2 cores; never CI.
+TOOLS_VENV := $(CACHE)/venv-tools
+$(TOOLS_VENV)/.ready: tools/requirements.txt
+	$(PYTHON) -m venv $(TOOLS_VENV)
+	$(TOOLS_VENV)/bin/python -m pip install --quiet --upgrade pip
+	$(TOOLS_VENV)/bin/python -m pip install --quiet -r tools/requirements.txt
+	touch $@
+
+base-bundles: $(TOOLS_VENV)/.ready
+	$(TOOLS_VENV)/bin/python tools/base_bundles.py --out $(CACHE)/bundles
 
 $(CACHE)/.bench-ready: $(VENV)/.ready bench/requirements.txt
 	$(VENV_PY) -m pip install --quiet -r bench/requirements.txt
@@ -159,6 +182,11 @@ cluster-test: build cluster-tools
 # About 2 minutes on a fresh machine (debootstrap makes the base), seconds after.
 image-test: image cluster-tools
 	BEFIT_IMAGE=$(IMAGE) $(VENV_PY) -m pytest -q tests/cluster/test_image.py
+
+# befit under abuse and faults on loopback (tests/soak/soak.py): 3x load, slow and idle clients,
+# image bombs, kill -9 during writes, damaged files; prints its figures. About 1 minute.
+soak: build $(VENV)/.ready
+	$(VENV_PY) tests/soak/soak.py --json target/soak.json
 
 # Rewards per second through one replica and through three (a measurement, not a test).
 cluster-throughput: build cluster-tools

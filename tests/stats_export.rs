@@ -18,7 +18,7 @@ use std::path::{Path, PathBuf};
 use befit::probe::{embed_probe, EmbedOptions, ImageFiles, LoadOptions, ProbeSet};
 use befit::stats::{
     calibrate, calibration_export, calibration_html, drift_export, drift_html, write_json,
-    CalibrationOptions, DriftOptions, MapBundle, ProbeVectors, Provenance,
+    CalibrationOptions, DriftOptions, MapBundle, ProbeVectors, Provenance, Thumbnails,
 };
 use befit::vectors::{EmbedError, Embedder};
 use ndarray::Array2;
@@ -400,7 +400,11 @@ fn write_reference_exports() {
     // The pages, to look at; not checked by the reference test.
     std::fs::write(
         dir.join("calibration-realistic.html"),
-        calibration_html(&realistic.report, &provenance(&["blocks@v1"])),
+        calibration_html(
+            &realistic.report,
+            &provenance(&["blocks@v1"]),
+            &Thumbnails::new(),
+        ),
     )
     .unwrap();
     std::fs::write(
@@ -408,6 +412,7 @@ fn write_reference_exports() {
         drift_html(
             &drift_realistic.report,
             &provenance(&["blocks@v1", "blocks@v2"]),
+            &Thumbnails::new(),
         ),
     )
     .unwrap();
@@ -536,6 +541,7 @@ fn probe_file_to_report() {
     let html = calibration_html(
         &report,
         &Provenance::now(vec![], befit::stats::sha256_hex(&bytes), 6),
+        &Thumbnails::new(),
     );
     assert!(html.contains("hashing@v1"));
 }

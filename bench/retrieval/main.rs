@@ -8,14 +8,18 @@
 //! `cargo bench --bench retrieval -- --sizes 100000 --out target/retrieval`
 //! (`--crossover` instead measures where the exact scan stops being faster;
 //! `--batched` measures the exact scan of a batch of queries and of single
-//! queries at each of `--dims`, for `exact_run.py` to set beside numpy).
+//! queries at each of `--dims`, for `exact_run.py` to set beside numpy;
+//! `--filtered` measures tag-filtered search, the graph walked with the
+//! filter against over-fetching, at several tag shares).
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 use befit::bank::exact::ExactRows;
-use befit::bank::index::{IndexParams, Search, SearchMode, VectorIndex};
+use befit::bank::index::{
+    Answered, FilterWalk, IndexParams, Search, SearchMode, VectorIndex, DEFAULT_EF_SEARCH,
+};
 use befit::bank::recall::mean_recall;
 use befit::bank::synthetic::{blocks_like, uniform_sphere};
 use befit::bank::RowId;
@@ -36,6 +40,7 @@ struct Args {
     crossover: bool,
     dump: bool,
     batched: bool,
+    filtered: bool,
     dims: Vec<usize>,
     singles: usize,
 }
@@ -59,6 +64,7 @@ fn parse_args() -> Args {
         crossover: false,
         dump: true,
         batched: false,
+        filtered: false,
         dims: vec![64, 512],
         singles: 100,
     };
@@ -79,6 +85,7 @@ fn parse_args() -> Args {
             "--crossover" => a.crossover = true,
             "--no-dump" => a.dump = false,
             "--batched" => a.batched = true,
+            "--filtered" => a.filtered = true,
             "--dims" => a.dims = list(&value()),
             "--singles" => a.singles = value().parse().unwrap_or(a.singles),
             // cargo bench passes --bench to harness-less benchmarks.
@@ -318,6 +325,78 @@ fn batched(a: &Args) -> std::io::Result<()> {
     Ok(())
 }
 
+/// A row's membership of a tag covering `share` of the bank: a seeded hash
+/// of its id (splitmix64's finaliser), so membership has nothing to do with
+/// where the row sits among the synthetic clusters.
+fn tagged(id: RowId, share: f64) -> bool {
+    let mut z = id.wrapping_add(0x9e37_79b9_7f4a_7c15);
+    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    z ^= z >> 31;
+    (z as f64 / u64::MAX as f64) < share
+}
+
+/// Tag-filtered search over a blocks-like bank of `--sizes`' first size at
+/// `--dim`, the graph at the default breadth: for tags covering 50% down to
+/// 0.2% of the bank, the filtered graph walk and over-fetching each report
+/// queries per second, recall@k against the exact scan of the tag's rows,
+/// how many answers fell back to that scan and how many had fewer than k
+/// hits; the exact scan of the tag's rows is timed beside them.
+fn filtered(a: &Args) -> std::io::Result<()> {
+    let n = a.sizes.first().copied().unwrap_or(100_000);
+    let dim = a.dim;
+    let (base, queries) = blocks_like(n, a.queries, dim, 3);
+    let index = VectorIndex::in_memory(DIGEST, dim, params(a, 0)).map_err(std::io::Error::other)?;
+    let t = Instant::now();
+    index
+        .insert(&rows(&base, dim))
+        .map_err(std::io::Error::other)?;
+    emit(
+        serde_json::json!({"what": "filtered-build", "n": n, "dim": dim,
+        "seconds": t.elapsed().as_secs_f64()}),
+    );
+    for share in [0.5, 0.2, 0.05, 0.01, 0.002] {
+        let only: std::collections::HashSet<RowId> =
+            (0..n as RowId).filter(|&id| tagged(id, share)).collect();
+        let t = Instant::now();
+        let mut exact = Vec::with_capacity(a.queries);
+        for q in queries.chunks(dim) {
+            let hits = index
+                .exact(q, a.k, Some(&only))
+                .map_err(std::io::Error::other)?;
+            exact.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
+        }
+        let exact_qps = a.queries as f64 / t.elapsed().as_secs_f64();
+        let search = Search {
+            k: a.k,
+            ef_search: Some(DEFAULT_EF_SEARCH),
+            mode: SearchMode::Index,
+            only: Some(&only),
+        };
+        for walk in [FilterWalk::Within, FilterWalk::OverFetch] {
+            let (mut fell_back, mut short) = (0, 0);
+            let mut got = Vec::with_capacity(a.queries);
+            let t = Instant::now();
+            for q in queries.chunks(dim) {
+                let answer = index
+                    .search_walking(q, &search, walk)
+                    .map_err(std::io::Error::other)?;
+                fell_back += usize::from(answer.answered == Answered::Exact);
+                short += usize::from(answer.hits.len() < a.k);
+                got.push(answer.hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
+            }
+            let qps = a.queries as f64 / t.elapsed().as_secs_f64();
+            emit(
+                serde_json::json!({"what": "filtered", "n": n, "dim": dim, "share": share,
+                "tagged": only.len(), "walk": walk, "qps": qps, "exact_qps": exact_qps,
+                "recall": mean_recall(&exact, &got, a.k), "fell_back": fell_back,
+                "short": short, "queries": a.queries, "ef_search": DEFAULT_EF_SEARCH}),
+            );
+        }
+    }
+    Ok(())
+}
+
 fn main() -> std::io::Result<()> {
     let a = parse_args();
     std::fs::create_dir_all(&a.out)?;
@@ -326,6 +405,9 @@ fn main() -> std::io::Result<()> {
     }
     if a.batched {
         return batched(&a);
+    }
+    if a.filtered {
+        return filtered(&a);
     }
     for n in a.sizes.clone() {
         for kind in a.kinds.clone() {

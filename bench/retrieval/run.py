@@ -8,6 +8,7 @@ seconds: lower is better for befit below 1).
 
     python bench/retrieval/run.py --sizes 100000           # the smaller size only
     python bench/retrieval/run.py                          # 100k and 1M
+    python bench/retrieval/run.py --filtered --sizes 100000  # tag filters only (about 8 min)
 """
 
 import argparse
@@ -37,7 +38,12 @@ def main() -> None:
     p.add_argument("--queries", type=int, default=1000)
     p.add_argument("--out", default=str(ROOT / "target" / "retrieval"))
     p.add_argument("--json", help="also write every figure to this file")
+    p.add_argument("--filtered", action="store_true",
+                   help="only tag-filtered search: the filtered graph walk against over-fetching")
     a = p.parse_args()
+    if a.filtered:
+        filtered(a)
+        return
 
     common = ["--m", str(a.m), "--ef-construction", str(a.ef_construction),
               "--ef-search", a.ef_search, "--threads", str(a.threads)]
@@ -74,6 +80,32 @@ def main() -> None:
                 b, h = get("befit", kind, n, "search", ef), get("hnswlib", kind, n, "search", ef)
                 print(f"{ef:>9} | {b['qps']:>10.0f} {b['recall']:>7.4f} | {h['qps']:>11.0f} {h['recall']:>7.4f} | "
                       f"{b['qps'] / h['qps']:>9.2f}")
+
+
+def filtered(a) -> None:
+    """befit's two ways of searching a tag through the graph, side by side
+    with the exact scan of the tag's rows (no hnswlib side: the question is
+    which of befit's own ways to use)."""
+    size = a.sizes.split(",")[0]
+    rows = lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--", "--filtered",
+                  "--sizes", size, "--queries", str(a.queries), "--out", a.out,
+                  "--m", str(a.m), "--ef-construction", str(a.ef_construction),
+                  "--threads", str(a.threads)])
+    if a.json:
+        Path(a.json).write_text(json.dumps(rows, indent=1))
+    by_share = {}
+    for r in rows:
+        if r["what"] == "filtered":
+            by_share.setdefault(r["share"], {})[r["walk"]] = r
+    print(f"tag filters, n={size}, {a.queries} queries, k=10: queries/s and recall@10 "
+          "against the exact scan of the tag's rows")
+    print(f"{'share':>6} {'tagged':>8} | {'walk q/s':>8} {'recall':>6} | {'over-fetch q/s':>14} "
+          f"{'recall':>6} | {'scan q/s':>8} | {'over-fetch/walk':>15}")
+    for share, ways in by_share.items():
+        w, o = ways["within"], ways["over_fetch"]
+        print(f"{share:>6.1%} {w['tagged']:>8} | {w['qps']:>8.1f} {w['recall']:>6.3f} | "
+              f"{o['qps']:>14.1f} {o['recall']:>6.3f} | {w['exact_qps']:>8.0f} | "
+              f"{o['qps'] / w['qps']:>15.2f}")
 
 
 if __name__ == "__main__":

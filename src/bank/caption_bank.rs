@@ -35,6 +35,8 @@ pub struct CaptionBank {
     index_root: PathBuf,
     models: Arc<RwLock<HashMap<String, Arc<ModelBank>>>>,
     loading: Arc<std::sync::Mutex<()>>,
+    /// Set by [`CaptionBank::stop_builds`]: index builds in progress give up.
+    stop: Arc<std::sync::atomic::AtomicBool>,
 }
 
 impl std::fmt::Debug for CaptionBank {
@@ -69,6 +71,7 @@ impl CaptionBank {
             index_root: data_dir.join(INDEX_DIR),
             models: Arc::new(RwLock::new(HashMap::new())),
             loading: Arc::new(std::sync::Mutex::new(())),
+            stop: Arc::default(),
         })
     }
 
@@ -91,16 +94,24 @@ impl CaptionBank {
         if let Some(m) = self.loaded(digest) {
             return check_dimension(m, dimension).map(|m| (m, None));
         }
-        let (index, report) = VectorIndex::open(
+        let (index, report) = VectorIndex::open_until(
             &self.index_root,
             digest,
             dimension,
             self.core.config.index,
             &self.core.store,
+            &self.stop,
         )?;
         let model = Arc::new(ModelBank::new(self.core.clone(), index));
         write(&self.models).insert(digest.to_string(), model.clone());
         Ok((model, Some(report)))
+    }
+
+    /// Makes index builds in progress (and later ones) give up with
+    /// [`crate::bank::index::IndexError::Stopped`]: the service is stopping,
+    /// and a rebuild of minutes must not hold up its exit.
+    pub fn stop_builds(&self) {
+        self.stop.store(true, std::sync::atomic::Ordering::Relaxed);
     }
 
     /// The limits and index settings the bank was opened with.

@@ -41,6 +41,13 @@ fn clamp_distance(d: f32) -> f32 {
 }
 
 /// Dot product over the common length of `a` and `b`.
+///
+/// Kept by hand after measuring `simsimd` (runtime dispatch to AVX2, AVX-512,
+/// NEON, SVE) beside it (`bench/libraries/run.py`): a scan of 100k rows took
+/// 1.13x as long with simsimd at 64-d and 0.95x at 512-d, the same answers
+/// within 3e-8, so a C build dependency would buy nothing measurable here. On
+/// targets without AVX2 (aarch64 included) the portable loop below is
+/// vectorised by the compiler (NEON on aarch64).
 pub fn dot(a: &[f32], b: &[f32]) -> f32 {
     let n = a.len().min(b.len());
     let (a, b) = (&a[..n], &b[..n]);

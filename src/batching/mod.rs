@@ -8,6 +8,11 @@
 //! too much, so short captions are not padded to the longest one.
 //! The queue is bounded: a full queue refuses new jobs at once (the server
 //! answers 503) instead of letting latency grow without end.
+//!
+//! Written here rather than taken from a crate: batching by cost (token
+//! length) with a padding-waste split, oneshot replies that skip a job whose
+//! requester has gone, and the drain estimate the server admits work by are
+//! the service's own policy, and a generic batching crate offers none of them.
 
 use std::collections::VecDeque;
 use std::panic::{catch_unwind, AssertUnwindSafe};

@@ -223,12 +223,17 @@ pub struct RuntimeArgs {
 /// How encoders run.
 #[derive(Debug, Args, Clone)]
 pub struct EncoderArgs {
-    /// Worker threads (one ONNX session each) per encoder; default: the number of cores.
+    /// Worker threads (one ONNX session each) per encoder. Default, with
+    /// neither this nor --intra-threads: by each encoder's graph size, one
+    /// worker per core with 1 thread below 64 MiB, 1 worker with a thread per
+    /// core from 64 MiB (measured in BENCHMARKS.md); with --intra-threads
+    /// alone: the number of cores.
     #[arg(long)]
     pub workers: Option<usize>,
-    /// Threads inside each ONNX Runtime session.
-    #[arg(long, default_value_t = 1)]
-    pub intra_threads: usize,
+    /// Threads inside each ONNX Runtime session (default: see --workers; 1
+    /// when --workers is given).
+    #[arg(long)]
+    pub intra_threads: Option<usize>,
     /// Largest encoder batch of captions.
     #[arg(long, default_value_t = DEFAULT_MAX_BATCH)]
     pub max_batch: usize,

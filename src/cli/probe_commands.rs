@@ -17,7 +17,8 @@ use crate::encoders::offline::ModelEmbedder;
 use crate::encoders::Model;
 use crate::intake::image_decode::ImageLimits;
 use crate::metrics::Registry;
-use crate::probe::{embed_probe, EmbedOptions, ImageFiles, LoadOptions, ProbeSet};
+use crate::probe::thumbnails::read_offline;
+use crate::probe::{self, embed_probe, EmbedOptions, ImageFiles, LoadOptions, ProbeSet};
 use crate::stats::{self, CalibrationOptions, DriftOptions, ProbeVectors};
 
 /// A model for offline work and the runtime its batchers answer on.
@@ -147,7 +148,12 @@ pub fn calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
     }
     if let Some(path) = &a.output.report {
         let provenance = probe_provenance(&a.probe, vec![bundle])?;
-        write_text(path, &stats::calibration_html(&report, &provenance))?;
+        let lines = stats::calibration_example_lines(&report);
+        let thumbnails = probe::thumbnails(&set, &lines, &read_offline, &a.encoders.image_limits());
+        write_text(
+            path,
+            &stats::calibration_html(&report, &provenance, &thumbnails),
+        )?;
         eprintln!("befit: report written to {}", path.display());
     }
     if let Some(path) = &a.output.export {
@@ -193,7 +199,9 @@ pub fn drift(a: DriftArgs) -> anyhow::Result<ExitCode> {
     }
     if let Some(path) = &a.output.report {
         let provenance = probe_provenance(&a.probe, vec![ends.1.clone(), ends.0.clone()])?;
-        write_text(path, &stats::drift_html(&report, &provenance))?;
+        let lines = stats::drift_example_lines(&report);
+        let thumbnails = probe::thumbnails(&set, &lines, &read_offline, &a.encoders.image_limits());
+        write_text(path, &stats::drift_html(&report, &provenance, &thumbnails))?;
         eprintln!("befit: report written to {}", path.display());
     }
     if let Some(path) = &a.output.export {
@@ -271,8 +279,10 @@ fn summary_of_calibration(report: &stats::CalibrationReport) -> anyhow::Result<S
 
 fn summary_of_drift(report: &stats::DriftReport) -> anyhow::Result<String> {
     let v = serde_json::to_value(report)?;
+    // The verdict first, in one sentence, as the HTML report's headline.
     let mut out = format!(
-        "drift from {} to {}\n",
+        "{}\ndrift from {} to {}\n",
+        stats::drift_headline(report, &stats::HeadlineThresholds::default()),
         text(&v, "/from_bundle"),
         text(&v, "/to_bundle")
     );

@@ -10,7 +10,7 @@ use anyhow::{anyhow, bail, Context};
 use super::args::{CheckBundleArgs, EncoderArgs, ServeArgs, ServeEncoderArgs};
 use super::ort_environment;
 use crate::batching::BatchSettings;
-use crate::encoders::{load_bundles, ModelSettings};
+use crate::encoders::{load_bundles, ModelSettings, ThreadLayout};
 use crate::intake::limits::Limits;
 use crate::metrics::Registry;
 use crate::server::access::host::HostPolicy;
@@ -25,11 +25,18 @@ pub(crate) fn model_settings(
     a: &EncoderArgs,
     s: &ServeEncoderArgs,
 ) -> anyhow::Result<ModelSettings> {
-    let workers = a
-        .workers
-        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
-    if workers == 0
-        || a.intra_threads == 0
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    // Either flag fixes the layout (the other then defaults to its small-graph value);
+    // neither lets each tower's graph size choose (`LARGE_GRAPH_BYTES`).
+    let layout = match (a.workers, a.intra_threads) {
+        (None, None) => ThreadLayout::BySize { cores },
+        (workers, intra_threads) => ThreadLayout::Fixed {
+            workers: workers.unwrap_or(cores),
+            intra_threads: intra_threads.unwrap_or(1),
+        },
+    };
+    if a.workers == Some(0)
+        || a.intra_threads == Some(0)
         || a.max_batch == 0
         || a.max_image_batch == 0
         || s.queue_depth == 0
@@ -38,8 +45,7 @@ pub(crate) fn model_settings(
     }
     let wait = Duration::from_micros(s.max_wait_micros);
     Ok(ModelSettings {
-        workers,
-        intra_threads: a.intra_threads,
+        layout,
         image_batch: BatchSettings {
             max_batch: a.max_image_batch,
             max_wait: wait,
@@ -207,10 +213,8 @@ async fn shutdown_signal() {
 
 pub fn check_bundle(a: CheckBundleArgs) -> anyhow::Result<ExitCode> {
     let env = ort_environment(a.runtime.ort_lib)?;
-    let settings = ModelSettings {
-        workers: 1,
-        ..ModelSettings::default()
-    };
+    // One single-threaded session per tower is enough to check a bundle.
+    let settings = ModelSettings::default();
     let metrics = Arc::new(Registry::default());
     let models = load_bundles(&[&a.bundle], env, &settings, &metrics)?;
     let m = &models[0];

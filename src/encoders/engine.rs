@@ -2,6 +2,7 @@
 //! that turns an image reference into a content id and a vector, registering
 //! and caching on the way so no image is decoded or encoded twice.
 
+use std::collections::BTreeSet;
 use std::sync::Arc;
 
 use super::model::{EncodeError, Model};
@@ -12,6 +13,8 @@ pub use crate::intake::image_source::ImageSource;
 use crate::intake::image_tensor::tensor_from_bytes;
 use crate::intake::limits::Limits;
 use crate::metrics::Registry;
+use crate::probe::ProbeSet;
+use crate::stats::Thumbnails;
 use crate::store::image_index::{ImageHit, ImageIndex};
 use crate::store::images::{content_id, ImageStore, StoreError};
 
@@ -137,6 +140,19 @@ impl Engine {
             root.resolve(path)?;
         }
         Ok(())
+    }
+
+    /// Thumbnails of the rows of `set` at `lines` whose bytes the server has
+    /// (sent in the request, or a file under the image root; an image known
+    /// only by id has none), decoded under the server's image limits.
+    /// Blocking: reads files.
+    pub fn thumbnails(&self, set: &ProbeSet, lines: &BTreeSet<usize>) -> Thumbnails {
+        let read = |source: &ImageSource| match source {
+            ImageSource::Bytes(bytes) => Some(bytes.to_vec()),
+            ImageSource::Path(path) => self.root.as_ref()?.read(path).ok(),
+            ImageSource::Id(_) => None,
+        };
+        crate::probe::thumbnails(set, lines, &read, &self.image_limits)
     }
 
     /// [`Engine::check_source`] for a probe row: with `skip_bad`, a missing

@@ -17,4 +17,6 @@ pub mod towers;
 
 pub use engine::{Engine, EngineError, ImageSource, Registered};
 pub use loading::{load_bundles, LoadBundlesError};
-pub use model::{CaptionVector, EncodeError, LoadError, Model, ModelSettings};
+pub use model::{
+    CaptionVector, EncodeError, LoadError, Model, ModelSettings, ThreadLayout, LARGE_GRAPH_BYTES,
+};

@@ -33,9 +33,16 @@ pub const DEFAULT_BODY_TIMEOUT_SECS: u64 = 30;
 pub const DEFAULT_MIN_BODY_RATE: u64 = 4096;
 /// Encoder work already queued beyond which new work requests are refused
 /// before their body is read (503 with `Retry-After` = the queue's drain
-/// time). One second: an accepted request waits at most about that for the
-/// encoders; a starting value, not yet chosen by a load measurement.
-pub const DEFAULT_MAX_QUEUE_WAIT_MS: u64 = 1_000;
+/// time). Chosen by `make soak`'s 3x load (blocks-v1, 2 cores, two runs each,
+/// BENCHMARKS.md "Under abuse and faults"): at 100 ms successful throughput
+/// stayed at 0.89 and 0.92 of capacity with p99 0.47 to 0.54 s; at 250 ms
+/// 0.89 and 0.89, p99 0.70 to 0.92 s; at 1000 ms 0.78 and 0.75, p99 1.8 to
+/// 1.9 s (the queue drains past the overload into the next requests); a 503
+/// took about 1 ms at all three. 250 ms rather than 100: as good at 3x on the
+/// toy, and a larger encoder (a ViT-B/32-size model encodes about 230
+/// captions a second here) queues more than 100 ms for a single reward
+/// request, which would then refuse every concurrent one.
+pub const DEFAULT_MAX_QUEUE_WAIT_MS: u64 = 250;
 /// The first seconds of a body are not rate-checked (slow starts, small bodies).
 pub const BODY_RATE_GRACE: Duration = Duration::from_secs(3);
 

@@ -5,6 +5,7 @@
 //! - [`decode_budget`]: the server-wide memory budget for decodes in flight.
 //! - [`resample`]: Pillow-compatible resampling, so preprocessing matches the
 //!   Python side that trained and exported the encoders.
+//! - [`thumbnail`]: small JPEG previews as `data:` URIs, for the reports.
 //! - [`image_tensor`]: the bundle's resize rule and normalisation, to NCHW floats.
 //! - [`captions`]: tokenisation with prefix, truncation (reported) and padding.
 //! - [`image_root`]: image paths relative to a root folder, never escaping it.
@@ -20,4 +21,5 @@ pub mod image_source;
 pub mod image_tensor;
 pub mod limits;
 pub mod resample;
+pub mod thumbnail;
 pub mod validation;

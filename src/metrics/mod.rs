@@ -7,6 +7,15 @@
 //! - [`quantile`]: quantiles from cumulative buckets, as Prometheus estimates them.
 //! - [`history`]: a short in-memory history, sampled from the registry every second.
 //! - [`window`]: rates and percentiles between two samples, for the live page.
+//!
+//! Kept instead of the `prometheus-client` crate after measuring both with the
+//! same families and label sets (`bench/libraries/run.py`): recording one
+//! request (a counter and a histogram, two threads) cost 190 ns here against
+//! 310 ns, and rendering a 40-series scrape 61 us against 12 us, which every
+//! 15-second scrape can afford. The crate has no way to read every series back
+//! under one lock, which [`history`] samples each second for the live page,
+//! and label escaping (backslash, quote, newline) follows the exposition
+//! format here too.
 
 pub mod history;
 pub mod quantile;

@@ -6,18 +6,22 @@
 //! - [`set`]: the rows in memory.
 //! - [`load`]: JSON Lines in, every bad row reported by line.
 //! - [`embed`]: rows to vectors in batches, finding the row an encoder
-//!   failure comes from.
+//!   failure comes from, stopping between batches when [`cancel`]led.
+//! - [`thumbnails`]: previews of the images a report shows as examples.
 
 use std::fmt;
 use std::path::PathBuf;
 
+pub mod cancel;
 pub mod embed;
 pub mod load;
 pub mod set;
+pub mod thumbnails;
 
 pub use embed::{embed_probe, EmbedOptions, EmbeddedProbe, ImageFiles, ProbeEncoder};
 pub use load::{LoadOptions, LoadedProbe};
 pub use set::{Contrast, ImageSource, ProbeRow, ProbeSet};
+pub use thumbnails::thumbnails;
 
 /// Most bad rows kept in a [`ProbeError::BadRows`]; the rest are only
 /// counted, so a wholly wrong file does not make a message of megabytes.
@@ -130,6 +134,10 @@ pub enum ProbeError {
         /// The encoder's message.
         message: String,
     },
+    /// Whoever asked has gone (a request timed out or its client hung up):
+    /// the work stopped between two encoder batches.
+    #[error("stopped: whoever asked for this probe set's vectors has gone")]
+    Cancelled,
     /// The encoder returned an array of the wrong shape.
     #[error("the {tower} encoder returned {got:?} for a batch of {want_rows} of dimension {want_dimension}; the bundle's declared dimension does not match its graph")]
     Shape {

@@ -40,6 +40,18 @@ pub struct Warning {
     pub threshold: f64,
 }
 
+/// A recently updated run as the live page shows it: its last steps and the
+/// warnings of its latest step.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RecentRun {
+    #[serde(flatten)]
+    pub run: RunInfo,
+    /// Up to the last `steps` steps asked for, oldest first.
+    pub series: Vec<StepSummary>,
+    /// The thresholds the latest step crossed (under the run's own thresholds).
+    pub warnings: Vec<Warning>,
+}
+
 /// What recording a request's samples says back.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct RunReport {
@@ -188,6 +200,31 @@ impl RunWatch {
     /// Every run, the most recently updated first.
     pub fn list(&self) -> Result<Vec<RunInfo>, RunError> {
         lock(&self.shared.store).list()
+    }
+
+    /// The `runs` most recently updated runs, each with its last `steps`
+    /// steps (the range `latest - steps + 1 ..= latest`, so a run whose
+    /// steps skip numbers shows fewer) and its latest step's warnings.
+    pub fn recent(&self, runs: usize, steps: u64) -> Result<Vec<RecentRun>, RunError> {
+        let store = lock(&self.shared.store);
+        let mut out = Vec::new();
+        for run in store.list()?.into_iter().take(runs) {
+            let from = run.latest_step.saturating_sub(steps.saturating_sub(1));
+            let Some((run, series)) = store.series(&run.name, from, run.latest_step)? else {
+                continue;
+            };
+            let warnings = series
+                .last()
+                .filter(|s| s.step == run.latest_step)
+                .map(|s| warnings_of(&run.name, s, &run.thresholds))
+                .unwrap_or_default();
+            out.push(RecentRun {
+                run,
+                series,
+                warnings,
+            });
+        }
+        Ok(out)
     }
 
     /// A run's steps from `from` to `to`, inclusive.

@@ -114,3 +114,33 @@ fn repetition_warns_with_per_run_thresholds_and_gauges_stay_bounded() {
     assert_eq!(runs, MAX_GAUGED_RUNS);
     assert!(!exposed.contains("run=\"loopy\""));
 }
+
+#[test]
+fn recent_runs_are_the_latest_updated_with_their_last_steps() {
+    let dir = tempfile::tempdir().unwrap();
+    let watch = RunWatch::open(&dir.path().join("r.sqlite"), Arc::default()).unwrap();
+    // Run "a": steps 0, 1, 2, 4 (3 skipped); then "b" and "c" updated later.
+    for step in [0, 1, 2, 4] {
+        watch
+            .record(&tag("a", step), &[sample("a red cube", 1.0)])
+            .unwrap();
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    for run in ["b", "c"] {
+        watch
+            .record(&tag(run, 0), &[sample("a red cube", 1.0)])
+            .unwrap();
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    let names = |runs: &[RecentRun]| runs.iter().map(|r| r.run.name.clone()).collect::<Vec<_>>();
+    assert_eq!(names(&watch.recent(2, 10).unwrap()), ["c", "b"]);
+    // The last 3 step numbers of "a" are 2 ..= 4, of which 2 and 4 were sent.
+    let all = watch.recent(10, 3).unwrap();
+    assert_eq!(names(&all), ["c", "b", "a"]);
+    let steps: Vec<u64> = all[2].series.iter().map(|s| s.step).collect();
+    assert_eq!(steps, [2, 4]);
+    assert!(
+        all[2].warnings.is_empty(),
+        "one sample a step is below min_samples"
+    );
+}

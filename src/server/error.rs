@@ -447,6 +447,10 @@ impl From<ProbeError> for ApiError {
     fn from(e: ProbeError) -> ApiError {
         match e {
             ProbeError::Encoder { .. } | ProbeError::Shape { .. } => ApiError::internal(e),
+            // Seen only by a request already answered by its timeout (or whose client left).
+            ProbeError::Cancelled => {
+                ApiError::overloaded("the request took longer than --request-timeout-secs")
+            }
             other => ApiError::new(ErrorCode::InvalidField, other.to_string()).at("probe"),
         }
     }

@@ -375,10 +375,13 @@ impl Running {
         }
     }
 
-    /// Stops the background embedding after its batch, waits for loading to
-    /// end, stops the timer and writes the last dump.
+    /// Stops the background embedding after its batch and any index build,
+    /// waits for loading to end, stops the timer and writes the last dump.
     pub async fn stop(mut self) {
         self.service.backfills().stop();
+        // An index still building (a rebuild of a large bank at start) gives up
+        // between two inserts; its rows are in the store and the next start builds it.
+        self.service.shared.opened_bank.stop_builds();
         if let Some(loading) = self.loading.take() {
             let _ = loading.await;
         }

@@ -48,7 +48,8 @@ pub use drift::{drift, DriftOptions, DriftReport};
 pub use export::{calibration_export, drift_export, write_json, CalibrationExport, DriftExport};
 pub use pairs::ProbeVectors;
 pub use report::{
-    calibration_html, drift_headline, drift_html, sha256_hex, HeadlineThresholds, Provenance,
+    calibration_example_lines, calibration_html, drift_example_lines, drift_headline, drift_html,
+    sha256_hex, HeadlineThresholds, Provenance, Thumbnails,
 };
 pub use reward_map::{MapBundle, RewardMap, RewardMapError};
 

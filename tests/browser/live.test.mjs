@@ -2,6 +2,7 @@
 // port with the bundled blocks-v1, headless Debian Chromium driven by
 // playwright-core. Checks: no console errors, only befit's own files loaded,
 // the models shown, non-zero throughput after a burst of reward requests,
+// the burst's training run with its steps and the samples counted per step,
 // every control reachable by Tab, no horizontal scroll at a phone's width.
 // Screenshots (1280 and 390 px wide) go to target/browser/ for a person to look at.
 
@@ -70,8 +71,11 @@ async function startServer() {
   return { child, address };
 }
 
-// Reward requests from the bundled probe set (40 requests of 4 groups each, in waves of 5),
-// then the first 20 rows' captions into the caption bank.
+// Reward requests from the bundled probe set (40 requests of 4 groups each, in waves of 5,
+// each wave one step of the run RUN), then the first 20 rows' captions into the caption bank.
+const RUN = "blocks-demo";
+const WAVE = 5;
+let sampledCaptions = 0;
 async function burst() {
   const rows = readFileSync(join(repo, "fixtures/probe/probe.jsonl"), "utf8")
     .split("\n").filter((l) => l.trim()).map((l) => JSON.parse(l));
@@ -81,11 +85,14 @@ async function burst() {
       const row = rows[(i * 4 + g) % 40];
       return { image: { path: row.image }, captions: row.captions };
     }),
+    run: RUN,
+    step: Math.floor(i / WAVE),
   }));
+  sampledCaptions = bodies.reduce((n, b) => n + b.groups.reduce((m, g) => m + g.captions.length, 0), 0);
   // In waves with pauses between them, so the charts have several seconds to draw.
   const statuses = [];
-  for (let w = 0; w < bodies.length; w += 5) {
-    statuses.push(...await Promise.all(bodies.slice(w, w + 5).map((body) => post("/v1/rewards", body))));
+  for (let w = 0; w < bodies.length; w += WAVE) {
+    statuses.push(...await Promise.all(bodies.slice(w, w + WAVE).map((body) => post("/v1/rewards", body))));
     await new Promise((r) => setTimeout(r, 500));
   }
   // Some captions in the bank too, so its section has something to show.
@@ -147,8 +154,10 @@ test("the page loads and shows the loaded model", async () => {
   assert.match(modelRow, /blocks@v1/);
   assert.match(modelRow, /ready/);
   assert.match(await page.textContent("#status"), /^Ready · 1 model/);
-  // The place for the run watch is there, and empty of numbers.
-  assert.match(await page.textContent("#runs"), /not part of this build/);
+  // No run has been named yet: the runs section says how to start one.
+  await page.waitForFunction(() => document.getElementById("runs-summary").textContent.includes("No run"),
+    null, { timeout: SHOW_LIMIT_MS });
+  assert.match(await page.textContent("#runs-table tbody"), /no runs yet/);
 });
 
 test("a burst of reward requests shows as non-zero throughput", async () => {
@@ -172,6 +181,25 @@ test("a burst of reward requests shows as non-zero throughput", async () => {
     null, { timeout: SHOW_LIMIT_MS });
   assert.ok(distinctBankCaptions > 0);
   assert.ok((await page.textContent("#bank-summary")).startsWith(`${distinctBankCaptions} captions, 1 tag,`));
+});
+
+test("the burst's training run shows with its steps and samples", async () => {
+  await page.waitForFunction((run) => document.querySelector("#runs-table tbody").textContent.includes(run),
+    RUN, { timeout: SHOW_LIMIT_MS });
+  const cells = await page.$$eval("#runs-table tbody tr", (rows) => rows.map((r) => [...r.cells].map((c) => c.textContent)));
+  assert.equal(cells.length, 1);
+  const [name, latest, samples] = cells[0];
+  assert.equal(name, RUN);
+  // 40 requests in waves of WAVE, one step per wave: steps 0 to 7.
+  assert.equal(Number(latest), 40 / WAVE - 1);
+  // Every sampled caption of the burst, counted by the run watch, as the page prints it.
+  assert.equal(Number(samples.replace(/,/g, "")), sampledCaptions);
+  // One figure for the run, with the two charts drawn over its eight steps.
+  const charts = await page.$$eval("#run-plots figure.run svg", (s) => s.map((e) => e.getAttribute("aria-label")));
+  assert.equal(charts.length, 2);
+  assert.match(charts[0], /reward and cosine per step/);
+  const axis = await page.$$eval("#run-plots figure.run svg text", (t) => t.map((e) => e.textContent));
+  assert.ok(axis.includes("step 0") && axis.includes(`step ${40 / WAVE - 1}`), `x axis: ${axis}`);
 });
 
 test("every control is reachable with the Tab key and works from the keyboard", async () => {

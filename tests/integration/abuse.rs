@@ -346,7 +346,6 @@ async fn queued_work_sheds_new_work_at_once_with_its_drain_time() {
     // queue must not shed), one worker, one caption per run: the queue drains
     // slowly enough that nothing here races it.
     let settings = befit::encoders::ModelSettings {
-        workers: 1,
         caption_cache: 0,
         text_batch: befit::batching::BatchSettings {
             max_batch: 1,
@@ -419,4 +418,58 @@ async fn queued_work_sheds_new_work_at_once_with_its_drain_time() {
     assert!(state.queued_work().is_zero());
     let (status, body) = post_json(&state, "/v1/rewards", &rewards_body()).await;
     assert_eq!(status, 200, "{body}");
+}
+
+/// Defect: a drift timed out at 10 s kept a core busy 30 s more. Now the
+/// embedding of a request that is gone stops before its next encoder batch:
+/// after the timeout's answer, the model's encoder runs stop growing.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_timed_out_drift_stops_encoding() {
+    let limits = Limits {
+        request_timeout: Duration::from_millis(400),
+        ..Limits::default()
+    };
+    // A model of its own, so the encoder runs counted are this test's only.
+    let registry = std::sync::Arc::new(befit::metrics::Registry::default());
+    let settings = befit::encoders::ModelSettings {
+        caption_cache: 0,
+        ..befit::encoders::ModelSettings::default()
+    };
+    let bundle = befit::bundle::Bundle::open(&bundle_dir("blocks-v1")).unwrap();
+    let model = befit::encoders::Model::load(bundle, ort_env(), &settings, registry.clone());
+    let state = unready(&config(limits));
+    let model = std::sync::Arc::new(model.unwrap());
+    state.ready_with(vec![model]).unwrap();
+    let runs = || {
+        let mut n = 0;
+        registry.read(|name, _, reading| {
+            if let ("befit_encoder_batch_size", befit::metrics::Reading::Histogram(h)) =
+                (name, reading)
+            {
+                n += h.count;
+            }
+        });
+        n
+    };
+    // The whole probe set twice over (two models' worth of work on one): seconds of encoding.
+    let body = json!({"from": "blocks@v1", "to": "blocks@v1", "probe": probe_json(1000)});
+    let (status, answer) = post_json(&state, "/v1/drift", &body).await;
+    assert_eq!(status, 503, "{answer}");
+    assert!(
+        answer["error"]["message"]
+            .to_string()
+            .contains("--request-timeout-secs"),
+        "{answer}"
+    );
+    let at_answer = runs();
+    assert!(at_answer > 0, "the drift had started encoding");
+    tokio::time::sleep(Duration::from_millis(1500)).await;
+    // At most what the probe batch in flight when the request went still
+    // asks of the encoders (256 captions, split into runs of 64 or fewer);
+    // without the flag, hundreds of runs follow.
+    let later = runs();
+    assert!(
+        later <= at_answer + 16,
+        "encoder runs went on after the answer: {at_answer} then {later}"
+    );
 }

@@ -187,3 +187,56 @@ fn offline_commands_do_not_offer_the_servers_queue_and_cache_flags() {
         }
     }
 }
+
+#[test]
+fn drift_opens_with_its_verdict_in_one_sentence() {
+    // 40 probe rows: enough for every figure, quick for a test.
+    let dir = scratch_dir("drift-verdict");
+    let rows: Vec<String> = std::fs::read_to_string(probe_dir().join("probe.jsonl"))
+        .unwrap()
+        .lines()
+        .take(40)
+        .map(str::to_string)
+        .collect();
+    let probe = dir.join("probe.jsonl");
+    std::fs::write(&probe, rows.join("\n")).unwrap();
+    std::os::unix::fs::symlink(probe_dir().join("images"), dir.join("images")).unwrap();
+    let drift = |to: &str, json: bool| {
+        let mut command = befit();
+        command
+            .args(["drift", "--from", bundle_dir("blocks-v1").to_str().unwrap()])
+            .args(["--to", bundle_dir(to).to_str().unwrap()])
+            .arg("--probe")
+            .arg(&probe)
+            .arg("--ort-lib")
+            .arg(ort_lib());
+        if json {
+            command.arg("--json");
+        }
+        let out = command.output().unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8(out.stdout).unwrap()
+    };
+    for to in ["blocks-v1", "blocks-v2"] {
+        let text = drift(to, false);
+        let first = text.lines().next().unwrap();
+        let report: befit::stats::DriftReport = serde_json::from_str(&drift(to, true)).unwrap();
+        // The sentence the HTML report is headed by, from the same figures.
+        let headline =
+            befit::stats::drift_headline(&report, &befit::stats::HeadlineThresholds::default());
+        assert_eq!(first, headline);
+        assert!(
+            first.starts_with("Rewards move by") && first.ends_with('.'),
+            "{first}"
+        );
+        // A bundle against itself moves nothing and is safe; the verdict is in the sentence.
+        if to == "blocks-v1" {
+            assert!(first.contains("the swap looks safe"), "{first}");
+        }
+        assert!(text.lines().nth(1).unwrap().starts_with("drift from"));
+    }
+}

@@ -162,6 +162,20 @@ async fn html_format_answers_the_report_page_with_its_provenance() {
     assert!(page.contains(&digest), "probe sha256 {digest} missing");
     assert!(page.contains("30 rows"));
     assert!(page.contains(env!("CARGO_PKG_VERSION")));
+    // Every example row shows its image (files under the image root): as many
+    // thumbnails as the JSON answer lists example pairs.
+    let (status, json_answer) =
+        post_json(&state, "/v1/calibration", &json!({"probe": rows.clone()})).await;
+    assert_eq!(status, 200, "{json_answer}");
+    let examples = &json_answer["report"]["examples"];
+    let listed = examples["lowest_true"].as_array().unwrap().len()
+        + examples["lost_contrasts"].as_array().unwrap().len();
+    assert!(listed > 0);
+    assert_eq!(
+        page.matches("<img class=\"thumb\" src=\"data:image/jpeg;base64,")
+            .count(),
+        listed
+    );
 
     let body = json!({"from": "blocks@v1", "to": "blocks@v1", "probe": rows, "format": "html"});
     let page = html(&state, "/v1/drift", &body).await;

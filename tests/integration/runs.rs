@@ -26,6 +26,16 @@ async fn get(state: &befit::service::Service, uri: &str) -> (u16, Value) {
     (status.as_u16(), body)
 }
 
+/// The signals of a list of warnings, in order.
+fn signals(warnings: &Value) -> Vec<&str> {
+    warnings
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["signal"].as_str().unwrap())
+        .collect()
+}
+
 fn rewards_body(run: Value, captions: &[&str]) -> Value {
     let row = &probe_rows("probe.jsonl")[2];
     let mut body = json!({"scale": {"kind": "clip-s"},
@@ -67,12 +77,7 @@ async fn steps_aggregate_what_was_sent_and_warn_past_thresholds() {
             rewards.entry(step).or_default().push(f(&s["reward"]));
         }
         sent.entry(step).or_default().extend(captions);
-        let warned: Vec<&str> = body["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|w| w["signal"].as_str().unwrap())
-            .collect();
+        let warned = signals(&body["warnings"]);
         if step == 1 {
             // Mean repeated-word share (3/4 + 3/4 + 0) / 3 = 0.5 > 0.3; bigrams
             // (2/3 + 2/3 + 0) / 3 = 0.444 > 0.2; distinct-2 2/7 = 0.286 >= 0.1.
@@ -118,6 +123,17 @@ async fn steps_aggregate_what_was_sent_and_warn_past_thresholds() {
     let (_, only) = get(&state, "/v1/runs/exp-1?from=1&to=1").await;
     assert_eq!(only["series"].as_array().unwrap().len(), 1);
     assert_eq!(only["series"][0]["step"], 1);
+
+    // The live page's pulse carries the same run: its steps as /v1/runs/NAME
+    // gives them, and the warnings the latest step's answer carried.
+    let (status, pulse) = get(&state, "/v1/pulse").await;
+    assert_eq!(status, 200, "{pulse}");
+    let shown = &pulse["runs"][0];
+    assert_eq!(shown["name"], "exp-1");
+    assert_eq!(shown["samples"], 5);
+    assert_eq!(shown["series"], run["series"]);
+    let warned = signals(&shown["warnings"]);
+    assert_eq!(warned, ["repeated_words", "repeated_bigrams"], "{shown}");
 }
 
 #[tokio::test(flavor = "multi_thread")]

@@ -74,7 +74,10 @@ pub fn model(name: &str) -> Arc<Model> {
     let bundle = Bundle::open(&bundle_dir(dir)).unwrap_or_else(|e| panic!("{e}"));
     let defaults = ModelSettings::default();
     let settings = ModelSettings {
-        workers: 2,
+        layout: befit::encoders::ThreadLayout::Fixed {
+            workers: 2,
+            intra_threads: 1,
+        },
         caption_cache: if cached { defaults.caption_cache } else { 0 },
         ..defaults
     };
@@ -86,6 +89,18 @@ pub fn model(name: &str) -> Arc<Model> {
 
 /// The service's configuration for tests: a fresh data folder, the probe folder as image root.
 pub fn config(limits: Limits) -> ServiceConfig {
+    // The shared test models serve concurrent tests: their queues hold other
+    // tests' work, which must not shed this test's requests. A test that asks
+    // for another queue wait (the shedding tests, on a model of their own)
+    // keeps it.
+    let limits = if limits.max_queue_wait == Limits::default().max_queue_wait {
+        Limits {
+            max_queue_wait: std::time::Duration::from_secs(3600),
+            ..limits
+        }
+    } else {
+        limits
+    };
     ServiceConfig {
         image_root: Some(probe_dir()),
         limits,

@@ -14,12 +14,9 @@ uses (intake.py), not from PyTorch.
 from __future__ import annotations
 
 import argparse
-import hashlib
 import json
-import platform
 import shutil
 import sys
-from importlib import metadata
 from pathlib import Path
 
 import numpy as np
@@ -27,13 +24,13 @@ import onnx
 import torch
 from tokenizers import Tokenizer
 
+from bundle_files import bundle_toml, sha256, versions
 from evaluate import OrtBundle, all_texts, evaluate_bundle, read_rows
 from intake import encode, image_tensor, pad
 from make_probe import PROBE_SEED
 
 OPSET = 17
 TOLERANCE = 1e-4
-PACKAGES = ("torch", "onnx", "onnxruntime", "tokenizers", "transformers", "numpy", "pillow", "onnxscript")
 
 
 def _export(
@@ -62,57 +59,6 @@ def _export(
     model.graph.output[0].type.tensor_type.shape.dim[1].dim_value = dimension
     model.producer_version = ""
     onnx.save(model, str(path))
-
-
-def bundle_toml(name: str, version: str, image: dict, text: dict, dimension: int) -> str:
-    """bundle.toml text, field order as in docs/bundles.md."""
-
-    def arr(v):
-        return "[" + ", ".join(repr(float(x)) for x in v) + "]"
-
-    lines = [
-        "[model]",
-        f'name = "{name}"',
-        f'version = "{version}"',
-        f"dimension = {dimension}",
-        "",
-        "[image]",
-        'file = "image.onnx"',
-        f'input = "{image["input"]}"',
-        f'output = "{image["output"]}"',
-        f"size = {image['size']}",
-        f'resize = "{image["resize"]}"',
-        f'filter = "{image["filter"]}"',
-        f"mean = {arr(image['mean'])}",
-        f"std = {arr(image['std'])}",
-        "",
-        "[text]",
-        'file = "text.onnx"',
-        'tokenizer = "tokenizer.json"',
-        f'ids_input = "{text["ids_input"]}"',
-        f'mask_input = "{text["mask_input"]}"',
-        f'output = "{text["output"]}"',
-        f"max_tokens = {text['max_tokens']}",
-        f"pad_id = {text['pad_id']}",
-        'padding = "longest"',
-        'prefix = ""',
-        "",
-    ]
-    return "\n".join(lines)
-
-
-def sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def versions() -> dict:
-    out = {"python": platform.python_version()}
-    for p in PACKAGES:
-        try:
-            out[p] = metadata.version(p)
-        except metadata.PackageNotFoundError:
-            pass
-    return out
 
 
 def verify(bundle: OrtBundle, torch_image, torch_text, probe: Path) -> dict:

@@ -93,6 +93,27 @@ impl VectorIndex {
         params: IndexParams,
         source: &dyn RowSource,
     ) -> Result<(Self, LoadReport), IndexError> {
+        Self::open_until(
+            root,
+            digest,
+            dimension,
+            params,
+            source,
+            &AtomicBool::new(false),
+        )
+    }
+
+    /// [`VectorIndex::open`] that gives up with [`IndexError::Stopped`] as
+    /// soon as `stop` is set while it inserts rows into the graph (a service
+    /// asked to stop during a rebuild of minutes).
+    pub fn open_until(
+        root: &Path,
+        digest: &str,
+        dimension: usize,
+        params: IndexParams,
+        source: &dyn RowSource,
+        stop: &AtomicBool,
+    ) -> Result<(Self, LoadReport), IndexError> {
         let start = Instant::now();
         let mut index = Self::in_memory(digest, dimension, params)?;
         let dir = root.join(digest);
@@ -147,7 +168,7 @@ impl VectorIndex {
                     .filter(|id| !in_dump.contains(id))
                     .collect();
                 *index.rows.get_mut().unwrap_or_else(|e| e.into_inner()) = rows;
-                index.insert_into_graph(&missing)?;
+                index.insert_into_graph(&missing, stop)?;
                 *index.dumped.get_mut().unwrap_or_else(|e| e.into_inner()) = DumpState {
                     generation: if missing.is_empty() { 0 } else { u64::MAX },
                     rows: manifest.rows,
@@ -162,7 +183,7 @@ impl VectorIndex {
                 index.graph = HnswGraph::new(&params, rows.len());
                 let all: Vec<RowId> = rows.ids().to_vec();
                 *index.rows.get_mut().unwrap_or_else(|e| e.into_inner()) = rows;
-                index.insert_into_graph(&all)?;
+                index.insert_into_graph(&all, stop)?;
                 if !all.is_empty() {
                     // Nothing on disk matches: the next dump must write.
                     index
@@ -203,12 +224,12 @@ impl VectorIndex {
                 }
             }
         }
-        self.insert_into_graph(&fresh)?;
+        self.insert_into_graph(&fresh, &AtomicBool::new(false))?;
         Ok(fresh.len())
     }
 
-    /// Inserts rows already in the matrix into the graph.
-    fn insert_into_graph(&self, ids: &[RowId]) -> Result<(), IndexError> {
+    /// Inserts rows already in the matrix into the graph, giving up once `stop` is set.
+    fn insert_into_graph(&self, ids: &[RowId], stop: &AtomicBool) -> Result<(), IndexError> {
         if ids.is_empty() {
             return Ok(());
         }
@@ -218,6 +239,9 @@ impl VectorIndex {
         let next = AtomicUsize::new(0);
         let failed = AtomicBool::new(false);
         let work = || loop {
+            if stop.load(Ordering::Relaxed) {
+                break;
+            }
             let i = next.fetch_add(1, Ordering::Relaxed);
             let Some(id) = ids.get(i) else { break };
             let Some(v) = matrix.vector(*id) else {
@@ -243,6 +267,9 @@ impl VectorIndex {
         self.generation.fetch_add(1, Ordering::SeqCst);
         if failed.load(Ordering::SeqCst) {
             return Err(IndexError::Internal("insert"));
+        }
+        if stop.load(Ordering::Relaxed) {
+            return Err(IndexError::Stopped);
         }
         Ok(())
     }

@@ -10,6 +10,10 @@ use crate::bank::RowId;
 /// Why the index refused or failed; each message says what to change.
 #[derive(Debug, thiserror::Error)]
 pub enum IndexError {
+    /// The service is stopping: a graph build was given up between two
+    /// inserts (the rows are safe in the store; the next start builds again).
+    #[error("the index build was stopped because the service is shutting down; it is built again at the next start")]
+    Stopped,
     /// A vector of the wrong length.
     #[error("the vector has {got} numbers but this index holds {expected}-long vectors (bundle digest {digest}); embed with that bundle")]
     Dimension {

@@ -9,6 +9,7 @@ use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::Path;
 
 use hnsw_rs::api::AnnT;
+use hnsw_rs::filter::FilterT;
 use hnsw_rs::hnsw::Hnsw;
 use hnsw_rs::hnswio::HnswIo;
 
@@ -60,15 +61,24 @@ impl HnswGraph {
         .map_err(|_| IndexError::Internal("insert"))
     }
 
-    /// The `k` nearest points at breadth `ef`, best first.
+    /// The `k` nearest points at breadth `ef`, best first; with `only`, the
+    /// `k` nearest of those points the filter allows, found by walking the
+    /// whole graph and keeping only allowed points among the `ef` best
+    /// (hnsw_rs's filtered search). A filtered walk can return fewer than
+    /// `k` when the filter cuts the graph; the caller decides what then.
     pub(super) fn search(
         &self,
         q: &[f32],
         k: usize,
         ef: usize,
+        only: Option<&(dyn Fn(RowId) -> bool + Sync)>,
     ) -> Result<Vec<Neighbour>, IndexError> {
-        let found = catch_unwind(AssertUnwindSafe(|| self.graph.search(q, k, ef)))
-            .map_err(|_| IndexError::Internal("search"))?;
+        let allowed = only.map(|f| move |id: &usize| f(*id as RowId));
+        let filter = allowed.as_ref().map(|f| f as &dyn FilterT);
+        let found = catch_unwind(AssertUnwindSafe(|| {
+            self.graph.search_filter(q, k, ef, filter)
+        }))
+        .map_err(|_| IndexError::Internal("search"))?;
         let mut hits: Vec<Neighbour> = found
             .into_iter()
             .map(|n| Neighbour {

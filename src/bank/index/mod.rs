@@ -44,7 +44,7 @@ pub use parameters::{
     DEFAULT_EXACT_BELOW, DEFAULT_MAX_CONNECTIONS, MAX_EF_SEARCH, MAX_K, MAX_QUERIES,
 };
 pub use persistence::DumpReport;
-pub use search::{Answered, SearchAnswer};
+pub use search::{Answered, FilterWalk, SearchAnswer};
 
 use super::exact::ExactRows;
 use super::RowId;

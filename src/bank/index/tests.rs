@@ -312,7 +312,13 @@ fn tag_filters_only_return_allowed_rows_whatever_their_size() {
     index.insert(&rows_of(&bank, 1)).unwrap();
     let narrow: HashSet<RowId> = (1..=6_000).filter(|i| i % 50 == 0).collect();
     let wide: HashSet<RowId> = (1..=6_000).filter(|i| i % 3 == 0).collect();
-    for only in [&narrow, &wide] {
+    // Both ways of walking the graph with a filter, over three set widths
+    // (2%, 14% and 33% of the bank; the 2% set is scanned exactly).
+    let sparse: HashSet<RowId> = (1..=6_000).filter(|i| i % 7 == 0).collect();
+    for (walk, only) in [FilterWalk::Within, FilterWalk::OverFetch]
+        .into_iter()
+        .flat_map(|w| [(w, &narrow), (w, &wide), (w, &sparse)])
+    {
         for q in queries.chunks(DIM) {
             let search = Search {
                 k: 10,
@@ -320,8 +326,8 @@ fn tag_filters_only_return_allowed_rows_whatever_their_size() {
                 mode: SearchMode::Auto,
                 only: Some(only),
             };
-            let got = index.search(q, &search).unwrap();
-            assert_eq!(got.hits.len(), 10);
+            let got = index.search_walking(q, &search, walk).unwrap();
+            assert_eq!(got.hits.len(), 10, "{walk:?}");
             assert!(got.hits.iter().all(|h| only.contains(&h.id)));
             let exact = index.exact(q, 10, Some(only)).unwrap();
             let recall = crate::bank::recall::recall_of_query(
@@ -329,7 +335,7 @@ fn tag_filters_only_return_allowed_rows_whatever_their_size() {
                 &got.hits.iter().map(|h| h.cosine).collect::<Vec<_>>(),
                 10,
             );
-            assert!(recall >= 0.8, "filtered recall {recall}");
+            assert!(recall >= 0.8, "{walk:?}: filtered recall {recall}");
         }
     }
     let search = Search {
@@ -439,4 +445,40 @@ fn concurrent_inserts_and_searches_find_every_inserted_row() {
     done.store(true, Ordering::SeqCst);
     assert!(searcher.join().unwrap() > 0);
     assert_eq!(index.stats().indexed, 4_000);
+}
+
+#[test]
+fn a_build_gives_up_when_asked_to_stop_and_the_next_open_builds_it() {
+    let root = tempfile::tempdir().unwrap();
+    let source = rows_of(&uniform_sphere(10_000, DIM, 12), 1);
+    let stop = std::sync::atomic::AtomicBool::new(false);
+    let started = std::time::Instant::now();
+    let asked = std::thread::scope(|s| {
+        // Asked to stop shortly after the build began (the service got SIGTERM).
+        s.spawn(|| {
+            std::thread::sleep(std::time::Duration::from_millis(30));
+            stop.store(true, std::sync::atomic::Ordering::Relaxed);
+        });
+        VectorIndex::open_until(
+            root.path(),
+            DIGEST_A,
+            DIM,
+            IndexParams::default(),
+            &source,
+            &stop,
+        )
+    });
+    let stopped_after = started.elapsed();
+    assert!(matches!(asked, Err(IndexError::Stopped)), "{asked:?}");
+    // The full build, for comparison (same rows, same machine, same run).
+    let started = std::time::Instant::now();
+    let (index, report) =
+        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
+    let built_after = started.elapsed();
+    assert_eq!(index.len(), 10_000);
+    assert!(matches!(report.origin, GraphOrigin::Built { .. }));
+    assert!(
+        stopped_after * 3 < built_after,
+        "stopping took {stopped_after:?} of a {built_after:?} build"
+    );
 }

@@ -3,6 +3,7 @@
 
 use ndarray::Array2;
 
+use crate::probe::cancel::Cancel;
 use crate::probe::ProbeError;
 use crate::vectors::EmbedError;
 
@@ -28,19 +29,37 @@ pub(super) type EncodeBatch<'a, T> = dyn Fn(&[T]) -> Result<Array2<f32>, EmbedEr
 /// Per item: its vector, or why the encoder failed on it alone.
 pub(super) type ItemVectors = Vec<Result<Vec<f32>, String>>;
 
-/// Embeds `items` in batches of `batch`; per item, its vector or why the
-/// encoder failed on it alone. `done(n)` is told after every batch.
+/// How one tower's items are embedded.
+pub(super) struct Batches<'a> {
+    pub tower: Tower,
+    /// Items per encoder call.
+    pub batch: usize,
+    /// Length of every vector.
+    pub dimension: usize,
+    /// Checked before every call.
+    pub cancel: &'a Cancel,
+}
+
+/// Embeds `items` in batches; per item, its vector or why the encoder failed
+/// on it alone. `done(n)` is told after every batch.
 pub(super) fn embed_in_batches<T>(
-    tower: Tower,
+    how: &Batches<'_>,
     items: &[T],
     lines: &[usize],
-    batch: usize,
-    dimension: usize,
     embed: &EncodeBatch<'_, T>,
     done: &mut dyn FnMut(usize),
 ) -> Result<ItemVectors, ProbeError> {
+    let Batches {
+        tower,
+        batch,
+        dimension,
+        cancel,
+    } = *how;
     let mut out = Vec::with_capacity(items.len());
     for (chunk_index, chunk) in items.chunks(batch).enumerate() {
+        if cancel.is_cancelled() {
+            return Err(ProbeError::Cancelled);
+        }
         let start = chunk_index * batch;
         match embed(chunk) {
             Ok(m) => out.extend(rows_of(tower, &m, chunk.len(), dimension)?),

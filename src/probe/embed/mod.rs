@@ -11,10 +11,11 @@ mod encoder;
 
 use ndarray::Array2;
 
+use super::cancel::Cancel;
 use super::set::{ImageSource, ProbeSet};
 use super::{ProbeError, RowIssue, RowProblem};
 use crate::stats::ProbeVectors;
-use batches::{embed_in_batches, Tower};
+use batches::{embed_in_batches, Batches, Tower};
 pub use encoder::{ImageFiles, ProbeEncoder};
 
 /// Default images per encoder call: enough to keep an encoder busy, few
@@ -35,6 +36,9 @@ pub struct EmbedOptions {
     pub image_batch: usize,
     /// Captions per encoder call, at least 1.
     pub text_batch: usize,
+    /// Checked before every encoder batch: once set, embedding stops with
+    /// [`ProbeError::Cancelled`].
+    pub cancel: Cancel,
 }
 
 impl Default for EmbedOptions {
@@ -44,6 +48,7 @@ impl Default for EmbedOptions {
             skip_bad: false,
             image_batch: DEFAULT_IMAGE_BATCH,
             text_batch: DEFAULT_TEXT_BATCH,
+            cancel: Cancel::default(),
         }
     }
 }
@@ -78,12 +83,16 @@ pub fn embed_probe(
     // Images, one per row.
     let images: Vec<&ImageSource> = set.rows.iter().map(|r| &r.image).collect();
     let image_lines: Vec<usize> = set.rows.iter().map(|r| r.line).collect();
+    let batches = |tower, batch| Batches {
+        tower,
+        batch,
+        dimension,
+        cancel: &options.cancel,
+    };
     let image_vectors = embed_in_batches(
-        Tower::Image,
+        &batches(Tower::Image, image_batch),
         &images,
         &image_lines,
-        image_batch,
-        dimension,
         &|batch| encoder.embed_images(batch),
         &mut |n| {
             done += n;
@@ -132,11 +141,9 @@ pub fn embed_probe(
     }
     let text_lines: Vec<usize> = text_rows.iter().map(|&r| set.rows[r].line).collect();
     let text_vectors = embed_in_batches(
-        Tower::Text,
+        &batches(Tower::Text, text_batch),
         &texts,
         &text_lines,
-        text_batch,
-        dimension,
         &|batch| encoder.embed_texts(batch),
         &mut |n| {
             done += n;

@@ -1,6 +1,7 @@
 use std::path::PathBuf;
 
 use super::*;
+use crate::probe::cancel::Cancel;
 use crate::probe::{LoadOptions, ProbeSet};
 use crate::vectors::{EmbedError, Embedder};
 use std::path::Path;
@@ -94,6 +95,7 @@ fn options(skip_bad: bool) -> EmbedOptions {
         skip_bad,
         image_batch: 2,
         text_batch: 3,
+        cancel: Cancel::default(),
     }
 }
 
@@ -223,4 +225,20 @@ fn image_ids_need_a_store() {
     let err =
         embed_probe(&set, &ImageFiles(&encoder), &options(false), &mut |_, _| {}).unwrap_err();
     assert!(err.to_string().contains("name the image by path"), "{err}");
+}
+
+#[test]
+fn a_cancelled_embedding_stops_before_its_next_batch() {
+    let encoder = fake();
+    let opts = options(true);
+    let cancel = opts.cancel.clone();
+    let mut batches_done = 0;
+    // The asker goes away after the first batch (of 2 images; the probe has 4 rows).
+    let err = embed_probe(&probe(), &ImageFiles(&encoder), &opts, &mut |_, _| {
+        batches_done += 1;
+        cancel.cancel();
+    })
+    .unwrap_err();
+    assert!(matches!(err, ProbeError::Cancelled), "{err}");
+    assert_eq!(batches_done, 1, "no encoder call after the cancel");
 }

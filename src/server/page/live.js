@@ -71,8 +71,9 @@ function niceMax(v) {
   return 10 * p;
 }
 
-// series: [{name, values: [number|null], colour: 0..5, dash: 0..3}]; times in ms.
-function chart(box, title, unit, times, series) {
+// series: [{name, values: [number|null], colour: 0..5, dash: 0..3}]; times in ms,
+// or other x values with `axis` = {left, right} naming the ends of the x axis.
+function chart(box, title, unit, times, series, axis) {
   const width = Math.max(240, box.clientWidth || 600);
   const svg = svgEl("svg", { width, height: CHART_HEIGHT, viewBox: `0 0 ${width} ${CHART_HEIGHT}`, role: "img" });
   const label = `${title}: ` + series.map((s) => {
@@ -85,17 +86,25 @@ function chart(box, title, unit, times, series) {
   const innerH = CHART_HEIGHT - PAD.top - PAD.bottom;
   const all = series.flatMap((s) => s.values).filter((v) => v !== null && v !== undefined);
   const top = niceMax(Math.max(0, ...all));
-  const y = (v) => PAD.top + innerH * (1 - v / top);
+  // Below zero (a reward can be), the axis reaches down to a round value too.
+  const low = Math.min(0, ...all);
+  const bottom = low < 0 ? -niceMax(-low) : 0;
+  const y = (v) => PAD.top + innerH * (1 - (v - bottom) / (top - bottom));
   const t0 = times.length ? times[0] : 0;
   const t1 = times.length ? times[times.length - 1] : 1;
   const x = (t) => PAD.left + (t1 > t0 ? innerW * (t - t0) / (t1 - t0) : innerW);
-  for (const f of [0, 0.5, 1]) {
-    const yy = y(top * f);
-    svg.appendChild(svgEl("line", { x1: PAD.left, x2: width - PAD.right, y1: yy, y2: yy, class: f === 0 ? "axis" : "grid" }));
-    svg.appendChild(svgEl("text", { x: PAD.left - 4, y: yy + 4, "text-anchor": "end" }, fmt(top * f)));
+  const ticks = bottom < 0 ? [bottom, 0, top] : [0, top / 2, top];
+  for (const v of ticks) {
+    const yy = y(v);
+    svg.appendChild(svgEl("line", { x1: PAD.left, x2: width - PAD.right, y1: yy, y2: yy, class: v === 0 ? "axis" : "grid" }));
+    svg.appendChild(svgEl("text", { x: PAD.left - 4, y: yy + 4, "text-anchor": "end" }, fmt(v)));
   }
-  svg.appendChild(svgEl("text", { x: PAD.left, y: CHART_HEIGHT - 6 }, times.length > 1 ? `−${Math.round((t1 - t0) / 1000)} s` : ""));
-  svg.appendChild(svgEl("text", { x: width - PAD.right, y: CHART_HEIGHT - 6, "text-anchor": "end" }, `now · ${unit}`));
+  const ends = axis || {
+    left: times.length > 1 ? `−${Math.round((t1 - t0) / 1000)} s` : "",
+    right: `now · ${unit}`,
+  };
+  svg.appendChild(svgEl("text", { x: PAD.left, y: CHART_HEIGHT - 6 }, ends.left));
+  svg.appendChild(svgEl("text", { x: width - PAD.right, y: CHART_HEIGHT - 6, "text-anchor": "end" }, ends.right));
   if (all.length === 0) {
     svg.appendChild(svgEl("text", { x: PAD.left + innerW / 2, y: PAD.top + innerH / 2, "text-anchor": "middle", class: "empty" }, "no data yet"));
   }
@@ -132,9 +141,10 @@ function legend(box, series) {
 }
 
 // A figure `plot-NAME` in the page holds its title; the chart and legend are added here.
-function part(figure, tag, cls) {
+// `cls` finds the part again; `also` are classes it carries besides.
+function part(figure, tag, cls, also) {
   let e = figure.querySelector(`.${cls}`);
-  if (!e) { e = el(tag, null, cls); figure.appendChild(e); }
+  if (!e) { e = el(tag, null, also ? `${also} ${cls}` : cls); figure.appendChild(e); }
   return e;
 }
 
@@ -257,6 +267,57 @@ function renderBank(p) {
     : "No tags yet.";
 }
 
+// One figure per watched run, made on first sight and kept (so focus and
+// scrolling survive a redraw); a run that left the pulse loses its figure.
+function runFigure(name) {
+  const box = $("run-plots");
+  for (const f of box.children) if (f.dataset.run === name) return f;
+  const figure = el("figure", null, "run");
+  figure.dataset.run = name;
+  figure.appendChild(el("h3", `Run ${name}`));
+  box.appendChild(figure);
+  return figure;
+}
+
+function renderRuns(p) {
+  const runs = p.runs || [];
+  $("runs-summary").textContent = runs.length
+    ? (runs.length === 1 ? "One run, with up to its last 200 steps."
+      : `The ${runs.length} most recently updated runs, with up to their last 200 steps.`)
+    : "No run has been named yet: send \"run\" and \"step\" with /v1/rewards to watch one.";
+  const rows = runs.map((r) => {
+    const last = r.series[r.series.length - 1] || null;
+    const v = (f) => (last ? f(last) : null);
+    const warned = r.warnings.map((w) => `${w.signal} ${fmt(w.value)} (limit ${fmt(w.threshold)})`).join("; ");
+    return [
+      r.name, num(r.latest_step, 0), num(r.samples, 0),
+      num(v((s) => s.reward.mean)), num(v((s) => s.cosine.mean)),
+      { text: pct(v((s) => s.repeated_words)), num: true }, num(v((s) => s.distinct_2)),
+      { text: warned || "none", cls: warned ? "warn" : "" },
+    ];
+  });
+  fill($("runs-table").tBodies[0], rows, "no runs yet", 8);
+  const names = new Set(runs.map((r) => r.name));
+  for (const f of [...$("run-plots").children]) if (!names.has(f.dataset.run)) f.remove();
+  for (const r of runs) {
+    const figure = runFigure(r.name);
+    const steps = r.series.map((s) => s.step);
+    const axis = { left: steps.length ? `step ${steps[0]}` : "", right: steps.length ? `step ${steps[steps.length - 1]}` : "" };
+    const pick = (f) => r.series.map(f);
+    const scores = [
+      { name: "reward (mean)", values: pick((s) => s.reward.mean), colour: 0 },
+      { name: "cosine (mean)", values: pick((s) => s.cosine.mean), colour: 1, dash: 1 },
+    ];
+    const words = [
+      { name: "repeated words", values: pick((s) => s.repeated_words), colour: 2 },
+      { name: "distinct-2", values: pick((s) => s.distinct_2), colour: 3, dash: 2 },
+    ];
+    chart(part(figure, "div", "scores", "chart"), `Run ${r.name}: reward and cosine per step`, "", steps, scores, axis);
+    chart(part(figure, "div", "words", "chart"), `Run ${r.name}: repetition and distinct-2 per step`, "", steps, words, axis);
+    legend(part(figure, "figcaption", "legend"), [...scores, ...words]);
+  }
+}
+
 function render(p) {
   const status = $("status");
   status.classList.remove("bad");
@@ -270,6 +331,7 @@ function render(p) {
   renderEncoders(p);
   renderCaches(p);
   renderBank(p);
+  renderRuns(p);
 }
 
 async function poll() {

@@ -2,7 +2,8 @@
 //! binary, served under a Content-Security-Policy that allows befit's own
 //! files only), and `GET /v1/pulse`, the numbers it polls: loaded models,
 //! throughput, latency, encoder batches and queues, caches and the caption
-//! bank, from the metrics history ([`crate::metrics::history`]).
+//! bank, from the metrics history ([`crate::metrics::history`]), and the
+//! recently updated runs of the run watch ([`crate::runs::RunWatch::recent`]).
 
 use std::sync::LazyLock;
 
@@ -17,6 +18,7 @@ use serde_json::{json, Value};
 use super::ModelRef;
 use crate::intake::validation::{Invalid, Problem};
 use crate::metrics::history::HISTORY_SAMPLES;
+use crate::runs::MAX_GAUGED_RUNS;
 use crate::server::error::ApiError;
 use crate::service::Service;
 use crate::stats::svg::PALETTE;
@@ -33,6 +35,10 @@ form-action 'none'; frame-ancestors 'none'";
 
 /// History points `GET /v1/pulse` gives without `?seconds=`: two minutes.
 pub const DEFAULT_PULSE_SECONDS: u64 = 120;
+
+/// Last steps of each run `GET /v1/pulse` shows: enough to see a trend on
+/// the page, small enough to poll every 2 s (`/v1/runs/NAME` has them all).
+pub const PULSE_RUN_STEPS: u64 = 200;
 
 /// The page's style, led by the reports' colour-blind-safe palette as
 /// custom properties `--s0` ... so the colours are defined once.
@@ -135,10 +141,16 @@ pub async fn pulse(
     } else {
         Value::Null
     };
+    // The runs the gauges show (the most recently updated), as the page plots them.
+    let watch = service.runs().clone();
+    let runs = tokio::task::spawn_blocking(move || watch.recent(MAX_GAUGED_RUNS, PULSE_RUN_STEPS))
+        .await
+        .map_err(ApiError::internal)??;
     let body = json!({
         "status": status,
         "models": models,
         "bank": bank,
+        "runs": runs,
         "sample_every_ms": pulse.sample_every_ms,
         "current": pulse.current,
         "since_start": pulse.since_start,

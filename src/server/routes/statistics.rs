@@ -17,6 +17,7 @@ use crate::encoders::offline::EngineProbeEncoder;
 use crate::encoders::{Engine, Model};
 use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
+use crate::probe::cancel::Cancel;
 use crate::probe::{embed_probe, EmbedOptions, LoadOptions, ProbeSet, RowIssue};
 use crate::server::access::{self, Caller, Scope};
 use crate::server::error::ApiError;
@@ -144,12 +145,25 @@ fn parse_probe(
     Ok((loaded.set, loaded.skipped))
 }
 
+/// The example images' thumbnails, made on a blocking thread (files are read).
+async fn thumbnails(
+    engine: &Arc<Engine>,
+    set: Arc<ProbeSet>,
+    lines: std::collections::BTreeSet<usize>,
+) -> Result<stats::Thumbnails, ApiError> {
+    let engine = Arc::clone(engine);
+    tokio::task::spawn_blocking(move || engine.thumbnails(&set, &lines))
+        .await
+        .map_err(ApiError::internal)
+}
+
 /// Embeds the probe set with one model on a blocking thread.
 async fn embed_with(
     engine: &Arc<Engine>,
     model: &Arc<Model>,
     set: Arc<ProbeSet>,
     skip_bad: bool,
+    cancel: &Cancel,
 ) -> Result<(ProbeVectors, Vec<RowIssue>), ApiError> {
     let encoder = EngineProbeEncoder {
         engine: Arc::clone(engine),
@@ -159,6 +173,7 @@ async fn embed_with(
     let options = EmbedOptions {
         bundle: model.id.clone(),
         skip_bad,
+        cancel: cancel.clone(),
         ..EmbedOptions::default()
     };
     let embedded =
@@ -173,11 +188,16 @@ pub async fn calibration(
     ApiJson(request): ApiJson<CalibrationRequest>,
 ) -> Result<Response, ApiError> {
     let engine = service.engine()?;
+    // Dropped with this future (a timeout, a client gone): the embedding stops.
+    let cancel = Cancel::default();
+    let _stop_when_gone = cancel.on_drop();
     request.options.validate()?;
     let model = engine.model(request.model.as_deref())?;
     let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
-    let (vectors, dropped) = embed_with(engine, model, Arc::new(set), request.skip_bad).await?;
+    let set = Arc::new(set);
+    let (vectors, dropped) =
+        embed_with(engine, model, Arc::clone(&set), request.skip_bad, &cancel).await?;
     skipped.extend(dropped);
     let options = request.options;
     let report = tokio::task::spawn_blocking(move || stats::calibrate(&vectors, &options))
@@ -185,7 +205,13 @@ pub async fn calibration(
         .map_err(ApiError::internal)??;
     if request.format == ReportFormat::Html {
         let provenance = Provenance::now(vec![map_bundle(model)], probe_sha256, probe_rows);
-        return Ok(html_page(stats::calibration_html(&report, &provenance)));
+        let lines = stats::calibration_example_lines(&report);
+        let thumbnails = thumbnails(engine, set, lines).await?;
+        return Ok(html_page(stats::calibration_html(
+            &report,
+            &provenance,
+            &thumbnails,
+        )));
     }
     Ok(Json(CalibrationResponse {
         model: ModelRef::of(model),
@@ -201,6 +227,9 @@ pub async fn drift(
     ApiJson(request): ApiJson<DriftRequest>,
 ) -> Result<Response, ApiError> {
     let engine = service.engine()?;
+    // Dropped with this future (a timeout, a client gone): the embedding stops.
+    let cancel = Cancel::default();
+    let _stop_when_gone = cancel.on_drop();
     request.options.validate()?;
     let from = engine
         .model(Some(&request.from))
@@ -223,8 +252,10 @@ pub async fn drift(
     let (probe_sha256, probe_rows) = (probe_sha256(&request.probe), request.probe.len());
     let (set, mut skipped) = parse_probe(&service, engine, request.probe, request.skip_bad)?;
     let set = Arc::new(set);
-    let (a, dropped_a) = embed_with(engine, from, Arc::clone(&set), request.skip_bad).await?;
-    let (b, dropped_b) = embed_with(engine, to, set, request.skip_bad).await?;
+    let (a, dropped_a) =
+        embed_with(engine, from, Arc::clone(&set), request.skip_bad, &cancel).await?;
+    let (b, dropped_b) =
+        embed_with(engine, to, Arc::clone(&set), request.skip_bad, &cancel).await?;
     skipped.extend(dropped_a);
     skipped.extend(dropped_b);
     let options = request.options;
@@ -251,7 +282,12 @@ pub async fn drift(
     if request.format == ReportFormat::Html {
         let bundles = vec![map_bundle(from), map_bundle(to)];
         let provenance = Provenance::now(bundles, probe_sha256, probe_rows);
-        return Ok(html_page(stats::drift_html(&report, &provenance)));
+        let thumbnails = thumbnails(engine, set, stats::drift_example_lines(&report)).await?;
+        return Ok(html_page(stats::drift_html(
+            &report,
+            &provenance,
+            &thumbnails,
+        )));
     }
     Ok(Json(DriftResponse {
         from: ModelRef::of(from),

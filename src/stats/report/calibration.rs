@@ -1,13 +1,15 @@
 //! The calibration page: suggested scale, cosine distributions, hinge
 //! losses, retrieval and contrast figures of one bundle.
 
+use std::collections::BTreeSet;
 use std::fmt::Write as _;
 
 use super::page::{
     affine_formula, maybe, maybe_percent, number, page, percent, percent_interval, table, td,
-    td_text,
+    td_image, td_text,
 };
 use super::provenance::Provenance;
+use super::Thumbnails;
 use crate::stats::calibration::CalibrationReport;
 use crate::stats::hinge::HingeFigures;
 use crate::stats::retrieval::RetrievalFigures;
@@ -80,7 +82,11 @@ fn cosine_histograms(title: &str, r: &CalibrationReport) -> String {
 }
 
 /// The sections of one bundle's calibration, shared with the drift page.
-pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
+pub(super) fn calibration_sections(
+    r: &CalibrationReport,
+    thumbnails: &Thumbnails,
+    out: &mut String,
+) {
     let s = &r.suggested;
     out.push_str("<h2>Suggested reward scale</h2>");
     out.push_str(&table(
@@ -178,7 +184,7 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
     ));
     out.push_str("<p class=\"note\">Means per positive pair. SH: sum of hinges; MH: max of hinges (hardest negative); captions/images: the caption-negative and image-negative terms.</p>");
 
-    examples(r, out);
+    examples(r, thumbnails, out);
 
     out.push_str("<h2>Contrast captions</h2>");
     let ct = &r.contrast;
@@ -247,7 +253,7 @@ pub(super) fn calibration_sections(r: &CalibrationReport, out: &mut String) {
 }
 
 /// The lowest true pairs and the contrasts the reward got wrong.
-fn examples(r: &CalibrationReport, out: &mut String) {
+fn examples(r: &CalibrationReport, thumbnails: &Thumbnails, out: &mut String) {
     out.push_str("<h2>Pairs to look at</h2>");
     let ex = &r.examples;
     let rows: Vec<Vec<String>> = ex
@@ -255,7 +261,7 @@ fn examples(r: &CalibrationReport, out: &mut String) {
         .iter()
         .map(|e| {
             vec![
-                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_image(&e.image, e.image_line, thumbnails),
                 td_text(&e.caption),
                 td(number(e.true_cos)),
             ]
@@ -272,7 +278,7 @@ fn examples(r: &CalibrationReport, out: &mut String) {
         .iter()
         .map(|e| {
             vec![
-                td_text(&format!("{} (line {})", e.image, e.image_line)),
+                td_image(&e.image, e.image_line, thumbnails),
                 td_text(e.changed.as_deref().unwrap_or("")),
                 td_text(&e.caption),
                 td_text(e.contrast.as_deref().unwrap_or("")),
@@ -349,9 +355,23 @@ fn retrieval_row(name: &str, f: &RetrievalFigures) -> Vec<String> {
     ]
 }
 
+/// The probe lines of the images [`calibration_html`] shows as examples.
+pub fn calibration_example_lines(report: &CalibrationReport) -> BTreeSet<usize> {
+    let ex = &report.examples;
+    ex.lowest_true
+        .iter()
+        .chain(&ex.lost_contrasts)
+        .map(|e| e.image_line)
+        .collect()
+}
+
 /// The calibration report as one self-contained HTML page, with where its
-/// numbers come from.
-pub fn calibration_html(report: &CalibrationReport, provenance: &Provenance) -> String {
+/// numbers come from and the example pairs' images from `thumbnails`.
+pub fn calibration_html(
+    report: &CalibrationReport,
+    provenance: &Provenance,
+    thumbnails: &Thumbnails,
+) -> String {
     let mut body = String::new();
     let _ = write!(
         body,
@@ -363,6 +383,6 @@ pub fn calibration_html(report: &CalibrationReport, provenance: &Provenance) -> 
         report.counts.dimension
     );
     body.push_str(&provenance.html());
-    calibration_sections(report, &mut body);
+    calibration_sections(report, thumbnails, &mut body);
     page(&format!("befit calibration: {}", report.bundle), &body)
 }

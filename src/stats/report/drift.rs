@@ -6,9 +6,12 @@ use std::fmt::Write as _;
 
 use serde::{Deserialize, Serialize};
 
-use super::calibration::{calibration_sections, contrast_estimate, recall_groups};
-use super::page::{affine_formula, maybe, number, page, percent, table, td, td_text};
+use super::calibration::{
+    calibration_example_lines, calibration_sections, contrast_estimate, recall_groups,
+};
+use super::page::{affine_formula, maybe, number, page, percent, table, td, td_image, td_text};
 use super::provenance::Provenance;
+use super::Thumbnails;
 use crate::stats::continuity::ContinuityMap;
 use crate::stats::drift::{DriftReport, PairKind};
 use crate::stats::summary::median;
@@ -118,10 +121,24 @@ fn curve(map: &ContinuityMap, lo: f64, hi: f64) -> Vec<(f64, f64)> {
     }
 }
 
+/// The probe lines of the images [`drift_html`] shows as examples: the moved
+/// pairs' and both calibrations' example pairs'.
+pub fn drift_example_lines(report: &DriftReport) -> std::collections::BTreeSet<usize> {
+    let mut lines: std::collections::BTreeSet<usize> =
+        report.moved.iter().map(|p| p.image_line).collect();
+    lines.extend(calibration_example_lines(&report.from));
+    lines.extend(calibration_example_lines(&report.to));
+    lines
+}
+
 /// The drift report as one self-contained HTML page: a headline against
 /// the default [`HeadlineThresholds`], where the numbers come from, then
 /// the figures; the two full calibrations folded away at the end.
-pub fn drift_html(report: &DriftReport, provenance: &Provenance) -> String {
+pub fn drift_html(
+    report: &DriftReport,
+    provenance: &Provenance,
+    thumbnails: &Thumbnails,
+) -> String {
     let r = report;
     let (from, to) = (escape(&r.from_bundle), escape(&r.to_bundle));
     let mut b = String::new();
@@ -136,10 +153,10 @@ pub fn drift_html(report: &DriftReport, provenance: &Provenance) -> String {
     agreement(r, &mut b);
     continuity(r, &mut b);
     before_and_after(r, &mut b);
-    moved_pairs_and_figures(r, &mut b);
+    moved_pairs_and_figures(r, thumbnails, &mut b);
     for (name, cal) in [(&from, &r.from), (&to, &r.to)] {
         let _ = write!(b, "<details><summary>Full calibration of {name}</summary>");
-        calibration_sections(cal, &mut b);
+        calibration_sections(cal, thumbnails, &mut b);
         b.push_str("</details>");
     }
     page(
@@ -392,7 +409,7 @@ fn before_and_after(r: &DriftReport, b: &mut String) {
 }
 
 /// The pairs whose reward moved most, and every calibration figure old and new.
-fn moved_pairs_and_figures(r: &DriftReport, b: &mut String) {
+fn moved_pairs_and_figures(r: &DriftReport, thumbnails: &Thumbnails, b: &mut String) {
     b.push_str("<h2>Pairs whose reward moved most</h2>");
     let rows: Vec<Vec<String>> = r
         .moved
@@ -411,7 +428,7 @@ fn moved_pairs_and_figures(r: &DriftReport, b: &mut String) {
                 None => escape(&p.caption),
             };
             vec![
-                td_text(&format!("{} (line {})", p.image, p.image_line)),
+                td_image(&p.image, p.image_line, thumbnails),
                 td_text(&kind),
                 format!("<td class=\"text\">{caption}</td>"),
                 td(number(p.cos_from)),

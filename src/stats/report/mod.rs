@@ -6,14 +6,22 @@
 //! - `calibration`: one bundle's page, and its sections the drift page reuses.
 //! - `drift`: two bundles compared, under a one-sentence headline.
 //! - `provenance`: bundles, probe digest, version and time on every page.
+//!
+//! The example pairs show their image inline when the caller has its bytes:
+//! [`Thumbnails`] holds a `data:` URI per probe line (made by
+//! `crate::probe::thumbnails` for the lines [`calibration_example_lines`] or
+//! [`drift_example_lines`] name).
 
 mod calibration;
 mod drift;
 mod page;
 mod provenance;
 
-pub use calibration::calibration_html;
-pub use drift::{drift_headline, drift_html, HeadlineThresholds};
+pub use calibration::{calibration_example_lines, calibration_html};
+pub use drift::{drift_example_lines, drift_headline, drift_html, HeadlineThresholds};
+
+/// Thumbnails as `data:` URIs, by the probe line of their image.
+pub type Thumbnails = std::collections::BTreeMap<usize, String>;
 pub use provenance::{rfc3339_utc, sha256_hex, Provenance};
 
 #[cfg(test)]
@@ -61,7 +69,7 @@ mod tests {
     #[test]
     fn calibration_page_escapes_text_and_stays_offline() {
         let r = calibrate(&hostile(), &CalibrationOptions::default()).unwrap();
-        let html = calibration_html(&r, &provenance());
+        let html = calibration_html(&r, &provenance(), &Thumbnails::new());
         assert_clean(&html);
         assert!(html.contains("&lt;b&gt;evil&lt;/b&gt;"));
         // Provenance: the digest escaped, the probe's sha256, the version.
@@ -79,7 +87,7 @@ mod tests {
     fn drift_page_escapes_captions_and_draws_the_scatter() {
         let v = hostile();
         let r = drift(&v, &v, &DriftOptions::default()).unwrap();
-        let html = drift_html(&r, &provenance());
+        let html = drift_html(&r, &provenance(), &Thumbnails::new());
         assert_clean(&html);
         // The same bundle twice: nothing moves, the swap looks safe, and the
         // two calibrations are folded away.
@@ -93,5 +101,62 @@ mod tests {
         assert!(html.contains("a&quot;b.png"));
         assert!(html.contains("<circle"));
         assert!(html.contains("affine map"));
+    }
+
+    /// A thumbnail per example line, each naming its line so a test can tell them apart.
+    fn fake_thumbnails(lines: &std::collections::BTreeSet<usize>) -> Thumbnails {
+        lines
+            .iter()
+            .map(|l| (*l, format!("data:image/jpeg;base64,TElORS{l}")))
+            .collect()
+    }
+
+    #[test]
+    fn example_rows_show_their_own_image() {
+        let r = calibrate(&hostile(), &CalibrationOptions::default()).unwrap();
+        let lines = calibration_example_lines(&r);
+        let rows: Vec<usize> = r
+            .examples
+            .lowest_true
+            .iter()
+            .chain(&r.examples.lost_contrasts)
+            .map(|e| e.image_line)
+            .collect();
+        assert!(!rows.is_empty());
+        let html = calibration_html(&r, &provenance(), &fake_thumbnails(&lines));
+        assert_eq!(html.matches("<img class=\"thumb\"").count(), rows.len());
+        for line in &rows {
+            let cell = format!(
+                "<img class=\"thumb\" src=\"data:image/jpeg;base64,TElORS{line}\" alt=\"probe image at line {line}\">"
+            );
+            assert!(html.contains(&cell), "line {line}");
+        }
+        // Without a thumbnail for a line, its row names the image only.
+        let mut some = fake_thumbnails(&lines);
+        let dropped = rows[0];
+        some.remove(&dropped);
+        let html = calibration_html(&r, &provenance(), &some);
+        let shown_without = rows.iter().filter(|l| **l == dropped).count();
+        assert_eq!(
+            html.matches("<img class=\"thumb\"").count(),
+            rows.len() - shown_without
+        );
+    }
+
+    #[test]
+    fn drift_examples_cover_moved_pairs_and_both_calibrations() {
+        let v = hostile();
+        let r = drift(&v, &v, &DriftOptions::default()).unwrap();
+        let lines = drift_example_lines(&r);
+        let moved: Vec<usize> = r.moved.iter().map(|p| p.image_line).collect();
+        assert!(moved.iter().all(|l| lines.contains(l)));
+        let examples = |c: &crate::stats::CalibrationReport| {
+            c.examples.lowest_true.len() + c.examples.lost_contrasts.len()
+        };
+        let html = drift_html(&r, &provenance(), &fake_thumbnails(&lines));
+        assert_eq!(
+            html.matches("<img class=\"thumb\"").count(),
+            moved.len() + examples(&r.from) + examples(&r.to)
+        );
     }
 }

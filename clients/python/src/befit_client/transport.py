@@ -6,6 +6,16 @@ backoff with jitter on 503 and 429 answers and dropped connections,
 Every route the client uses is safe to repeat (rewards and vectors are pure
 functions of the request, image registration is idempotent), so a request
 whose connection dropped mid-way is simply sent again.
+
+The retry loop is kept by hand rather than taken from urllib3's ``Retry`` or
+tenacity: the client depends on numpy alone and speaks ``http.client``; of
+the policy below, urllib3's ``Retry`` (2.x) has the backoff, the jitter and
+``Retry-After`` on 503/429 but neither a deadline over all attempts, nor a
+ceiling on the ``Retry-After`` it will wait for, nor the rule that a refused
+connection fails at once until the server has answered once; tenacity has
+none of the ``Retry-After`` handling. Each would be the loop below plus
+adapters, and the tests drive this one with injected sleep, clock and random
+numbers (``tests/client/``).
 """
 
 from __future__ import annotations
