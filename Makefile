@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -105,6 +105,21 @@ $(EXAMPLES_VENV)/.ready: examples/requirements.txt
 
 rl: $(EXAMPLES_VENV)/.ready
 	$(EXAMPLES_VENV)/bin/python examples/blocks_rl.py --url http://$(ADDR)
+
+# The two GRU-captioner runs of the README (PyTorch; its own venv) against a running `make serve`.
+TORCH_VENV := $(CACHE)/venv-torch
+$(TORCH_VENV)/.ready: examples/requirements-torch.txt
+	$(PYTHON) -m venv $(TORCH_VENV)
+	$(TORCH_VENV)/bin/python -m pip install --quiet -r examples/requirements-torch.txt
+	touch $@
+
+decoder-runs: $(TORCH_VENV)/.ready
+	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run cosine-only --steps 200 --lr 3e-3 \
+		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/cosine-only.json
+	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run repetition-guard --steps 200 --lr 3e-3 \
+		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/repetition-guard.json \
+		--penalties '{"repeated_words": {"above": 0.3, "weight": 1.0}, "repeated_bigrams": {"above": 0.2, "weight": 1.0}}'
+	$(TORCH_VENV)/bin/python examples/plot_decoder_runs.py docs/blocks_decoder/*.json --out docs/blocks_decoder.png
 
 # Figures quoted in README.md and docs/ (tools/docfigures.py): `make figures` measures the
 # recorded runs again on the bundled models and rewrites every figure; `make test` checks them.
