@@ -117,18 +117,24 @@ fn output_closed_early_ends_the_command_without_a_panic() {
     );
 }
 
-#[test]
-fn a_tiny_probe_set_gets_a_small_sample_warning() {
-    let dir = scratch_dir("tiny-probe");
+/// A probe file of the bundled probe set's first `n` rows, its images beside it.
+fn first_probe_rows(n: usize, what: &str) -> std::path::PathBuf {
+    let dir = scratch_dir(what);
     let rows: Vec<String> = std::fs::read_to_string(probe_dir().join("probe.jsonl"))
         .unwrap()
         .lines()
-        .take(3)
+        .take(n)
         .map(str::to_string)
         .collect();
     let probe = dir.join("probe.jsonl");
     std::fs::write(&probe, rows.join("\n")).unwrap();
     std::os::unix::fs::symlink(probe_dir().join("images"), dir.join("images")).unwrap();
+    probe
+}
+
+#[test]
+fn a_tiny_probe_set_gets_a_small_sample_warning() {
+    let probe = first_probe_rows(3, "tiny-probe");
     let out = befit()
         .args([
             "calibrate",
@@ -191,16 +197,7 @@ fn offline_commands_do_not_offer_the_servers_queue_and_cache_flags() {
 #[test]
 fn drift_opens_with_its_verdict_in_one_sentence() {
     // 40 probe rows: enough for every figure, quick for a test.
-    let dir = scratch_dir("drift-verdict");
-    let rows: Vec<String> = std::fs::read_to_string(probe_dir().join("probe.jsonl"))
-        .unwrap()
-        .lines()
-        .take(40)
-        .map(str::to_string)
-        .collect();
-    let probe = dir.join("probe.jsonl");
-    std::fs::write(&probe, rows.join("\n")).unwrap();
-    std::os::unix::fs::symlink(probe_dir().join("images"), dir.join("images")).unwrap();
+    let probe = first_probe_rows(40, "drift-verdict");
     let drift = |to: &str, json: bool| {
         let mut command = befit();
         command
