@@ -104,7 +104,8 @@ def main() -> int:
                        "--warnings", "off", "--no-color"]
             env = dict(os.environ, SCHEMATHESIS_HOOKS="")
             started = time.monotonic()
-            result = subprocess.run(command, env=env)
+            # Its own cache folder goes to the temporary data folder, not the checkout.
+            result = subprocess.run(command, env=env, cwd=data_dir)
             print(f"schemathesis ran {time.monotonic() - started:.0f} s, exit {result.returncode}")
             if proc.poll() is not None:
                 print(f"befit serve died during the run (exit {proc.returncode})", file=sys.stderr)
