@@ -4,13 +4,17 @@
 
 The head reads the token ids the bundle's text tower gets (same tokenizer,
 same right padding, same mask) and answers the probability that the caption
-is a well-formed sentence of the blocks grammar. It is trained as in J. Cho,
-S. Yoon, A. Kale, F. Dernoncourt, T. Bui, M. Bansal, "Fine-grained Image
-Captioning with CLIP Reward" (NAACL Findings 2022): positives are true
-captions, negatives the same captions edited into wrong ones. The edits here
-are the five of the issue: a word repeated, two words swapped, a word
-dropped, a phrase duplicated, the caption cut short; plus, for a policy that
-breaks a caption in any_count places at once, two to three edits stacked.
+is a well-formed sentence of the blocks grammar. It is trained as in J. Cho
+et al., "Fine-grained Image Captioning with CLIP Reward" (NAACL Findings
+2022): positives are true captions, negatives the same captions edited into
+wrong ones. The edits here are a word repeated, two words swapped, a word
+dropped, a phrase duplicated, the caption cut short, a word inserted, and
+the start of one caption run into the end of another (two templates
+spliced); plus, for a policy that breaks a caption in several places at
+once, two to three edits stacked. The last two kinds were added after a
+policy trained on CLIP-S + fluency learnt to splice templates ("two shapes:
+a large violet cross beneath a large violet cross"), which the first five
+never showed the head (README, the degenerate-policy runs).
 Contrast captions (one fact changed: false, but well-formed) count as
 positives, so the head learns form, not truth; that is the cosine's job.
 
@@ -24,8 +28,9 @@ Writes (towers untouched):
   `bundle.toml`; `card.json` gains `fluency` (architecture, training, the
   held-out accuracy overall and per edit kind, ONNX-vs-PyTorch differences)
   and the file's entry under `files`;
-- `fixtures/golden/<name>/fluency.json`: texts, their ids and the PyTorch
-  probabilities, for check_goldens.py and befit's parity test;
+- `fixtures/golden/<name>/fluency.json`: texts (each with the set it comes
+  from), their ids and the PyTorch probabilities, for check_goldens.py and
+  befit's parity test;
 - `.cache/blocksworld/<name>-fluency/head.pt`, the weights.
 
 Held out: the probe set's captions and contrasts (scene stream 1000); the
@@ -66,7 +71,7 @@ from intake import Encoded, TextSpec, encode, pad
 from world import sample_scene
 
 TOLERANCE = 1e-5
-EDITS = ("repeat", "swap", "drop", "duplicate", "cut")
+EDITS = ("repeat", "swap", "drop", "duplicate", "cut", "insert", "splice")
 # The training stream of each bundle's towers; the probe is stream 1000.
 SEEDS = {"blocks-v1": 1, "blocks-v2": 2}
 PRESET = {"embed": 32, "hidden": 64, "steps": 1200, "batch": 192, "lr": 3e-3, "scenes": 6000, "stacked": 0.2}
@@ -116,8 +121,9 @@ def well_formed(tokens: list[str]) -> bool:
     return GRAMMAR.fullmatch(" ".join(tokens)) is not None
 
 
-def edit(tokens: list[str], kind: str, rng: np.random.Generator) -> list[str]:
-    """`tokens` with one edit of `kind` (may leave them unchanged on short captions)."""
+def edit(tokens: list[str], kind: str, rng: np.random.Generator, pool: list[list[str]]) -> list[str]:
+    """`tokens` with one edit of `kind` (may leave them unchanged on short captions);
+    `insert` and `splice` draw their words from another caption of `pool`."""
     n = len(tokens)
     t = list(tokens)
     if n == 0:
@@ -145,15 +151,25 @@ def edit(tokens: list[str], kind: str, rng: np.random.Generator) -> list[str]:
         if n < 3:
             return t[:1]
         return t[: int(rng.integers(1, n - 1))]
+    other = pool[int(rng.integers(len(pool)))]
+    if kind == "insert":
+        i = int(rng.integers(n + 1))
+        return t[:i] + [other[int(rng.integers(len(other)))]] + t[i:]
+    if kind == "splice":
+        # The start of one caption run into the end of another: two templates
+        # joined ("two shapes : a big red cross beneath a big red cross").
+        return t[: int(rng.integers(1, n + 1))] + other[int(rng.integers(1, len(other))) :]
     raise ValueError(f"unknown edit {kind}")
 
 
-def negative(tokens: list[str], kinds: tuple[str, ...], rng: np.random.Generator) -> list[str] | None:
+def negative(
+    tokens: list[str], kinds: tuple[str, ...], rng: np.random.Generator, pool: list[list[str]]
+) -> list[str] | None:
     """`tokens` edited by each of `kinds` in turn; None when no draw leaves the grammar."""
     for _ in range(20):
         t = tokens
         for kind in kinds:
-            t = edit(t, kind, rng)
+            t = edit(t, kind, rng, pool)
         if t and t != tokens and not well_formed(t):
             return t
     return None
@@ -234,7 +250,7 @@ def train(vocab: Vocabulary, positives: list[list[str]], seed: int, p: dict) -> 
         good = [positives[i] for i in picks[:half]]
         bad = []
         for i in picks[half:]:
-            t = negative(positives[i], kinds_for(rng, p["stacked"]), rng)
+            t = negative(positives[i], kinds_for(rng, p["stacked"]), rng, positives)
             if t is not None:
                 bad.append(t)
         ids, mask = vocab.batch(good + bad)
@@ -258,8 +274,8 @@ def held_out(vocab: Vocabulary, probe: Path, seed: int) -> dict[str, list[list[s
     sets = {"true": true, "contrast": vocab.tokens([c["caption"] for r in rows for c in r["contrasts"]])}
     rng = np.random.default_rng([seed, 1000])
     for kind in EDITS:
-        sets[kind] = [t for t in (negative(c, (kind,), rng) for c in true) if t is not None]
-    sets["stacked"] = [t for t in (negative(c, kinds_for(rng, 1.0), rng) for c in true) if t is not None]
+        sets[kind] = [t for t in (negative(c, (kind,), rng, true) for c in true) if t is not None]
+    sets["stacked"] = [t for t in (negative(c, kinds_for(rng, 1.0), rng, true) for c in true) if t is not None]
     return sets
 
 
@@ -311,12 +327,24 @@ def verify(path: Path, head: FluencyHead, vocab: Vocabulary, tokens: list[list[s
     return {k: float(f"{v:.2e}") for k, v in worst.items()}
 
 
-def golden_texts(vocab: Vocabulary, golden: Path, sets: dict[str, list[list[str]]]) -> list[str]:
-    """The towers' golden texts, then a held-out example of each set."""
-    texts = [t["text"] for t in json.loads((golden / "golden.json").read_text())["texts"]]
+def golden_texts(golden: Path, sets: dict[str, list[list[str]]]) -> list[tuple[str, str]]:
+    """`(set, text)`: the towers' golden texts (set "towers"), then a held-out example of each set."""
+    texts = [("towers", t["text"]) for t in json.loads((golden / "golden.json").read_text())["texts"]]
     for name in ("true", "contrast") + EDITS + ("stacked",):
-        texts.append(" ".join(sets[name][7]))
+        texts.append((name, " ".join(sets[name][7])))
     return texts
+
+
+def write_goldens(head: FluencyHead, vocab: Vocabulary, golden: Path, name: str, sets: dict) -> None:
+    named = golden_texts(golden, sets)
+    encoded = encode(vocab.tokenizer, [t for _, t in named], vocab.spec)
+    gold = {"bundle": name, "texts": []}
+    for (kind, text), e in zip(named, encoded):
+        ids, mask = pad([e], vocab.spec)
+        with torch.no_grad():
+            prob = float(head(torch.from_numpy(ids), torch.from_numpy(mask))[0])
+        gold["texts"].append({"set": kind, "text": text, "ids": e.ids, "probability": prob})
+    (golden / "fluency.json").write_text(json.dumps(gold, indent=1) + "\n")
 
 
 def main() -> None:
@@ -357,15 +385,7 @@ def main() -> None:
     toml = toml.split("\n[fluency]\n")[0].rstrip("\n") + "\n\n" + fluency_toml()
     (bundle / "bundle.toml").write_text(toml)
 
-    texts = golden_texts(vocab, golden, sets)
-    encoded = encode(vocab.tokenizer, texts, vocab.spec)
-    gold = {"bundle": args.name, "texts": []}
-    for text, e in zip(texts, encoded):
-        ids, mask = pad([e], vocab.spec)
-        with torch.no_grad():
-            prob = float(head(torch.from_numpy(ids), torch.from_numpy(mask))[0])
-        gold["texts"].append({"text": text, "ids": e.ids, "probability": prob})
-    (golden / "fluency.json").write_text(json.dumps(gold, indent=1) + "\n")
+    write_goldens(head, vocab, golden, args.name, sets)
 
     card_path = bundle / "card.json"
     card = json.loads(card_path.read_text())
