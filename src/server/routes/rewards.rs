@@ -81,8 +81,8 @@ pub async fn score(
         .and_then(|bank| bank.loaded(&model.bundle.digest));
     let mut spec = RewardSpec::new(request.scale, request.baseline, remap)?;
     if let Some(json) = request.guard {
-        // No bundle carries a fluency head yet: a fluency weight is refused.
-        spec = spec.with_guard(Guard::new(json, None, BankNearest::of(bank.clone()))?);
+        let nearest = BankNearest::of(bank.clone());
+        spec = spec.with_guard(Guard::new(json, model.fluency_head(), nearest)?);
     }
     let groups = request
         .groups
