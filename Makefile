@@ -221,7 +221,7 @@ fuzz:
 			-max_total_time=$(FUZZ_SECONDS) -rss_limit_mb=2048 -timeout=10 -print_final_stats=1 \
 			-detect_leaks=$$leaks 2> ../target/fuzz/$$t.log ) || { tail -40 target/fuzz/$$t.log; exit 1; }; \
 		echo "$$t: $$(grep -m1 number_of_executed_units target/fuzz/$$t.log | tr -s ' ' | cut -d' ' -f2) runs," \
-			"$$(grep -E '^#[0-9]+ .*cov:' target/fuzz/$$t.log | tail -1 | sed -E 's/.*cov: ([0-9]+).*/\1/') edges"; \
+			"$$(grep -E '^#[0-9]+[[:space:]].*cov:' target/fuzz/$$t.log | tail -1 | sed -E 's/.*cov: ([0-9]+).*/\1/') edges"; \
 	done
 
 # Rewards per second through one replica and through three (a measurement, not a test).
