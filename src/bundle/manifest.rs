@@ -30,7 +30,7 @@ pub struct ModelSpec {
 }
 
 /// How an image is brought to the encoder's square input.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum ResizeRule {
     /// Resize to `size x size`, ignoring the aspect ratio.
@@ -40,7 +40,7 @@ pub enum ResizeRule {
 }
 
 /// Resampling filter, with the same kernels as Pillow's of the same names.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Filter {
     Nearest,
@@ -64,7 +64,7 @@ pub struct ImageSpec {
 }
 
 /// How a batch of token sequences is padded.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Padding {
     /// To the longest sequence of the batch.

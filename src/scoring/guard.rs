@@ -37,7 +37,7 @@ pub enum GuardError {
 
 /// A penalty on a share or cosine: `weight * max(0, s - above) / (1 - above)`,
 /// so it grows from 0 at the threshold to `weight` at 1.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct OverPenalty {
     pub above: f32,
@@ -45,7 +45,7 @@ pub struct OverPenalty {
 }
 
 /// A penalty on short captions: `weight * max(0, below - tokens) / below`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct LengthPenalty {
     pub below: u32,
@@ -53,7 +53,7 @@ pub struct LengthPenalty {
 }
 
 /// The penalties a request asks for, each optional.
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Penalties {
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -69,7 +69,7 @@ pub struct Penalties {
 }
 
 /// The `guard` object of a request, and of its answer (the echo).
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct GuardJson {
     /// lambda of the fluency term; needs a bundle with a fluency head.
@@ -235,7 +235,7 @@ impl Guard {
 }
 
 /// What the guard measured of one caption.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Signals {
     /// Share of word tokens repeating an earlier word of the caption.
     pub repeated_words: f32,
@@ -276,7 +276,7 @@ impl Signals {
 
 /// A caption's signals, its reward before and after the guard, and which
 /// penalties it crossed.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Guarded {
     #[serde(flatten)]
     pub signals: Signals,
