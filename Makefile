@@ -134,6 +134,9 @@ decoder-runs: $(TORCH_VENV)/.ready
 	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run repetition-guard --steps 200 --lr 3e-3 \
 		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/repetition-guard.json \
 		--penalties '{"repeated_words": {"above": 0.3, "weight": 1.0}, "repeated_bigrams": {"above": 0.2, "weight": 1.0}}'
+	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run fluency-guard --steps 200 --lr 3e-3 \
+		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/fluency-guard.json \
+		--fluency-weight 1
 	$(TORCH_VENV)/bin/python examples/plot_decoder_runs.py docs/blocks_decoder/*.json --out docs/blocks_decoder.png
 
 # Figures quoted in README.md and docs/ (tools/docfigures.py): `make figures` measures the
