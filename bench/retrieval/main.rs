@@ -18,7 +18,8 @@ use std::time::Instant;
 
 use befit::bank::exact::ExactRows;
 use befit::bank::index::{
-    Answered, FilterWalk, IndexParams, Search, SearchMode, VectorIndex, DEFAULT_EF_SEARCH,
+    Answered, FilterWalk, IndexBackend, IndexParams, Search, SearchMode, VectorIndex,
+    DEFAULT_EF_SEARCH,
 };
 use befit::bank::recall::mean_recall;
 use befit::bank::synthetic::{blocks_like, uniform_sphere};
@@ -43,6 +44,7 @@ struct Args {
     filtered: bool,
     dims: Vec<usize>,
     singles: usize,
+    backend: IndexBackend,
 }
 
 fn list<T: std::str::FromStr>(s: &str) -> Vec<T> {
@@ -67,6 +69,7 @@ fn parse_args() -> Args {
         filtered: false,
         dims: vec![64, 512],
         singles: 100,
+        backend: IndexBackend::default(),
     };
     let mut it = std::env::args().skip(1);
     while let Some(flag) = it.next() {
@@ -88,6 +91,13 @@ fn parse_args() -> Args {
             "--filtered" => a.filtered = true,
             "--dims" => a.dims = list(&value()),
             "--singles" => a.singles = value().parse().unwrap_or(a.singles),
+            "--backend" => {
+                let name = value();
+                a.backend = IndexBackend::from_name(&name).unwrap_or_else(|| {
+                    eprintln!("unknown backend {name:?}, using {}", a.backend);
+                    a.backend
+                });
+            }
             // cargo bench passes --bench to harness-less benchmarks.
             "--bench" => {}
             other => eprintln!("ignoring unknown argument {other}"),
@@ -131,6 +141,7 @@ fn params(a: &Args, exact_below: usize) -> IndexParams {
         ef_search: 64,
         exact_below,
         build_threads: a.threads,
+        backend: a.backend,
     }
 }
 

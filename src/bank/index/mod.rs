@@ -14,7 +14,8 @@
 //! - `build`: opening (load the dump or build the graph) and inserting.
 //! - `search`: graph, exact and tag-filtered search.
 //! - `persistence`: writing the dump and checking one before it is used.
-//! - `hnsw`: the graph itself, the one file that calls hnsw_rs.
+//! - `graph`: the [`IndexBackend`] choice and the trait every graph library
+//!   implements; `hnsw`: the one file that calls hnsw_rs.
 //!
 //! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
 //! Inserts run in parallel with each other and with searches; a dump holds
@@ -25,6 +26,7 @@
 
 mod build;
 pub mod errors;
+mod graph;
 mod hnsw;
 pub mod parameters;
 mod persistence;
@@ -38,6 +40,7 @@ use serde::Serialize;
 
 pub use build::{GraphOrigin, LoadReport, RowSource};
 pub use errors::IndexError;
+pub use graph::IndexBackend;
 pub use parameters::{
     check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
     SearchMode, DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH,
@@ -48,7 +51,7 @@ pub use search::{Answered, FilterWalk, SearchAnswer};
 
 use super::exact::ExactRows;
 use super::RowId;
-use hnsw::HnswGraph;
+use graph::Graph;
 use persistence::DumpState;
 
 /// Numbers for `GET /v1/bank`.
@@ -85,7 +88,7 @@ pub struct VectorIndex {
     params: IndexParams,
     /// `<root>/<digest>`, or `None` in memory.
     dir: Option<PathBuf>,
-    graph: HnswGraph,
+    graph: Box<dyn Graph>,
     rows: RwLock<ExactRows>,
     /// Inserts share it, a dump takes it alone (see the module docs).
     gate: RwLock<()>,
@@ -122,7 +125,7 @@ impl VectorIndex {
             dim: dimension,
             params,
             dir: None,
-            graph: HnswGraph::new(&params, 1),
+            graph: params.backend.new_graph(&params, dimension, 1)?,
             rows: RwLock::new(ExactRows::new(dimension)),
             gate: RwLock::new(()),
             indexed: AtomicUsize::new(0),
