@@ -12,7 +12,9 @@ use serde::{Deserialize, Serialize};
 use super::errors::IndexError;
 use super::hnsw::HnswGraph;
 use super::parameters::IndexParams;
-use crate::bank::exact::Neighbour;
+use super::usearch_graph::UsearchGraph;
+use crate::bank::distance::cosine_from_distance;
+use crate::bank::exact::{best_first, Neighbour};
 use crate::bank::RowId;
 
 /// A filter on row ids for a graph search (a tag's rows).
@@ -57,6 +59,21 @@ pub(super) trait Graph: Send + Sync {
     fn write(&self, folder: &Path) -> Result<Vec<String>, String>;
 }
 
+/// The `k` best of a library's answer given as `(row, 1 - dot)` pairs,
+/// best first, cosines clamped to `[-1, 1]` (a library's rounding can step
+/// past them).
+pub(super) fn best_k(found: impl Iterator<Item = (RowId, f32)>, k: usize) -> Vec<Neighbour> {
+    let mut hits: Vec<Neighbour> = found
+        .map(|(id, distance)| Neighbour {
+            id,
+            cosine: cosine_from_distance(distance).clamp(-1.0, 1.0),
+        })
+        .collect();
+    hits.sort_by(best_first);
+    hits.truncate(k);
+    hits
+}
+
 /// Which library holds the graph. A dump records it and is only read by the
 /// same backend; opening with another one rebuilds the graph from the rows.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
@@ -65,16 +82,19 @@ pub enum IndexBackend {
     /// hnsw_rs, pure Rust.
     #[default]
     HnswRs,
+    /// usearch, C++ built with the crate.
+    Usearch,
 }
 
 impl IndexBackend {
     /// Every backend, for tests and the benchmark.
-    pub const ALL: [Self; 1] = [Self::HnswRs];
+    pub const ALL: [Self; 2] = [Self::HnswRs, Self::Usearch];
 
     /// The name used in flags, manifests and reports.
     pub fn name(self) -> &'static str {
         match self {
             Self::HnswRs => "hnsw-rs",
+            Self::Usearch => "usearch",
         }
     }
 
@@ -88,6 +108,7 @@ impl IndexBackend {
     pub fn library(self) -> &'static str {
         match self {
             Self::HnswRs => HnswGraph::LIBRARY,
+            Self::Usearch => UsearchGraph::LIBRARY,
         }
     }
 
@@ -96,6 +117,7 @@ impl IndexBackend {
     pub fn distance(self) -> String {
         match self {
             Self::HnswRs => HnswGraph::distance_name(),
+            Self::Usearch => UsearchGraph::distance_name(),
         }
     }
 
@@ -104,6 +126,7 @@ impl IndexBackend {
     pub fn dump_files(self) -> Vec<String> {
         match self {
             Self::HnswRs => HnswGraph::dump_files(),
+            Self::Usearch => UsearchGraph::dump_files(),
         }
     }
 
@@ -114,9 +137,9 @@ impl IndexBackend {
         dimension: usize,
         capacity: usize,
     ) -> Result<Box<dyn Graph>, IndexError> {
-        let _ = dimension;
         Ok(match self {
             Self::HnswRs => Box::new(HnswGraph::new(params, capacity)),
+            Self::Usearch => Box::new(UsearchGraph::new(params, dimension, capacity)?),
         })
     }
 
@@ -128,9 +151,9 @@ impl IndexBackend {
         params: &IndexParams,
         dimension: usize,
     ) -> Result<Box<dyn Graph>, String> {
-        let _ = (params, dimension);
         Ok(match self {
             Self::HnswRs => Box::new(HnswGraph::read(folder)?),
+            Self::Usearch => Box::new(UsearchGraph::read(folder, params, dimension)?),
         })
     }
 }

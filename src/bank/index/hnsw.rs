@@ -12,10 +12,10 @@ use hnsw_rs::hnsw::Hnsw;
 use hnsw_rs::hnswio::HnswIo;
 
 use super::errors::IndexError;
-use super::graph::{Graph, PointVisitor, RowFilter};
+use super::graph::{best_k, Graph, PointVisitor, RowFilter};
 use super::parameters::IndexParams;
-use crate::bank::distance::{cosine_from_distance, ClampedDot};
-use crate::bank::exact::{best_first, Neighbour};
+use crate::bank::distance::ClampedDot;
+use crate::bank::exact::Neighbour;
 use crate::bank::RowId;
 
 /// hnsw_rs can only reload a dump made with this many layers (its
@@ -117,16 +117,10 @@ impl Graph for HnswGraph {
             self.graph.search_filter(q, k, ef, filter)
         }))
         .map_err(|_| IndexError::Internal("search"))?;
-        let mut hits: Vec<Neighbour> = found
-            .into_iter()
-            .map(|n| Neighbour {
-                id: n.d_id as RowId,
-                cosine: cosine_from_distance(n.distance).clamp(-1.0, 1.0),
-            })
-            .collect();
-        hits.sort_by(best_first);
-        hits.truncate(k);
-        Ok(hits)
+        Ok(best_k(
+            found.into_iter().map(|n| (n.d_id as RowId, n.distance)),
+            k,
+        ))
     }
 
     fn len(&self) -> usize {

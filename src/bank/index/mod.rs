@@ -15,7 +15,8 @@
 //! - `search`: graph, exact and tag-filtered search.
 //! - `persistence`: writing the dump and checking one before it is used.
 //! - `graph`: the [`IndexBackend`] choice and the trait every graph library
-//!   implements; `hnsw`: the one file that calls hnsw_rs.
+//!   implements; `hnsw`: the one file that calls hnsw_rs, `usearch_graph`
+//!   the one that calls usearch.
 //!
 //! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
 //! Inserts run in parallel with each other and with searches; a dump holds
@@ -31,6 +32,7 @@ mod hnsw;
 pub mod parameters;
 mod persistence;
 mod search;
+mod usearch_graph;
 
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
