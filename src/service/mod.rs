@@ -323,7 +323,6 @@ pub fn bank_config(config: &ServiceConfig) -> BankConfig {
         index: IndexParams::for_backend(config.bank_backend),
         max_caption_bytes: config.limits.max_caption_bytes,
         max_append: config.limits.max_captions,
-        ..BankConfig::default()
     }
 }
 
