@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint clean api-fuzz fuzz rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -70,9 +70,24 @@ test: $(ORT_LIB) $(VENV)/.ready lint
 		--export $(STATS_EXPORT)/drift-blocks-v1-v2.json --report $(STATS_EXPORT)/drift-blocks-v1-v2.html > /dev/null
 	cargo build --release --locked
 	$(VENV_PY) -m pytest -q tests/reference tests/client tests/docs tests/tools
+	$(MAKE) --no-print-directory api-fuzz
 	$(MAKE) --no-print-directory browser
 	$(MAKE) --no-print-directory cluster-test
 	$(MAKE) --no-print-directory image-test
+
+# Schema-driven fuzzing of every documented route against the release binary (schemathesis from
+# PyPI, in its own venv): no 5xx, every answer valid against docs/openapi.json. API_FUZZ_SECONDS
+# bounds the run.
+API_VENV := $(CACHE)/venv-api
+API_FUZZ_SECONDS ?= 90
+$(API_VENV)/.ready: tests/api/requirements.txt
+	$(PYTHON) -m venv $(API_VENV)
+	$(API_VENV)/bin/python -m pip install --quiet --upgrade pip
+	$(API_VENV)/bin/python -m pip install --quiet -r tests/api/requirements.txt
+	touch $@
+
+api-fuzz: build $(API_VENV)/.ready
+	$(API_VENV)/bin/python tests/api/schema_fuzz.py --max-time $(API_FUZZ_SECONDS)
 
 # The live page in headless Chromium from Debian's archive, driven by playwright-core from npm;
 # screenshots land in target/browser/.
@@ -119,6 +134,9 @@ decoder-runs: $(TORCH_VENV)/.ready
 	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run repetition-guard --steps 200 --lr 3e-3 \
 		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/repetition-guard.json \
 		--penalties '{"repeated_words": {"above": 0.3, "weight": 1.0}, "repeated_bigrams": {"above": 0.2, "weight": 1.0}}'
+	$(TORCH_VENV)/bin/python examples/blocks_decoder.py --url http://$(ADDR) --run fluency-guard --steps 200 --lr 3e-3 \
+		--pretrain-epochs 6 --thresholds '{"distinct_2_below": 0.05}' --log docs/blocks_decoder/fluency-guard.json \
+		--fluency-weight 1
 	$(TORCH_VENV)/bin/python examples/plot_decoder_runs.py docs/blocks_decoder/*.json --out docs/blocks_decoder.png
 
 # Figures quoted in README.md and docs/ (tools/docfigures.py): `make figures` measures the
@@ -193,6 +211,27 @@ image-test: image cluster-tools
 # image bombs, kill -9 during writes, damaged files; prints its figures. About 1 minute.
 soak: build $(VENV)/.ready
 	$(VENV_PY) tests/soak/soak.py --json target/soak.json
+
+# Coverage-guided fuzzing (cargo-fuzz and libFuzzer, fuzz/): each target for FUZZ_SECONDS on one
+# core. cargo-fuzz asks for nightly-only flags; RUSTC_BOOTSTRAP=1 lets the machine's stable
+# toolchain take them. Findings land in fuzz/artifacts/TARGET/; the figures in BENCHMARKS.md
+# ("Fuzzing") come from this target's summary lines. Leak detection is off for bank_dump only: the
+# dump loader leaks its few-hundred-byte hnsw_rs loader per load by design (src/bank/index/hnsw.rs).
+FUZZ_SECONDS ?= 300
+FUZZ_TARGETS := image_bytes request_bodies bundle_toml probe_jsonl map_json bank_dump
+fuzz:
+	command -v cargo-fuzz >/dev/null || cargo install --locked cargo-fuzz@0.13.2
+	$(PYTHON) fuzz/seed_corpora.py
+	cd fuzz && RUSTC_BOOTSTRAP=1 cargo fuzz build -O
+	@mkdir -p target/fuzz
+	@for t in $(FUZZ_TARGETS); do \
+		leaks=1; [ $$t = bank_dump ] && leaks=0; \
+		( cd fuzz && ASAN_OPTIONS=detect_leaks=$$leaks RUSTC_BOOTSTRAP=1 cargo fuzz run -O $$t corpus/$$t -- \
+			-max_total_time=$(FUZZ_SECONDS) -rss_limit_mb=2048 -timeout=10 -print_final_stats=1 \
+			-detect_leaks=$$leaks 2> ../target/fuzz/$$t.log ) || { tail -40 target/fuzz/$$t.log; exit 1; }; \
+		echo "$$t: $$(grep -m1 number_of_executed_units target/fuzz/$$t.log | tr -s ' ' | cut -d' ' -f2) runs," \
+			"$$(grep -E '^#[0-9]+[[:space:]].*cov:' target/fuzz/$$t.log | tail -1 | sed -E 's/.*cov: ([0-9]+).*/\1/') edges"; \
+	done
 
 # Rewards per second through one replica and through three (a measurement, not a test).
 cluster-throughput: build cluster-tools

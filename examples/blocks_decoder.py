@@ -13,7 +13,7 @@ examples/blocks_policy.py (`judge`), not by befit.
 
     make serve &
     /work/venv-train/bin/python examples/blocks_decoder.py --run cosine-only
-    /work/venv-train/bin/python examples/blocks_decoder.py --run fluency --fluency-weight 1
+    /work/venv-train/bin/python examples/blocks_decoder.py --run fluency-guard --fluency-weight 1
 
 Needs PyTorch, Pillow and matplotlib (examples/requirements-torch.txt).
 """
@@ -211,6 +211,8 @@ def main(argv: List[str]) -> None:
     model = Decoder(feats.shape[1], len(vocab))
     pretrain(model, feats, enc, args.pretrain_epochs, args.seed)
     policy = GruPolicy(model, feats, vocab, args.max_words, args.lr)
+    # Always a guard: an empty one changes no reward, and makes befit measure
+    # every sample's signals (the fluency of blocks-v1's head among them).
     guard = {"fluency_weight": args.fluency_weight} if args.fluency_weight > 0 else {}
     if args.penalties:
         guard["penalties"] = args.penalties
@@ -230,7 +232,7 @@ def main(argv: List[str]) -> None:
             rng,
             run=args.run,
             step=step,
-            guard=guard or None,
+            guard=guard,
             run_thresholds=args.thresholds if step == 0 else None,
             learn=step < args.steps,  # the last round only measures
         )
@@ -241,7 +243,8 @@ def main(argv: List[str]) -> None:
         history.append(rec)
         print(
             f"step {step:3d} {rec['seconds']:6.1f}s reward {rec['reward']:.4f} cosine {rec['cosine']:.4f} "
-            f"correct {rec['correct']:.3f} repeated {rec['repeated_words']:.3f} distinct-2 {rec['distinct_2']:.3f} "
+            f"correct {rec['correct']:.3f} fluency {rec.get('fluency', float('nan')):.3f} "
+            f"repeated {rec['repeated_words']:.3f} distinct-2 {rec['distinct_2']:.3f} "
             f"warnings {rec['warnings']} | {rec['example']!r} | greedy {greedy[0]!r}",
             flush=True,
         )

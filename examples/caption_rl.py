@@ -98,6 +98,10 @@ def rl_step(
         "warnings": sorted({w["signal"] for w in out.warnings}),
         "example": flat[0],
     }
+    # With a guard on a bundle with a fluency head, the samples' mean fluency.
+    fluency = [s["fluency"] for g in (out.signals or []) for s in g if "fluency" in s]
+    if fluency:
+        rec["fluency"] = float(np.mean(fluency))
     rec.update(text_stats(flat))
     return rec
 

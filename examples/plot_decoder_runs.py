@@ -1,7 +1,8 @@
 #!/usr/bin/env python3
-"""Plot runs of examples/blocks_decoder.py side by side: reward, judged
-correctness on held-out probe scenes, repeated-word share and distinct-2 per
-step, with the steps on which befit's run watch warned marked.
+"""Plot runs of examples/blocks_decoder.py side by side: reward, cosine (the
+reward before any guard term), judged correctness on held-out probe scenes,
+repeated-word share and distinct-2 per step, with the steps on which befit's
+run watch warned marked.
 
     python examples/plot_decoder_runs.py docs/blocks_decoder/*.json --out docs/blocks_decoder.png
 """
@@ -25,11 +26,14 @@ def main() -> None:
     args = p.parse_args()
     panels = [
         ("reward", "reward (befit, mean of samples)"),
+        ("cosine", "cosine (befit, mean of samples)"),
+        ("fluency", "fluency (blocks-v1 head, mean of samples)"),
         ("correct", "greedy captions judged correct (probe)"),
         ("repeated_words", "repeated-word share (samples)"),
         ("distinct_2", "distinct-2 (samples)"),
     ]
-    fig, axes = plt.subplots(1, 4, figsize=(16, 3.6))
+    fig, grid = plt.subplots(2, 3, figsize=(13, 7))
+    axes = grid.ravel()
     for log in args.logs:
         doc = json.loads(log.read_text())
         h = doc["history"]

@@ -60,6 +60,8 @@ def bundle_digest(bundle: pathlib.Path) -> str:
         manifest["text"]["file"],
         manifest["text"].get("tokenizer", "tokenizer.json"),
     ]
+    if "fluency" in manifest:  # the optional head comes last
+        names.append(manifest["fluency"]["file"])
     outer = hashlib.sha256()
     for name in names:
         outer.update(name.encode() + b"\0" + hashlib.sha256((bundle / name).read_bytes()).digest())

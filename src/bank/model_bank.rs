@@ -58,7 +58,7 @@ impl BankQuery {
 }
 
 /// One hit of a search.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct BankHit {
     /// Caption id.
     pub id: RowId,

@@ -6,7 +6,7 @@ use std::path::Path;
 use ort::session::Session;
 use ort::value::TensorElementType;
 
-use super::{BundleError, ImageSpec, TextSpec};
+use super::{BundleError, FluencySpec, ImageSpec, TextSpec};
 
 /// What one graph input or output must look like; `None` dims are free.
 struct Expected<'a> {
@@ -129,6 +129,57 @@ pub fn check_text_graph(
     spec: &TextSpec,
     dimension: usize,
 ) -> Result<(), BundleError> {
+    check_token_graph(
+        manifest,
+        graph,
+        session,
+        ("text.ids_input", &spec.ids_input),
+        ("text.mask_input", spec.mask_input.as_deref()),
+        Expected {
+            field: "text.output",
+            name: &spec.output,
+            ty: TensorElementType::Float32,
+            dims: vec![None, Some(dimension as i64)],
+            dynamic: &[],
+        },
+    )
+}
+
+/// Checks the fluency head: int64 `[batch, tokens]` ids (and mask) in,
+/// float32 `[batch]` probabilities out.
+pub fn check_fluency_graph(
+    manifest: &Path,
+    graph: &Path,
+    session: &Session,
+    spec: &FluencySpec,
+) -> Result<(), BundleError> {
+    check_token_graph(
+        manifest,
+        graph,
+        session,
+        ("fluency.ids_input", &spec.ids_input),
+        ("fluency.mask_input", spec.mask_input.as_deref()),
+        Expected {
+            field: "fluency.output",
+            name: &spec.output,
+            ty: TensorElementType::Float32,
+            dims: vec![None],
+            dynamic: &[],
+        },
+    )
+}
+
+/// A graph on token ids: `(field, name)` of the ids and of the optional mask,
+/// each int64 `[batch, tokens]` with both axes dynamic; `output` as given; no
+/// other input.
+fn check_token_graph(
+    manifest: &Path,
+    graph: &Path,
+    session: &Session,
+    ids: (&str, &str),
+    mask: (&str, Option<&str>),
+    output: Expected,
+) -> Result<(), BundleError> {
     let token_input = |field, name| Expected {
         field,
         name,
@@ -141,33 +192,21 @@ pub fn check_text_graph(
         graph,
         session.inputs(),
         "input",
-        token_input("text.ids_input", &spec.ids_input),
+        token_input(ids.0, ids.1),
     )?;
-    let mut known = vec![spec.ids_input.as_str()];
-    if let Some(mask) = &spec.mask_input {
+    let mut known = vec![ids.1];
+    if let Some(name) = mask.1 {
         check(
             manifest,
             graph,
             session.inputs(),
             "input",
-            token_input("text.mask_input", mask),
+            token_input(mask.0, name),
         )?;
-        known.push(mask);
+        known.push(name);
     }
-    check(
-        manifest,
-        graph,
-        session.outputs(),
-        "output",
-        Expected {
-            field: "text.output",
-            name: &spec.output,
-            ty: TensorElementType::Float32,
-            dims: vec![None, Some(dimension as i64)],
-            dynamic: &[],
-        },
-    )?;
-    require_only_known_inputs(manifest, graph, session, &known, "text.mask_input")
+    check(manifest, graph, session.outputs(), "output", output)?;
+    require_only_known_inputs(manifest, graph, session, &known, mask.0)
 }
 
 /// A graph input the manifest does not feed would make every run fail.

@@ -13,6 +13,9 @@ pub struct Manifest {
     pub model: ModelSpec,
     pub image: ImageSpec,
     pub text: TextSpec,
+    /// The optional fluency head (see [`FluencySpec`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub fluency: Option<FluencySpec>,
 }
 
 /// `[model]`: identity and the shared space's dimension.
@@ -27,7 +30,7 @@ pub struct ModelSpec {
 }
 
 /// How an image is brought to the encoder's square input.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum ResizeRule {
     /// Resize to `size x size`, ignoring the aspect ratio.
@@ -37,7 +40,7 @@ pub enum ResizeRule {
 }
 
 /// Resampling filter, with the same kernels as Pillow's of the same names.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Filter {
     Nearest,
@@ -61,7 +64,7 @@ pub struct ImageSpec {
 }
 
 /// How a batch of token sequences is padded.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Padding {
     /// To the longest sequence of the batch.
@@ -88,6 +91,23 @@ pub struct TextSpec {
     pub padding: Padding,
     #[serde(default)]
     pub prefix: String,
+}
+
+/// `[fluency]`: an optional head giving the probability that a caption is
+/// well-formed. It reads the token ids the text tower gets (the `[text]`
+/// tokenizer, `max_tokens`, `pad_id` and `padding`), so it needs nothing from
+/// the text tower's output and runs beside it.
+#[derive(Debug, Clone, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct FluencySpec {
+    pub file: String,
+    /// int64 `[batch, tokens]`, padded as for the text tower.
+    pub ids_input: String,
+    /// Optional int64 `[batch, tokens]`, 1 on real tokens.
+    #[serde(default)]
+    pub mask_input: Option<String>,
+    /// float32 `[batch]`: the probability, from 0 to 1.
+    pub output: String,
 }
 
 fn default_tokenizer() -> String {
@@ -164,6 +184,14 @@ impl Manifest {
                 format!("must be between 1 and {MAX_TOKENS_LIMIT}"),
             ));
         }
+        if let Some(f) = &self.fluency {
+            if f.ids_input.is_empty() || f.output.is_empty() {
+                return Err(field(
+                    "fluency",
+                    "ids_input and output must name the graph's input and output".into(),
+                ));
+            }
+        }
         Ok(())
     }
 
@@ -196,13 +224,18 @@ impl Manifest {
         Ok(())
     }
 
-    /// The files the manifest names, with the field that names each, in digest order.
-    pub fn files(&self) -> [(&'static str, &str); 3] {
-        [
-            ("image.file", &self.image.file),
-            ("text.file", &self.text.file),
-            ("text.tokenizer", &self.text.tokenizer),
-        ]
+    /// The files the manifest names, with the field that names each, in
+    /// digest order (the fluency head last, when there is one).
+    pub fn files(&self) -> Vec<(&'static str, &str)> {
+        let mut files = vec![
+            ("image.file", self.image.file.as_str()),
+            ("text.file", self.text.file.as_str()),
+            ("text.tokenizer", self.text.tokenizer.as_str()),
+        ];
+        if let Some(f) = &self.fluency {
+            files.push(("fluency.file", f.file.as_str()));
+        }
+        files
     }
 }
 
@@ -246,6 +279,31 @@ max_tokens = 32
         assert_eq!(m.text.padding, Padding::Longest);
         assert_eq!(m.text.tokenizer, "tokenizer.json");
         assert_eq!(m.text.mask_input.as_deref(), Some("attention_mask"));
+        assert!(m.fluency.is_none());
+        assert_eq!(m.files().len(), 3);
+    }
+
+    #[test]
+    fn reads_a_fluency_section_and_digests_its_file_last() {
+        let with = format!(
+            "{GOOD}\n[fluency]\nfile = \"fluency.onnx\"\nids_input = \"input_ids\"\noutput = \"probability\"\n"
+        );
+        let m = parse(&with).unwrap();
+        let f = m.fluency.as_ref().unwrap();
+        assert_eq!(
+            (f.ids_input.as_str(), f.mask_input.as_deref()),
+            ("input_ids", None)
+        );
+        assert_eq!(m.files().last(), Some(&("fluency.file", "fluency.onnx")));
+        let err = parse(&with.replace("output = \"probability\"", "output = \"\"")).unwrap_err();
+        assert!(err.to_string().contains("`fluency`"), "{err}");
+        let err = parse(&format!("{with}colour = 3\n")).unwrap_err();
+        assert!(err.to_string().contains("colour"), "{err}");
+        let err = parse(&with.replace("file = \"fluency.onnx\"", "file = \"../f.onnx\""))
+            .unwrap()
+            .check_files(Path::new("b"), Path::new("b/bundle.toml"))
+            .unwrap_err();
+        assert!(err.to_string().contains("`fluency.file`"), "{err}");
     }
 
     #[test]

@@ -10,7 +10,9 @@ pub mod manifest;
 
 use std::path::{Path, PathBuf};
 
-pub use manifest::{Filter, ImageSpec, Manifest, ModelSpec, Padding, ResizeRule, TextSpec};
+pub use manifest::{
+    Filter, FluencySpec, ImageSpec, Manifest, ModelSpec, Padding, ResizeRule, TextSpec,
+};
 
 /// Why a bundle could not be opened; every message names the file and field.
 #[derive(Debug, thiserror::Error)]

@@ -44,6 +44,8 @@ pub enum Command {
     /// API keys for `befit serve --keys`.
     #[command(subcommand)]
     Keys(KeysCommand),
+    /// Print the HTTP API as an OpenAPI 3.1 document (what `GET /openapi.json` serves).
+    Openapi,
 }
 
 #[derive(Debug, Subcommand)]

@@ -48,6 +48,10 @@ pub fn run(argv: impl IntoIterator<Item = OsString>) -> anyhow::Result<ExitCode>
         Command::Bank(BankCommand::Query(a)) => bank_commands::query(a),
         Command::Bank(BankCommand::EmbedMissing(a)) => bank_commands::embed_missing(a),
         Command::Keys(KeysCommand::New(a)) => keys_command::new_key(a),
+        Command::Openapi => {
+            print!("{}", crate::server::openapi::document());
+            Ok(ExitCode::SUCCESS)
+        }
     }
 }
 

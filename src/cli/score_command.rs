@@ -54,9 +54,9 @@ fn spec(a: &ScoreArgs, model: &crate::encoders::Model) -> anyhow::Result<RewardS
         Some(text) => {
             let json: GuardJson = serde_json::from_str(text)
                 .with_context(|| format!("--guard is not a guard object: {text}"))?;
-            // Offline there is no bank, and no bundle carries a fluency head yet.
-            let guard =
-                Guard::new(json, None, None).map_err(|e| anyhow::anyhow!("--guard: {e}"))?;
+            // Offline there is no bank; the bundle's fluency head, when it has one.
+            let guard = Guard::new(json, model.fluency_head(), None)
+                .map_err(|e| anyhow::anyhow!("--guard: {e}"))?;
             Ok(spec.with_guard(guard))
         }
         None => Ok(spec),

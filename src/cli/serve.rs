@@ -224,6 +224,7 @@ pub fn check_bundle(a: CheckBundleArgs) -> anyhow::Result<ExitCode> {
         "dimension": m.dimension(),
         "digest": m.bundle.digest,
         "dir": m.bundle.dir,
+        "fluency": m.bundle.manifest.fluency.as_ref().map(|f| &f.file),
     });
     println!("{}", serde_json::to_string_pretty(&out)?);
     Ok(ExitCode::SUCCESS)

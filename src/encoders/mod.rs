@@ -2,6 +2,7 @@
 //!
 //! - [`towers`]: one ONNX Runtime session per worker thread for the image and
 //!   the text encoder, as [`crate::batching::BatchRunner`]s.
+//! - [`fluency`]: a bundle's optional fluency head, one session behind a mutex.
 //! - [`model`]: one loaded bundle: its checked graphs, tokenizer, batchers and
 //!   caption cache; turns captions and image tensors into unit vectors.
 //! - [`engine`]: every loaded model plus the image store and image root; turns
@@ -10,6 +11,7 @@
 //! - [`offline`]: the [`crate::vectors::Embedder`] the CLI's offline work uses.
 
 pub mod engine;
+pub mod fluency;
 pub mod loading;
 pub mod model;
 pub mod offline;

@@ -6,12 +6,14 @@ use std::sync::Arc;
 
 use ort::environment::Environment;
 
+use super::fluency::FluencySession;
 use super::towers::{open_session, ImageTower, TextTower};
 use crate::batching::{BatchError, BatchObserver, BatchSettings, Batcher};
 use crate::bundle::graph_check::{check_image_graph, check_text_graph};
 use crate::bundle::{Bundle, BundleError};
 use crate::intake::captions::{CaptionError, CaptionTokenizer, Tokens};
 use crate::metrics::Registry;
+use crate::scoring::FluencyHead;
 use crate::store::memory::{SharedLru, DEFAULT_CAPTION_CACHE, DEFAULT_IMAGE_CACHE};
 
 /// Captions tokenised on the async runtime's own thread when there are at
@@ -130,6 +132,8 @@ pub struct Model {
     tokenizer: Arc<CaptionTokenizer>,
     images: Batcher<Vec<f32>, Vec<f32>>,
     texts: Batcher<Vec<i64>, Vec<f32>>,
+    /// The bundle's fluency head, when `bundle.toml` has `[fluency]`.
+    fluency: Option<Arc<FluencySession>>,
     captions: SharedLru<String, CaptionVector>,
     /// Image embeddings by content id, in front of the SQLite store.
     pub image_vectors: SharedLru<String, Vec<f32>>,
@@ -220,6 +224,11 @@ impl Model {
                 dimension,
             });
         }
+        // One session with one thread: the head is tiny and its runs short.
+        let fluency = match &m.fluency {
+            Some(spec) => Some(Arc::new(FluencySession::open(env, &bundle, spec, 1)?)),
+            None => None,
+        };
         let tokenizer =
             CaptionTokenizer::load(&bundle.tokenizer_file(), &m.text).map_err(|cause| {
                 LoadError::Tokenizer {
@@ -257,6 +266,7 @@ impl Model {
             tokenizer: Arc::new(tokenizer),
             images,
             texts,
+            fluency,
             captions: SharedLru::new(settings.caption_cache),
             image_vectors: SharedLru::new(settings.image_cache),
             metrics,
@@ -270,6 +280,13 @@ impl Model {
     /// Tokenises one caption with this bundle's tokenizer and settings.
     pub fn tokenize(&self, caption: &str) -> Result<Tokens, CaptionError> {
         self.tokenizer.encode(caption)
+    }
+
+    /// The bundle's fluency head, when it has one.
+    pub fn fluency_head(&self) -> Option<Arc<dyn FluencyHead>> {
+        self.fluency
+            .as_ref()
+            .map(|head| Arc::clone(head) as Arc<dyn FluencyHead>)
     }
 
     /// The tokenizer's unknown-token id, when it has one.

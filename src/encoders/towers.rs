@@ -31,6 +31,22 @@ pub fn open_session(
         .map_err(|e| describe(format!("cannot load the ONNX graph: {e:?}")))
 }
 
+/// Runs `session` on named inputs; the shape and values of its float output `output`.
+pub fn run_f32(
+    session: &mut Session,
+    inputs: Vec<(Cow<'_, str>, SessionInputValue<'_>)>,
+    output: &str,
+) -> Result<(Vec<i64>, Vec<f32>), String> {
+    let outputs = session.run(inputs).map_err(|e| format!("{e:?}"))?;
+    let value = outputs
+        .get(output)
+        .ok_or_else(|| format!("the graph produced no output named {output:?}"))?;
+    let (shape, data) = value
+        .try_extract_tensor::<f32>()
+        .map_err(|e| format!("{e:?}"))?;
+    Ok((shape.to_vec(), data.to_vec()))
+}
+
 /// Runs `session` on named inputs and returns the rows of the float output, unit length.
 fn run_rows(
     session: &mut Session,
@@ -39,14 +55,7 @@ fn run_rows(
     rows: usize,
     dimension: usize,
 ) -> Result<Vec<Vec<f32>>, String> {
-    let outputs = session.run(inputs).map_err(|e| format!("{e:?}"))?;
-    let value = outputs
-        .get(output)
-        .ok_or_else(|| format!("the graph produced no output named {output:?}"))?;
-    let (shape, data) = value
-        .try_extract_tensor::<f32>()
-        .map_err(|e| format!("{e:?}"))?;
-    let dims: &[i64] = shape;
+    let (dims, data) = run_f32(session, inputs, output)?;
     if dims != [rows as i64, dimension as i64] {
         return Err(format!(
             "output {output:?} has shape {dims:?}, expected [{rows}, {dimension}]"

@@ -44,7 +44,7 @@ impl std::fmt::Display for ImageSource {
 
 /// The `{"id" | "base64" | "path"}` object by which JSON names an image;
 /// exactly one field must be set.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct ImageRef {
     pub id: Option<String>,

@@ -89,8 +89,9 @@ impl Limit {
     }
 }
 
-/// The limits in force.
-#[derive(Debug, Clone, PartialEq, Eq)]
+/// The limits in force, as `GET /v1/limits` shows them (each named after its
+/// `befit serve` flag; durations in the flag's unit).
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, utoipa::ToSchema)]
 pub struct Limits {
     pub max_body_bytes: usize,
     pub max_groups: usize,
@@ -103,13 +104,27 @@ pub struct Limits {
     pub decode_budget_bytes: u64,
     pub max_probe_rows: usize,
     pub max_inflight: usize,
+    #[serde(rename = "request_timeout_secs", serialize_with = "seconds")]
+    #[schema(value_type = f64)]
     pub request_timeout: Duration,
     /// Time for a whole body to arrive.
+    #[serde(rename = "body_timeout_secs", serialize_with = "seconds")]
+    #[schema(value_type = f64)]
     pub body_timeout: Duration,
     /// Bytes a second a body must keep up after [`BODY_RATE_GRACE`].
     pub min_body_rate: u64,
     /// Queued encoder work past which new work is refused before its body is read.
+    #[serde(rename = "max_queue_wait_ms", serialize_with = "millis")]
+    #[schema(value_type = u64)]
     pub max_queue_wait: Duration,
+}
+
+fn seconds<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_f64(d.as_secs_f64())
+}
+
+fn millis<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_u64(d.as_millis().try_into().unwrap_or(u64::MAX))
 }
 
 impl Default for Limits {

@@ -71,7 +71,7 @@ pub fn valid_run_name(name: &str) -> bool {
 /// When a step's aggregates make rewards answers of the run carry warnings.
 /// The defaults suit captions of a few to twenty words; the blocks captions
 /// of the demo, for example, repeat "a" once in eight words (0.125).
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields, default)]
 pub struct Thresholds {
     /// Mean share of words repeating an earlier word of their caption.

@@ -30,7 +30,7 @@ pub use store::{RunInfo, SampleRecord, StepSummary, MAX_LISTED_RUNS, MAX_SERIES_
 pub const MAX_GAUGED_RUNS: usize = 8;
 
 /// A threshold a step crossed.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Warning {
     pub run: String,
     pub step: u64,
@@ -53,7 +53,7 @@ pub struct RecentRun {
 }
 
 /// What recording a request's samples says back.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct RunReport {
     pub name: String,
     pub step: u64,

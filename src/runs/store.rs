@@ -98,7 +98,7 @@ struct StepRow {
 }
 
 /// A mean and population standard deviation (numpy's default, ddof = 0).
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Spread {
     pub mean: f64,
     pub std: f64,
@@ -128,7 +128,7 @@ fn share(part: u64, whole: u64) -> f64 {
 }
 
 /// One step of a run, as answers show it.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct StepSummary {
     pub step: u64,
     pub samples: u64,
@@ -189,7 +189,7 @@ fn share_f(sum: f64, n: u64) -> f64 {
 }
 
 /// A run as `GET /v1/runs` lists it.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct RunInfo {
     pub name: String,
     pub created_ms: i64,

@@ -3,7 +3,7 @@
 use serde::{Deserialize, Serialize};
 
 /// A baseline, as requests name it.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum Baseline {
     /// `b_i = 0`: the advantage is the reward.

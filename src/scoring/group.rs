@@ -11,7 +11,7 @@ use crate::encoders::CaptionVector;
 use crate::vectors::dot;
 
 /// A sampled caption's cosine with its image, reward and advantage.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Sample {
     pub cosine: f32,
     pub reward: f32,
@@ -23,7 +23,7 @@ pub struct Sample {
 }
 
 /// The greedy caption's cosine and reward (its reward is the greedy baseline).
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Scored {
     pub cosine: f32,
     pub reward: f32,
@@ -34,7 +34,7 @@ pub struct Scored {
 }
 
 /// One group's answer.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct GroupScores {
     /// Content id of the group's image.
     pub image: String,

@@ -37,7 +37,7 @@ pub enum GuardError {
 
 /// A penalty on a share or cosine: `weight * max(0, s - above) / (1 - above)`,
 /// so it grows from 0 at the threshold to `weight` at 1.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct OverPenalty {
     pub above: f32,
@@ -45,7 +45,7 @@ pub struct OverPenalty {
 }
 
 /// A penalty on short captions: `weight * max(0, below - tokens) / below`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct LengthPenalty {
     pub below: u32,
@@ -53,7 +53,7 @@ pub struct LengthPenalty {
 }
 
 /// The penalties a request asks for, each optional.
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Penalties {
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -69,7 +69,7 @@ pub struct Penalties {
 }
 
 /// The `guard` object of a request, and of its answer (the echo).
-#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct GuardJson {
     /// lambda of the fluency term; needs a bundle with a fluency head.
@@ -88,11 +88,11 @@ pub trait NearestCaption: Send + Sync + std::fmt::Debug {
     fn nearest(&self, vectors: &[&[f32]]) -> Result<Vec<Option<f32>>, String>;
 }
 
-/// A bundle's fluency head: the probability that a caption is well-formed,
-/// from its token ids and its text embedding. No bundle carries one yet; the
-/// guard takes one when a bundle does, and refuses a fluency weight without.
+/// A bundle's fluency head: for each caption, from the token ids the text
+/// tower got, the probability that it is well-formed. Blocking: called off
+/// the async runtime. A guard with a fluency weight needs one.
 pub trait FluencyHead: Send + Sync + std::fmt::Debug {
-    fn probability(&self, ids: &[i64], text_vector: &[f32]) -> Result<f32, String>;
+    fn probabilities(&self, ids: &[&[i64]]) -> Result<Vec<f32>, String>;
 }
 
 /// A checked guard, with the bank it measures against when asked.
@@ -235,7 +235,7 @@ impl Guard {
 }
 
 /// What the guard measured of one caption.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Signals {
     /// Share of word tokens repeating an earlier word of the caption.
     pub repeated_words: f32,
@@ -276,7 +276,7 @@ impl Signals {
 
 /// A caption's signals, its reward before and after the guard, and which
 /// penalties it crossed.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Guarded {
     #[serde(flatten)]
     pub signals: Signals,
@@ -350,6 +350,33 @@ mod tests {
         assert!((out.penalty - 1.375).abs() < 1e-6, "{out:?}");
         assert!((out.reward - 0.625).abs() < 1e-6);
         assert_eq!(out.flagged, ["repeated_words", "length"]);
+    }
+
+    /// A head answering a fixed probability: what the guard does with one.
+    #[derive(Debug)]
+    struct Fixed(f32);
+
+    impl FluencyHead for Fixed {
+        fn probabilities(&self, ids: &[&[i64]]) -> Result<Vec<f32>, String> {
+            Ok(vec![self.0; ids.len()])
+        }
+    }
+
+    #[test]
+    fn the_fluency_term_is_weighted_and_counts_only_when_measured() {
+        let json: GuardJson = serde_json::from_value(serde_json::json!({
+            "fluency_weight": 0.5,
+            "penalties": {"length": {"below": 4, "weight": 1}}}))
+        .unwrap();
+        let g = Guard::new(json, Some(Arc::new(Fixed(0.8))), None).unwrap();
+        assert!(g.fluency().is_some());
+        // 3 tokens below 4: penalty 1/4; reward = 1.5 + 0.5 * 0.8 - 0.25 (Cho et al. 2022 form).
+        let mut s = Signals::of_text("a red ring", &[2, 16, 28], Some(1));
+        s.fluency = Some(0.8);
+        let out = g.apply(s.clone(), 1.5);
+        assert!((out.reward - 1.65).abs() < 1e-6, "{out:?}");
+        s.fluency = None;
+        assert!((g.apply(s, 1.5).reward - 1.25).abs() < 1e-6);
     }
 
     #[test]

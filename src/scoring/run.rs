@@ -88,8 +88,8 @@ pub async fn score_groups(
 }
 
 /// The guard's signals of every sample and greedy caption of the groups, in
-/// order (each group's samples, then its greedy caption); the bank is asked
-/// off the async runtime.
+/// order (each group's samples, then its greedy caption); the fluency head
+/// and the bank run off the async runtime.
 async fn guard_signals(
     guard: &Guard,
     model: &Arc<Model>,
@@ -108,6 +108,7 @@ async fn guard_signals(
         }
     }
     let mut signals = Vec::with_capacity(texts.len());
+    let mut ids = Vec::with_capacity(texts.len());
     for (text, vector) in &texts {
         // Checked captions were encoded, so they tokenise; the ids are the
         // ones the text tower saw (truncated at the bundle's limit).
@@ -117,27 +118,42 @@ async fn guard_signals(
         })?;
         let mut s = Signals::of_text(text, &tokens.ids, unknown);
         s.tokens = vector.tokens;
-        if let Some(head) = guard.fluency() {
-            let p = head
-                .probability(&tokens.ids, &vector.vector)
-                .map_err(|message| ScoreError {
-                    field: None,
-                    source: EngineError::Task(format!("fluency head: {message}")),
-                })?;
+        signals.push(s);
+        ids.push(tokens.ids);
+    }
+    if let Some(head) = guard.fluency() {
+        let head = Arc::clone(head);
+        let probabilities = off_runtime(move || {
+            let rows: Vec<&[i64]> = ids.iter().map(Vec::as_slice).collect();
+            head.probabilities(&rows)
+        })
+        .await
+        .map_err(|message| ScoreError {
+            field: None,
+            source: EngineError::Task(format!("fluency head: {message}")),
+        })?;
+        if probabilities.len() != signals.len() {
+            return Err(ScoreError {
+                field: None,
+                source: EngineError::Task(format!(
+                    "fluency head gave {} probabilities for {} captions",
+                    probabilities.len(),
+                    signals.len()
+                )),
+            });
+        }
+        for (s, p) in signals.iter_mut().zip(probabilities) {
             s.fluency = Some(p);
         }
-        signals.push(s);
     }
     if let Some(bank) = guard.nearest() {
         let bank = Arc::clone(bank);
         let vectors: Vec<Arc<CaptionVector>> = texts.iter().map(|(_, v)| Arc::clone(v)).collect();
-        let nearest = tokio::task::spawn_blocking(move || {
+        let nearest = off_runtime(move || {
             let rows: Vec<&[f32]> = vectors.iter().map(|v| v.vector.as_slice()).collect();
             bank.nearest(&rows)
         })
         .await
-        .map_err(|e| e.to_string())
-        .and_then(|r| r)
         .map_err(|message| ScoreError {
             field: None,
             source: EngineError::Task(format!("guard asking the bank: {message}")),
@@ -147,4 +163,14 @@ async fn guard_signals(
         }
     }
     Ok(signals)
+}
+
+/// Runs a blocking measure of the guard on a blocking thread.
+async fn off_runtime<T: Send + 'static>(
+    work: impl FnOnce() -> Result<T, String> + Send + 'static,
+) -> Result<T, String> {
+    tokio::task::spawn_blocking(work)
+        .await
+        .map_err(|e| e.to_string())
+        .and_then(|r| r)
 }

@@ -26,7 +26,7 @@ pub enum ScaleError {
 }
 
 /// A reward scale, as requests name it.
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(tag = "kind", rename_all = "kebab-case", deny_unknown_fields)]
 pub enum Scale {
     /// The cosine itself.

@@ -79,7 +79,7 @@ pub struct RewardGroup {
 }
 
 /// A group as JSON carries it (the `/v1/rewards` group and a `befit score` line).
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct GroupJson {
     pub image: crate::intake::image_source::ImageRef,

@@ -26,7 +26,7 @@ use crate::stats::StatsError;
 pub const RETRY_AFTER_SECONDS: u64 = 1;
 
 /// Every code an answer can carry; `proto-free-api.md` has the same table.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "snake_case")]
 pub enum ErrorCode {
     BadJson,
@@ -156,17 +156,21 @@ pub struct ApiError {
     pub retry_after: Option<u64>,
 }
 
-#[derive(Serialize)]
-struct Body<'a> {
-    error: Inner<'a>,
+/// The body of every answer that is not a success.
+#[derive(Serialize, utoipa::ToSchema)]
+pub struct ErrorBody {
+    #[schema(inline)]
+    error: ErrorDetail,
 }
 
-#[derive(Serialize)]
-struct Inner<'a> {
-    code: &'a str,
-    message: &'a str,
+#[derive(Serialize, utoipa::ToSchema)]
+struct ErrorDetail {
+    code: ErrorCode,
+    /// What was wrong and how to fix it.
+    message: String,
+    /// The request's field to blame (`groups[2].captions[0]`), when there is one.
     #[serde(skip_serializing_if = "Option::is_none")]
-    field: Option<&'a str>,
+    field: Option<String>,
 }
 
 impl ApiError {
@@ -272,21 +276,23 @@ pub fn is_storage_full(error: &(dyn std::error::Error + 'static)) -> bool {
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let body = Body {
-            error: Inner {
-                code: self.code.as_str(),
-                message: &self.message,
-                field: self.field.as_deref(),
+        let status = self.status();
+        let retry_after = self.retry_after;
+        let body = ErrorBody {
+            error: ErrorDetail {
+                code: self.code,
+                message: self.message,
+                field: self.field,
             },
         };
-        let mut response = (self.status(), axum::Json(body)).into_response();
-        if self.status() == StatusCode::SERVICE_UNAVAILABLE {
+        let mut response = (status, axum::Json(body)).into_response();
+        if status == StatusCode::SERVICE_UNAVAILABLE {
             response.headers_mut().insert(
                 header::RETRY_AFTER,
-                HeaderValue::from(self.retry_after.unwrap_or(RETRY_AFTER_SECONDS)),
+                HeaderValue::from(retry_after.unwrap_or(RETRY_AFTER_SECONDS)),
             );
         }
-        if self.status() == StatusCode::UNAUTHORIZED {
+        if status == StatusCode::UNAUTHORIZED {
             // The challenge RFC 6750 §3 asks a 401 to carry.
             response
                 .headers_mut()

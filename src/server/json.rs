@@ -56,6 +56,16 @@ pub fn body_rejection(rejection: BytesRejection) -> ApiError {
     }
 }
 
+/// A query string or path segment the framework could not read into its
+/// type: `invalid_field` blaming `field`, saying what it must be.
+pub fn unreadable(field: &str, must_be: &str, rejection_text: String) -> ApiError {
+    ApiError::new(
+        ErrorCode::InvalidField,
+        format!("{field} must be {must_be}: {rejection_text}"),
+    )
+    .at(field)
+}
+
 /// Parses a read body; shape errors blame the field serde was in.
 pub fn parse_json<T: DeserializeOwned>(bytes: &[u8]) -> Result<T, ApiError> {
     let mut deserializer = serde_json::Deserializer::from_slice(bytes);

@@ -2,7 +2,7 @@
 //!
 //! [`app`] builds the router over a [`Service`] so tests can drive it with
 //! `oneshot`. The routes that watch the service (the live page, `/v1/pulse`,
-//! `/healthz`, `/readyz`, `/metrics`) answer outside every limit, so it can be
+//! `/healthz`, `/readyz`, `/metrics`, `/openapi.json`) answer outside every limit, so it can be
 //! watched while overloaded; the routes that do work are first admitted by
 //! the encoder work already queued (before a byte of body is read), then have
 //! their body read in full ([`body`]: size, deadline and rate, holding no slot), then
@@ -10,7 +10,7 @@
 //! it on a bound listener ([`listen`]: header timeout, connection cap, drain)
 //! until `shutdown` resolves. Handlers parse, check, call the domain and shape
 //! the answer; [`error`] maps every domain error to the API's codes. The API is
-//! documented in `proto-free-api.md`. Before any of that, [`access`] checks
+//! documented in `proto-free-api.md`, and as OpenAPI 3.1 by [`openapi`]. Before any of that, [`access`] checks
 //! `Host`, `Origin`, the API key and its scope, and the key's rate.
 
 pub mod access;
@@ -18,6 +18,7 @@ pub mod body;
 pub mod error;
 pub mod json;
 pub mod listen;
+pub mod openapi;
 pub mod routes;
 mod shed_log;
 
@@ -57,6 +58,7 @@ pub fn app_with(state: Service, access: Arc<access::Access>) -> Router {
         .route("/page/live.css", get(routes::live::style))
         .route("/page/icon.svg", get(routes::live::icon))
         .route("/v1/pulse", get(routes::live::pulse))
+        .route("/openapi.json", get(openapi::serve))
         .route("/healthz", get(routes::health::healthz))
         .route("/readyz", get(routes::health::readyz))
         .route("/metrics", get(routes::health::metrics));

@@ -20,7 +20,7 @@ use crate::intake::image_decode::ImageLimits;
 use crate::vectors::{EmbedError, Embedder};
 
 /// Where one bundle's backfill is.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Phase {
     Running,
@@ -30,7 +30,7 @@ pub enum Phase {
 }
 
 /// One bundle's backfill, as `GET /v1/bank` shows it.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct Progress {
     pub phase: Phase,
     /// Captions without a vector for the bundle when it started.

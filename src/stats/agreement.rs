@@ -177,7 +177,7 @@ fn kendall_tau_b_quadratic(x: &[f64], y: &[f64]) -> Option<f64> {
 }
 
 /// The two-sample Kolmogorov-Smirnov test of two samples of cosines.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct KsTest {
     /// Size of the first sample.
     pub n_from: usize,

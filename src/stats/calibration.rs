@@ -22,7 +22,7 @@ pub const MAX_HISTOGRAM_BINS: usize = 2000;
 pub const EXAMPLE_PAIRS: usize = 8;
 
 /// One pair shown as an example, with its image and captions.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ExamplePair {
     /// The image, as named in the probe set.
     pub image: String,
@@ -41,7 +41,7 @@ pub struct ExamplePair {
 }
 
 /// Pairs to look at: where the reward is least sure, and where it is wrong.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Examples {
     /// The [`EXAMPLE_PAIRS`] true pairs of lowest cosine, lowest first, ties
     /// by caption order.
@@ -53,7 +53,7 @@ pub struct Examples {
 }
 
 /// Settings of a calibration.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(default, deny_unknown_fields)]
 pub struct CalibrationOptions {
     /// Hinge margin alpha (VSE++ uses 0.2).
@@ -107,7 +107,7 @@ impl CalibrationOptions {
 }
 
 /// Sizes of the probe set a report was computed on.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ProbeCounts {
     /// Images (N).
     pub images: usize,
@@ -120,7 +120,7 @@ pub struct ProbeCounts {
 }
 
 /// Cosine distributions of the probe's pairs.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct CosineReport {
     /// cos(image, caption) of every true pair (M values).
     pub true_pairs: Distribution,
@@ -135,7 +135,7 @@ pub struct CosineReport {
 
 /// An affine reward scale `a * c + b`, the shape of `{"kind": "affine"}` in
 /// `POST /v1/rewards`.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct AffineScale {
     /// Slope.
     pub a: f64,
@@ -144,7 +144,7 @@ pub struct AffineScale {
 }
 
 /// Reward scales that put this bundle's typical cosines at fixed points.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct SuggestedCalibration {
     /// Median true-pair cosine (m_t).
     pub median_true: f64,
@@ -159,7 +159,7 @@ pub struct SuggestedCalibration {
 }
 
 /// Every calibration figure of one bundle on one probe set.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct CalibrationReport {
     /// The bundle, as named in [`ProbeVectors::bundle`].
     pub bundle: String,

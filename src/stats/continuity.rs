@@ -43,7 +43,7 @@ pub enum ContinuityError {
 }
 
 /// A map from a new bundle's cosine to the old bundle's scale.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(tag = "kind", rename_all = "lowercase", try_from = "UncheckedMap")]
 pub enum ContinuityMap {
     /// y = a x + b.
@@ -237,7 +237,7 @@ fn interpolate(knots: &[[f64; 2]], x: f64) -> f64 {
 }
 
 /// A fitted map and how well it fits the pairs it was fitted on.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct FittedMap {
     /// The map, ready to save and pass as `remap`.
     pub map: ContinuityMap,

@@ -10,7 +10,7 @@ use super::intervals::{wilson, Interval};
 use super::roc::{roc, Roc};
 
 /// How often true captions beat their contrasts, for one label or overall.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ContrastFigures {
     /// Contrast pairs.
     pub count: usize,
@@ -33,7 +33,7 @@ pub struct ContrastFigures {
 }
 
 /// Contrast figures overall and per `changed` label.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ContrastReport {
     /// Every contrast pair.
     pub overall: ContrastFigures,

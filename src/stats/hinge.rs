@@ -26,7 +26,7 @@ pub const DEFAULT_MARGIN: f64 = 0.2;
 pub const DEFAULT_BATCH_IMAGES: usize = 128;
 
 /// Hinge losses of one set of images with their true captions.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct HingeFigures {
     /// Positive pairs (true captions) the means are over.
     pub positives: usize,
@@ -52,7 +52,7 @@ pub struct HingeFigures {
 }
 
 /// The hinge losses of a probe set, as one batch and as fixed-size batches.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct HingeReport {
     /// The margin alpha.
     pub margin: f64,
@@ -71,7 +71,7 @@ pub struct HingeReport {
 /// a loader with `drop_last` does, so every batch has the same number of
 /// negatives); with fewer images than `batch_images`, the one batch is the
 /// whole set.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct BatchedHinge {
     /// Images per batch asked for.
     pub batch_images: usize,

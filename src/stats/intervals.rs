@@ -16,7 +16,7 @@ use serde::{Deserialize, Serialize};
 pub const Z_95: f64 = 1.959_963_984_540_054;
 
 /// A closed interval `[low, high]`.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Interval {
     /// Lower bound.
     pub low: f64,

@@ -13,7 +13,7 @@ use super::intervals::{wilson, Interval};
 use super::summary::median;
 
 /// Retrieval figures of one direction.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct RetrievalFigures {
     /// Queries (images for image-to-text, captions for text-to-image).
     pub queries: usize,
@@ -34,7 +34,7 @@ pub struct RetrievalFigures {
 }
 
 /// Confidence intervals of R@1, R@5 and R@10, in percent.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct RecallIntervals {
     /// Of R@1.
     pub r_at_1: Interval,
@@ -45,7 +45,7 @@ pub struct RecallIntervals {
 }
 
 /// Retrieval in both directions.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct RetrievalReport {
     /// Image query against all probe true captions; the rank is that of the
     /// best-ranked of the image's own captions: 1 + the number of captions

@@ -11,7 +11,7 @@
 use serde::{Deserialize, Serialize};
 
 /// A ROC curve and its area.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Roc {
     /// Area under the curve, 0 to 1 (0.5: the scores do not separate).
     pub auc: f64,

@@ -53,7 +53,7 @@ fn frobenius(m: &Array2<f64>) -> f64 {
 }
 
 /// The orthogonal Procrustes fit of one set of rows onto another.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ProcrustesFit {
     /// ||A R - B||_F for the orthogonal R minimising it (rows not centred:
     /// a cosine is about the origin).

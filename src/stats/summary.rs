@@ -99,7 +99,7 @@ pub fn round_range(min: f64, max: f64) -> (f64, f64) {
 pub const QUANTILE_LEVELS: [f64; 7] = [0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99];
 
 /// Quantiles at [`QUANTILE_LEVELS`], numpy's `method="linear"`.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Quantiles {
     /// 1st percentile.
     pub p01: f64,
@@ -122,7 +122,7 @@ pub struct Quantiles {
 /// Bin `k` holds values in `[low + k w, low + (k+1) w)`, the last bin also
 /// its upper edge, w = (high - low) / bins; values outside the range (a cosine
 /// a rounding error past 1) are counted in the end bins.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Histogram {
     /// Lower edge of the first bin.
     pub low: f64,
@@ -133,7 +133,7 @@ pub struct Histogram {
 }
 
 /// Summary of one list of cosines.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Distribution {
     /// Number of values.
     pub count: usize,

@@ -10,13 +10,17 @@ signal recomputed here independently of befit's Rust code:
 - cosines, CLIP-S (Hessel et al. 2021, eq. 1) and the mean-of-others
   baseline (Luo 2020) with numpy from `/v1/vectors`;
 - distinct-n (Li et al. 2016: distinct n-grams / all n-grams) with Python
-  sets, reward mean and spread with numpy (`np.std`, ddof = 0).
+  sets, reward mean and spread with numpy (`np.std`, ddof = 0);
+- the fluency probability by running the bundle's `[fluency]` graph with
+  the onnxruntime Python package on ids tokenised here, and the combined
+  reward `CLIP-S + lambda * fluency` (Cho et al. 2022) with numpy.
 """
 
 from __future__ import annotations
 
 import json
 import re
+import tomllib
 import urllib.request
 
 import numpy as np
@@ -140,6 +144,48 @@ def test_signals_and_guarded_rewards_match_an_independent_computation(server, cl
     np.testing.assert_allclose(out.advantage, rewards - baseline, atol=1e-4)
     # "a big yellow square" is a bank caption: cosine 1, flagged.
     assert out.signals[0][2]["bank_cosine"] == pytest.approx(1.0, abs=1e-5)
+
+
+def fluency_by_onnxruntime(texts):
+    """The bundle's fluency head run with onnxruntime on ids made here from tokenizer.json."""
+    import onnxruntime as ort
+
+    manifest = tomllib.loads((BUNDLE / "bundle.toml").read_text())
+    head, text = manifest["fluency"], manifest["text"]
+    doc = json.loads((BUNDLE / "tokenizer.json").read_text())
+    vocab, unk = doc["model"]["vocab"], doc["model"]["vocab"][doc["model"]["unk_token"]]
+    rows = [[vocab.get(p, unk) for p in re.findall(r"\w+|[^\w\s]+", t.lower())][: text["max_tokens"]] for t in texts]
+    width = max(len(r) for r in rows)
+    ids = np.full((len(rows), width), text["pad_id"], dtype=np.int64)
+    mask = np.zeros((len(rows), width), dtype=np.int64)
+    for i, r in enumerate(rows):
+        ids[i, : len(r)], mask[i, : len(r)] = r, 1
+    session = ort.InferenceSession(str(BUNDLE / head["file"]), providers=["CPUExecutionProvider"])
+    return session.run([head["output"]], {head["ids_input"]: ids, head["mask_input"]: mask})[0]
+
+
+def test_fluency_term_matches_an_onnxruntime_run_of_the_head(client, probe_rows):
+    rows = probe_rows[8:10]
+    captions = [
+        [rows[0]["captions"][0], rows[0]["captions"][0] + " " + rows[0]["captions"][0], "a big big big red"],
+        [rows[1]["captions"][1], "ring the is small a", rows[1]["captions"][2].rsplit(" ", 3)[0]],
+    ]
+    images = [PROBE_DIR / r["image"] for r in rows]
+    lam = 0.6
+    out = client.rewards(images, captions, scale=clip_s(2.5), baseline="mean-of-others", guard={"fluency_weight": lam})
+    assert out.guard["fluency_weight"] == pytest.approx(lam)
+    flat = [c for g in captions for c in g]
+    want = fluency_by_onnxruntime(flat).reshape(len(rows), 3)
+    got = np.array([[s["fluency"] for s in g] for g in out.signals])
+    np.testing.assert_allclose(got, want, atol=1e-5)
+    # True captions are well-formed; doubled, stuttered, shuffled or cut ones are not.
+    assert (want[:, 0] > 0.9).all() and (want[:, 1:] < 0.1).all(), want
+    v = client.vectors(images, flat)
+    cos = np.einsum("gd,gjd->gj", v.images, v.texts.reshape(len(rows), 3, -1))
+    rewards = 2.5 * np.maximum(cos, 0.0) + lam * want
+    np.testing.assert_allclose(out.reward, rewards, atol=1e-4)
+    baseline = (rewards.sum(axis=1, keepdims=True) - rewards) / 2
+    np.testing.assert_allclose(out.advantage, rewards - baseline, atol=1e-4)
 
 
 def test_run_watch_aggregates_match_an_independent_computation(client, probe_rows):

@@ -131,6 +131,50 @@ fn a_bundle_that_disagrees_with_its_graph_names_file_and_field() {
     );
     let report: Value = serde_json::from_slice(&good.stdout).unwrap();
     assert_eq!(report["id"], "blocks@v1");
+    assert_eq!(report["fluency"], "fluency.onnx");
+}
+
+#[test]
+fn a_fluency_head_that_disagrees_with_its_section_names_the_field() {
+    let src = bundle_dir("blocks-v1");
+    let manifest = std::fs::read_to_string(src.join("bundle.toml")).unwrap();
+    let cases = [
+        // An output the graph does not have.
+        (
+            manifest.replace("output = \"probability\"", "output = \"p\""),
+            "field `fluency.output`: the graph has no output named \"p\"",
+        ),
+        // The text tower as the head: its output is [batch, 64], not [batch].
+        (
+            manifest.replace(
+                "file = \"fluency.onnx\"\nids_input = \"input_ids\"\nmask_input = \"attention_mask\"\noutput = \"probability\"",
+                "file = \"text.onnx\"\nids_input = \"input_ids\"\nmask_input = \"attention_mask\"\noutput = \"embedding\"",
+            ),
+            "field `fluency.output`: output \"embedding\" has rank 2",
+        ),
+        // The mask the graph needs left out of the section.
+        (
+            manifest.replace("mask_input = \"attention_mask\"\noutput = \"probability\"", "output = \"probability\""),
+            "field `fluency.mask_input`: the graph",
+        ),
+    ];
+    for (text, want) in cases {
+        assert_ne!(text, manifest, "the case did not change the manifest");
+        let dir = tempfile::tempdir().unwrap();
+        for entry in std::fs::read_dir(&src).unwrap() {
+            let entry = entry.unwrap();
+            std::fs::copy(entry.path(), dir.path().join(entry.file_name())).unwrap();
+        }
+        std::fs::write(dir.path().join("bundle.toml"), text).unwrap();
+        let out = Command::new(env!("CARGO_BIN_EXE_befit"))
+            .args(["check-bundle", dir.path().to_str().unwrap(), "--ort-lib"])
+            .arg(ort_lib())
+            .output()
+            .unwrap();
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(1), "{stderr}");
+        assert!(stderr.contains(want), "{want:?} not in {stderr}");
+    }
 }
 
 /// An earlier server waited forever at SIGTERM while one client stalled

@@ -137,7 +137,10 @@ async fn signals_and_the_combined_reward_follow_their_formulas() {
         assert!((f(&g["repeated_bigrams"]) - rb).abs() < 1e-6, "{i}: {g}");
         assert_eq!(g["tokens"], tokens, "{i}: {g}");
         assert!((f(&g["unknown_tokens"]) - unk).abs() < 1e-6, "{i}: {g}");
-        assert!(g.get("bank_cosine").is_none() && g.get("fluency").is_none());
+        // blocks-v1 has a fluency head: its probability is measured even at
+        // weight 0, and then moves no reward.
+        assert!(g.get("bank_cosine").is_none());
+        assert!((0.0..=1.0).contains(&f(&g["fluency"])), "{i}: {g}");
         // penalty = sum over crossed rules of weight * (s - above) / (1 - above);
         // length: weight * (below - tokens) / below.
         let mut penalty = 0.0;
@@ -262,11 +265,116 @@ async fn the_bank_cosine_is_the_nearest_bank_caption() {
     assert_eq!(first["flagged"], json!(["bank_cosine"]));
 }
 
+/// Golden texts of the fluency head with PyTorch's probabilities
+/// (`fixtures/golden/blocks-v1/fluency.json`): a true caption, a word
+/// repeated, a caption cut short and two templates spliced.
+fn fluency_goldens() -> Vec<(String, f64)> {
+    let golden: Value =
+        serde_json::from_slice(&read(fixtures().join("golden/blocks-v1/fluency.json"))).unwrap();
+    let texts = golden["texts"].as_array().unwrap();
+    ["true", "repeat", "cut", "splice"]
+        .iter()
+        .map(|set| {
+            let t = texts.iter().find(|t| t["set"] == *set).unwrap();
+            (
+                t["text"].as_str().unwrap().to_string(),
+                f(&t["probability"]),
+            )
+        })
+        .collect()
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn the_fluency_term_is_the_heads_probability_times_its_weight() {
+    let state = state();
+    let golden = fluency_goldens();
+    let captions: Vec<&str> = golden.iter().map(|(t, _)| t.as_str()).collect();
+    let row = &probe_rows("probe.jsonl")[1];
+    let lambda = 0.7;
+    let (status, body) = post_json(
+        &state,
+        "/v1/rewards",
+        &json!({"scale": {"kind": "clip-s", "weight": 2.5}, "baseline": "mean-of-others",
+                "guard": {"fluency_weight": lambda},
+                "groups": [{"image": {"path": row.image}, "captions": captions}]}),
+    )
+    .await;
+    assert_eq!(status, 200, "{body}");
+    assert_eq!(body["guard"]["fluency_weight"], json!(lambda));
+    let (status, vecs) = post_json(
+        &state,
+        "/v1/vectors",
+        &json!({"images": [{"path": row.image}], "texts": captions}),
+    )
+    .await;
+    assert_eq!(status, 200, "{vecs}");
+    let as_vec = |v: &Value| -> Vec<f32> {
+        v.as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap() as f32)
+            .collect()
+    };
+    let image = as_vec(&vecs["images"][0]["vector"]);
+    let mut rewards = Vec::new();
+    let samples = body["groups"][0]["samples"].as_array().unwrap();
+    for (i, (s, (text, p))) in samples.iter().zip(&golden).enumerate() {
+        let g = &s["guard"];
+        // The head as befit runs it gives PyTorch's probability (parity.rs
+        // checks the same to 1e-5 on the head alone).
+        assert!((f(&g["fluency"]) - p).abs() < 1e-5, "{text:?}: {g} vs {p}");
+        // reward = CLIP-S (Hessel et al. 2021, eq. 1: 2.5 * max(cos, 0)) of
+        // the raw cosine + lambda * fluency (Cho et al. 2022); no penalties.
+        let cos = cosine(&as_vec(&vecs["texts"][i]["vector"]), &image);
+        let reward = 2.5 * cos.max(0.0) + lambda * p;
+        assert!(
+            (f(&s["reward"]) - reward).abs() < 1e-4,
+            "{i}: {s} vs {reward}"
+        );
+        assert_eq!(
+            (g["penalty"].as_f64(), &g["flagged"]),
+            (Some(0.0), &json!([]))
+        );
+        rewards.push(reward);
+    }
+    // The true caption is well-formed, the edited ones are not.
+    assert!(golden[0].1 > 0.9, "{golden:?}");
+    assert!(golden[1..].iter().all(|(_, p)| *p < 0.1), "{golden:?}");
+    // Mean-of-others (Luo 2020) over the combined rewards.
+    let n = rewards.len() as f64;
+    for (i, s) in samples.iter().enumerate() {
+        let others = (rewards.iter().sum::<f64>() - rewards[i]) / (n - 1.0);
+        assert!(
+            (f(&s["advantage"]) - (rewards[i] - others)).abs() < 1e-4,
+            "{i}: {s}"
+        );
+    }
+}
+
+#[tokio::test(flavor = "multi_thread")]
+async fn a_fluency_weight_needs_a_bundle_with_a_head() {
+    let state = state_with(
+        &["blocks-v1", "clip-tiny"],
+        befit::server::Limits::default(),
+    );
+    let row = &probe_rows("probe.jsonl")[0];
+    let ask = |model: &str| {
+        json!({"model": model, "guard": {"fluency_weight": 0.5},
+               "groups": [{"image": {"path": row.image}, "captions": ["a red ring", "a cube"]}]})
+    };
+    let (status, body) = post_json(&state, "/v1/rewards", &ask("clip-tiny")).await;
+    assert_eq!(status, 400, "{body}");
+    assert_eq!(body["error"]["code"], "invalid_field");
+    assert_eq!(body["error"]["field"], "guard.fluency_weight", "{body}");
+    let (status, body) = post_json(&state, "/v1/rewards", &ask("blocks")).await;
+    assert_eq!(status, 200, "{body}");
+}
+
 #[tokio::test(flavor = "multi_thread")]
 async fn guard_fields_out_of_range_are_answered_with_their_field() {
     let state = state();
     let cases = [
-        (json!({"fluency_weight": 0.5}), "guard.fluency_weight"),
+        (json!({"fluency_weight": 10.5}), "guard.fluency_weight"),
         (
             json!({"penalties": {"bank_cosine": {"above": 0.9, "weight": 1}}}),
             "guard.penalties.bank_cosine",
@@ -309,7 +417,8 @@ async fn befit_score_applies_the_same_guard_as_the_route() {
     let row = &probe_rows("probe.jsonl")[1];
     let group = json!({"image": {"path": row.image},
         "captions": [row.captions[0], "ring ring ring ring", "a zorb"]});
-    let guard = json!({"penalties": {"repeated_words": {"above": 0.2, "weight": 1.5},
+    let guard = json!({"fluency_weight": 0.8,
+        "penalties": {"repeated_words": {"above": 0.2, "weight": 1.5},
         "unknown_tokens": {"above": 0.1, "weight": 1.0}}});
     let (status, http) = post_json(
         &state,
@@ -348,19 +457,43 @@ async fn befit_score_applies_the_same_guard_as_the_route() {
         "{line} vs {http}"
     );
     assert!(line["samples"][1]["guard"]["penalty"].as_f64().unwrap() > 0.0);
+    // Each reward by hand: scaled + 0.8 * fluency - penalty; the true caption
+    // is well-formed and the repeated word is not.
+    for s in line["samples"].as_array().unwrap() {
+        let g = &s["guard"];
+        let reward = f(&g["scaled"]) + 0.8 * f(&g["fluency"]) - f(&g["penalty"]);
+        assert!((f(&s["reward"]) - reward).abs() < 1e-5, "{s}");
+    }
+    let fluency = |i: usize| f(&line["samples"][i]["guard"]["fluency"]);
+    assert!(fluency(0) > 0.9 && fluency(1) < 0.1, "{line}");
     // A guard out of range stops the command with the field named.
     let bad = std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
         .args(["score", "--bundle"])
         .arg(bundle_dir("blocks-v1"))
         .arg("--input")
         .arg(&input)
-        .args(["--guard", "{\"fluency_weight\": 1}", "--ort-lib"])
+        .args(["--guard", "{\"fluency_weight\": 11}", "--ort-lib"])
         .arg(ort_lib())
         .output()
         .unwrap();
     let stderr = String::from_utf8_lossy(&bad.stderr);
     assert!(
         !bad.status.success() && stderr.contains("guard.fluency_weight"),
+        "{stderr}"
+    );
+    // A fluency weight on a bundle without a head (clip-tiny) is refused too.
+    let headless = std::process::Command::new(env!("CARGO_BIN_EXE_befit"))
+        .args(["score", "--bundle"])
+        .arg(bundle_dir("clip-tiny"))
+        .arg("--input")
+        .arg(&input)
+        .args(["--guard", "{\"fluency_weight\": 1}", "--ort-lib"])
+        .arg(ort_lib())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&headless.stderr);
+    assert!(
+        !headless.status.success() && stderr.contains("no fluency head"),
         "{stderr}"
     );
 }

@@ -419,3 +419,47 @@ async fn not_ready_until_the_engine_is_set() {
     let (status, _, _) = call(&state, "GET", "/healthz", "", vec![]).await;
     assert_eq!(status, 200);
 }
+
+/// Query strings and path segments the framework cannot read get the API's
+/// error body, not its plain-text rejection (found by the schema fuzzing of
+/// `tests/api/schema_fuzz.py`: `GET /v1/bank?id=-1` answered text/plain).
+#[tokio::test(flavor = "multi_thread")]
+async fn unreadable_queries_and_paths_get_the_error_body() {
+    let state = state_with(&["blocks-v1"], Limits::default());
+    let s = &state;
+    let json = expect(
+        s,
+        "GET",
+        "/v1/bank?id=-1",
+        "",
+        vec![],
+        400,
+        "invalid_field",
+        "id",
+    )
+    .await;
+    assert_eq!(json["error"]["field"], "id");
+    expect(
+        s,
+        "GET",
+        "/v1/bank?id=x",
+        "",
+        vec![],
+        400,
+        "invalid_field",
+        "whole number",
+    )
+    .await;
+    let json = expect(
+        s,
+        "GET",
+        "/v1/runs/%FF",
+        "",
+        vec![],
+        400,
+        "invalid_field",
+        "run name",
+    )
+    .await;
+    assert_eq!(json["error"]["field"], "name");
+}

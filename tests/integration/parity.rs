@@ -165,3 +165,72 @@ fn clip_tiny_matches_pytorch() {
     // Python side, tools/blocksworld/README.md), so its image cosine is held to 0.999.
     check("clip-tiny", 0.999);
 }
+
+#[derive(Deserialize)]
+struct FluencyGolden {
+    texts: Vec<FluencyText>,
+}
+
+#[derive(Deserialize)]
+struct FluencyText {
+    text: String,
+    ids: Vec<i64>,
+    probability: f32,
+}
+
+/// The fluency head's probabilities against PyTorch's
+/// (`fixtures/golden/<bundle>/fluency.json`, written by
+/// `tools/blocksworld/train_fluency.py` from the head's training code):
+/// befit's token ids, then the head run on each caption alone and on all of
+/// them padded into one batch.
+fn check_fluency(bundle: &str) {
+    let golden: FluencyGolden = serde_json::from_slice(&read(
+        fixtures().join("golden").join(bundle).join("fluency.json"),
+    ))
+    .unwrap();
+    let model = model(bundle);
+    let head = model.fluency_head().expect("the bundle has a fluency head");
+    let ids: Vec<Vec<i64>> = golden
+        .texts
+        .iter()
+        .map(|t| model.tokenize(&t.text).unwrap().ids)
+        .collect();
+    for (t, ours) in golden.texts.iter().zip(&ids) {
+        assert_eq!(ours, &t.ids, "{:?}", t.text);
+    }
+    let rows: Vec<&[i64]> = ids.iter().map(Vec::as_slice).collect();
+    let together = head.probabilities(&rows).unwrap();
+    let mut worst = 0f32;
+    for ((t, row), in_batch) in golden.texts.iter().zip(&rows).zip(together) {
+        let alone = head.probabilities(&[row]).unwrap()[0];
+        for got in [alone, in_batch] {
+            worst = worst.max((got - t.probability).abs());
+            assert!(
+                (got - t.probability).abs() < 1e-5,
+                "{:?}: {got} vs PyTorch {}",
+                t.text,
+                t.probability
+            );
+        }
+    }
+    // The goldens hold well-formed and edited captions alike, so the
+    // comparison covers both ends of the scale.
+    let probabilities: Vec<f32> = golden.texts.iter().map(|t| t.probability).collect();
+    assert!(probabilities.iter().any(|&p| p > 0.9) && probabilities.iter().any(|&p| p < 0.1));
+    eprintln!("{bundle}: fluency head within {worst:.1e} of PyTorch");
+}
+
+#[test]
+fn blocks_v1_fluency_head_matches_pytorch() {
+    check_fluency("blocks-v1");
+}
+
+#[test]
+fn blocks_v2_fluency_head_matches_pytorch() {
+    check_fluency("blocks-v2");
+}
+
+#[test]
+fn clip_tiny_has_no_fluency_head() {
+    assert!(model("clip-tiny").fluency_head().is_none());
+}

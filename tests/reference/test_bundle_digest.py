@@ -16,6 +16,8 @@ BUNDLES = sorted(p for p in (REPO / "fixtures" / "models").iterdir() if (p / "bu
 def reference_digest(bundle: pathlib.Path) -> str:
     manifest = tomllib.loads((bundle / "bundle.toml").read_text())
     names = ["bundle.toml", manifest["image"]["file"], manifest["text"]["file"], manifest["text"].get("tokenizer", "tokenizer.json")]
+    if "fluency" in manifest:  # the optional head comes last
+        names.append(manifest["fluency"]["file"])
     outer = hashlib.sha256()
     for name in names:
         outer.update(name.encode() + b"\0" + hashlib.sha256((bundle / name).read_bytes()).digest())

@@ -85,6 +85,11 @@ class Server:
             time.sleep(0.1)
         raise RuntimeError("befit did not become ready in 60 s")
 
+    def cpu_seconds(self) -> float:
+        """User + system CPU time of the server so far (/proc/PID/stat fields 14 and 15)."""
+        fields = Path(f"/proc/{self.proc.pid}/stat").read_text().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
     def peak_rss_mb(self) -> float:
         for line in Path(f"/proc/{self.proc.pid}/status").read_text().splitlines():
             if line.startswith("VmHWM:"):
@@ -355,11 +360,22 @@ def main() -> int:
         try:
             rows = [json.loads(l) for l in (REPO / "fixtures/probe/probe.jsonl").read_text().splitlines()[:16]]
             ids = [i["id"] for i in post(server.port, "/v1/images", {"images": [{"path": r["image"]} for r in rows]})[1]["images"]]
+            # CPU seconds of the server and of this generator in each phase: the two share the
+            # machine's cores, so successful requests per server CPU second tell befit's shedding
+            # apart from the generator's share of the cores.
+            cpu0, gen0 = server.cpu_seconds(), time.process_time()
             cap = capacity(server.port, ids)
+            cpu1, gen1 = server.cpu_seconds(), time.process_time()
             figures["capacity_per_s"] = cap
-            print(f"capacity: {cap:.1f} requests/s ({cap * GROUPS * CAPTIONS:.0f} captions/s)", flush=True)
+            cap_per_cpu = cap * CAPACITY_S / (cpu1 - cpu0)
+            print(f"capacity: {cap:.1f} requests/s ({cap * GROUPS * CAPTIONS:.0f} captions/s); "
+                  f"server {cpu1 - cpu0:.1f} CPU s, generator {gen1 - gen0:.1f} CPU s", flush=True)
             load = open_loop(server.port, ids, 3 * cap, LOAD_S, 40_000_000)
+            cpu2, gen2 = server.cpu_seconds(), time.process_time()
             load["ok_over_capacity"] = load["ok_per_s"] / cap
+            load["server_cpu_s"], load["generator_cpu_s"] = cpu2 - cpu1, gen2 - gen1
+            load["ok_per_server_cpu_s_over_capacity"] = (
+                load["accepted"] / (cpu2 - cpu1) / cap_per_cpu)
             figures["load_3x"] = load
             print(f"3x load: {json.dumps(load)}", flush=True)
             if args.load_only:

@@ -60,3 +60,16 @@ def versions() -> dict:
         except metadata.PackageNotFoundError:
             pass
     return out
+
+
+def fluency_toml() -> str:
+    """The `[fluency]` section of a bundle whose head is `fluency.onnx` (docs/bundles.md)."""
+    lines = [
+        "[fluency]",
+        'file = "fluency.onnx"',
+        'ids_input = "input_ids"',
+        'mask_input = "attention_mask"',
+        'output = "probability"',
+        "",
+    ]
+    return "\n".join(lines)

@@ -8,8 +8,11 @@ and the image graph run on the stored tensor gives the stored embedding. For
 each golden text: the tokenizer gives the stored ids, mask and truncation, and
 the text graph gives the stored embedding, alone and padded inside one batch
 of all golden texts (the tokenizer part is skipped, with a note, when the
-`tokenizers` package is not installed). Embeddings must agree within TOLERANCE (cosine space,
-after L2 normalisation). Exits non-zero on the first bundle that fails.
+`tokenizers` package is not installed). A bundle with a fluency head
+(`fluency.json` beside the goldens) also gets each text's probability from
+its head, alone and padded in one batch, against PyTorch's. Embeddings must
+agree within TOLERANCE (cosine space, after L2 normalisation). Exits non-zero
+on the first bundle that fails.
 """
 
 from __future__ import annotations
@@ -26,6 +29,8 @@ from evaluate import OrtBundle
 from intake import Encoded, encode, image_tensor, pad
 
 TOLERANCE = 1e-4
+# Probabilities (after the sigmoid), as befit's parity test holds them.
+FLUENCY_TOLERANCE = 1e-5
 # Pillow is deterministic on one version; across versions resampling may move
 # a pixel by an ulp or so.
 TENSOR_TOLERANCE = 1e-5
@@ -86,6 +91,44 @@ def check(golden_dir: Path, models: Path) -> list[str]:
                 problems.append(f"{t['text']!r}: text embedding {how} differs by {diff:.2e}")
     print(f"{golden['bundle']}: {len(golden['images'])} images, {len(golden['texts'])} texts, "
           f"largest difference {worst:.1e}{'' if not problems else ', FAILED'}")
+    if (golden_dir / "fluency.json").exists():
+        problems += check_fluency(golden_dir / "fluency.json", bundle)
+    return problems
+
+
+def check_fluency(path: Path, bundle: OrtBundle) -> list[str]:
+    """The fluency head (`[fluency]`) against PyTorch's probabilities, alone and padded in one batch."""
+    import onnxruntime as ort
+
+    golden = json.loads(path.read_text())
+    spec = bundle.config.get("fluency")
+    if spec is None:
+        return [f"{path} exists but bundle.toml has no [fluency] section"]
+    head = ort.InferenceSession(str(bundle.folder / spec["file"]), providers=["CPUExecutionProvider"])
+
+    def run(encoded: list[Encoded]) -> np.ndarray:
+        ids, mask = pad(encoded, bundle.text_spec)
+        feeds = {spec["ids_input"]: ids}
+        if spec.get("mask_input"):
+            feeds[spec["mask_input"]] = mask
+        return head.run([spec["output"]], feeds)[0]
+
+    problems, worst = [], 0.0
+    texts = [t["text"] for t in golden["texts"]]
+    if tokenizers_available():
+        for t, enc in zip(golden["texts"], encode(bundle.tokenizer, texts, bundle.text_spec)):
+            if enc.ids != t["ids"]:
+                problems.append(f"fluency {t['text']!r}: tokenizer gives {enc.ids}")
+    stored = [Encoded(t["ids"], False) for t in golden["texts"]]
+    together = run(stored)
+    for t, e, in_batch in zip(golden["texts"], stored, together):
+        for how, got in (("alone", run([e])[0]), ("padded in a batch", in_batch)):
+            diff = abs(float(got) - t["probability"])
+            worst = max(worst, diff)
+            if diff > FLUENCY_TOLERANCE:
+                problems.append(f"fluency {t['text']!r}: probability {how} differs by {diff:.2e}")
+    print(f"{golden['bundle']}: fluency head, {len(texts)} texts, largest difference {worst:.1e}"
+          f"{'' if not problems else ', FAILED'}")
     return problems
 
 

@@ -69,6 +69,19 @@ class PlaceHead(nn.Module):
         return self.linear(embedding).view(-1, self.kinds, 4)
 
 
+def last_and_mean(states: torch.Tensor, attention_mask: torch.Tensor) -> torch.Tensor:
+    """[batch, tokens, width] states of a one-way RNN -> [batch, 2 * width]: the
+    state at the last real token and the mean over real tokens."""
+    mask = attention_mask.to(states.dtype)
+    length = mask.sum(dim=1, keepdim=True).clamp(min=1.0)
+    # The last real token is where the running count of real tokens reaches
+    # the length; a one-hot select exports to plain ONNX ops.
+    last_hot = (mask.cumsum(dim=1) == length).to(states.dtype) * mask
+    last = (states * last_hot.unsqueeze(-1)).sum(dim=1)
+    mean = (states * mask.unsqueeze(-1)).sum(dim=1) / length
+    return torch.cat([last, mean], dim=-1)
+
+
 class TextEncoder(nn.Module):
     """int64 ids and mask [batch, tokens], right padded -> [batch, dim] unit vectors."""
 
@@ -80,14 +93,7 @@ class TextEncoder(nn.Module):
 
     def forward(self, input_ids: torch.Tensor, attention_mask: torch.Tensor) -> torch.Tensor:
         states, _ = self.gru(self.embed(input_ids))
-        mask = attention_mask.to(states.dtype)
-        length = mask.sum(dim=1, keepdim=True).clamp(min=1.0)
-        # The last real token is where the running count of real tokens reaches
-        # the length; a one-hot select exports to plain ONNX ops.
-        last_hot = (mask.cumsum(dim=1) == length).to(states.dtype) * mask
-        last = (states * last_hot.unsqueeze(-1)).sum(dim=1)
-        mean = (states * mask.unsqueeze(-1)).sum(dim=1) / length
-        return F.normalize(self.proj(torch.cat([last, mean], dim=-1)), dim=-1)
+        return F.normalize(self.proj(last_and_mean(states, attention_mask)), dim=-1)
 
 
 class ClipImage(nn.Module):

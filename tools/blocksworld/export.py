@@ -34,8 +34,11 @@ TOLERANCE = 1e-4
 
 
 def _export(
-    module: torch.nn.Module, args: tuple, path: Path, inputs: list[str], output: str, token_axis: bool, dimension: int
+    module: torch.nn.Module, args: tuple, path: Path, inputs: list[str], output: str, token_axis: bool,
+    dimension: int | None,
 ) -> None:
+    """ONNX of `module` with dynamic batch (and token) axes; `dimension` states an
+    embedding output's width (None: a `[batch]` output)."""
     axes = {name: ({0: "batch", 1: "tokens"} if token_axis else {0: "batch"}) for name in inputs}
     axes[output] = {0: "batch"}
     torch.onnx.export(
@@ -56,7 +59,8 @@ def _export(
     for node in model.graph.node:
         node.doc_string = ""
     # The exporter leaves the embedding width symbolic; state it.
-    model.graph.output[0].type.tensor_type.shape.dim[1].dim_value = dimension
+    if dimension is not None:
+        model.graph.output[0].type.tensor_type.shape.dim[1].dim_value = dimension
     model.producer_version = ""
     onnx.save(model, str(path))
 

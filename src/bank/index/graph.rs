@@ -76,7 +76,7 @@ pub(super) fn best_k(found: impl Iterator<Item = (RowId, f32)>, k: usize) -> Vec
 
 /// Which library holds the graph. A dump records it and is only read by the
 /// same backend; opening with another one rebuilds the graph from the rows.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum IndexBackend {
     /// hnsw_rs, pure Rust.

@@ -58,7 +58,7 @@ use graph::Graph;
 use persistence::DumpState;
 
 /// Numbers for `GET /v1/bank`.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct IndexStats {
     /// Bundle digest.
     pub digest: String,

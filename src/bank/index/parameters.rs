@@ -87,7 +87,7 @@ pub const MAX_EF_CONSTRUCTION: usize = 10_000;
 pub const MAX_BUILD_THREADS: usize = 256;
 
 /// Build and search settings.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct IndexParams {
     /// HNSW `M` ([`DEFAULT_MAX_CONNECTIONS`]).
     pub max_connections: usize,

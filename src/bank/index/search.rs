@@ -44,7 +44,7 @@ impl FilterWalk {
 }
 
 /// How a search was answered, reported with its hits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum Answered {
     /// Through the HNSW graph.

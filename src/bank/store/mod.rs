@@ -76,7 +76,7 @@ pub enum StoreError {
 }
 
 /// A caption as stored.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct Caption {
     /// Stable id (the same for every bundle).
     pub id: RowId,

@@ -34,7 +34,7 @@ pub const AUDIT_TARGET: &str = "befit::audit";
 /// What a route asks of its caller.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Need {
-    /// Nothing: health probes and the live page's static files (they hold no data).
+    /// Nothing: health probes, the API document and the live page's static files (they hold no data).
     Open,
     /// Any valid key.
     AnyKey,
@@ -48,7 +48,8 @@ pub fn need(method: &Method, route: Option<&str>) -> Need {
     let post = method == Method::POST;
     match route {
         Some(
-            "/healthz" | "/readyz" | "/" | "/page/live.js" | "/page/live.css" | "/page/icon.svg",
+            "/healthz" | "/readyz" | "/openapi.json" | "/" | "/page/live.js" | "/page/live.css"
+            | "/page/icon.svg",
         ) if get => Need::Open,
         Some("/v1/images" | "/v1/rewards" | "/v1/vectors" | "/v1/neighbors") if post => {
             Need::Scope(Scope::Scoring)

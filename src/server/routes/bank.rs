@@ -3,16 +3,19 @@
 
 use std::sync::Arc;
 
+use axum::extract::rejection::QueryRejection;
 use axum::extract::{Query, State};
 use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
-use serde_json::{json, Value};
+use utoipa::{IntoParams, ToSchema};
 
 use super::ModelRef;
 use crate::bank::index::{check_query_count, unit_vector};
+use crate::bank::index::{Answered, IndexStats};
+use crate::bank::store::Caption;
 use crate::bank::{
-    check_tag, BankAnswer, BankQuery, IndexError, ModelBank, NewCaption, SearchMode,
+    check_tag, BankAnswer, BankHit, BankQuery, IndexError, ModelBank, NewCaption, SearchMode,
 };
 use crate::encoders::Model;
 use crate::intake::image_source::{sources, ImageRef};
@@ -20,7 +23,8 @@ use crate::intake::limits::Limit;
 use crate::intake::validation::{Invalid, Problem};
 use crate::server::access::{self, Caller};
 use crate::server::error::{ApiError, ErrorCode};
-use crate::server::json::ApiJson;
+use crate::server::json::{unreadable, ApiJson};
+use crate::service::backfill::Progress;
 use crate::service::Service;
 
 /// A tag of the request, checked by the bank's rule before any embedding.
@@ -35,14 +39,15 @@ fn tag_ok(tag: &str, field: &str) -> Result<(), Invalid> {
     })
 }
 
-#[derive(Deserialize)]
+/// A caption to add: its text alone, or with a tag of its own.
+#[derive(Deserialize, ToSchema)]
 #[serde(untagged)]
 enum CaptionIn {
     Text(String),
     Tagged { text: String, tag: Option<String> },
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct AppendRequest {
     model: Option<String>,
@@ -50,10 +55,18 @@ pub struct AppendRequest {
     captions: Vec<CaptionIn>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 struct AppendedOut {
     id: u64,
+    /// False when the bank already had the text with a vector for this model.
     new: bool,
+}
+
+/// The captions appended, in the request's order.
+#[derive(Serialize, ToSchema)]
+pub struct AppendAnswer {
+    model: ModelRef,
+    captions: Vec<AppendedOut>,
 }
 
 async fn blocking<T: Send + 'static>(
@@ -71,11 +84,13 @@ fn model_bank(service: &Service, model: &Model) -> Result<Arc<ModelBank>, ApiErr
         .ok_or_else(ApiError::not_ready)
 }
 
+#[utoipa::path(post, path = "/v1/bank", operation_id = "append_captions", tag = "bank", request_body = AppendRequest,
+    responses((status = 200, body = AppendAnswer), super::Failure))]
 pub async fn append(
     State(service): State<Service>,
     caller: Option<Extension<Caller>>,
     ApiJson(request): ApiJson<AppendRequest>,
-) -> Result<Json<Value>, ApiError> {
+) -> Result<Json<AppendAnswer>, ApiError> {
     let engine = service.engine()?;
     let limits = service.limits();
     let model = engine.model(request.model.as_deref())?;
@@ -118,27 +133,65 @@ pub async fn append(
             new: a.new,
         })
         .collect();
-    Ok(Json(json!({"model": ModelRef::of(model), "captions": out})))
+    Ok(Json(AppendAnswer {
+        model: ModelRef::of(model),
+        captions: out,
+    }))
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, IntoParams)]
+#[into_params(parameter_in = Query)]
 pub struct StatsQuery {
+    /// A caption's id: answer that caption instead of the bank's numbers.
     id: Option<u64>,
 }
 
+/// `GET /v1/bank`: the bank's numbers, or one caption when `id` is given.
+#[derive(Serialize, ToSchema)]
+#[serde(untagged)]
+pub enum BankView {
+    Summary(BankSummary),
+    Caption(Caption),
+}
+
+/// The bank's numbers (also the live page's bank section).
+#[derive(Serialize, ToSchema)]
+pub struct BankSummary {
+    /// Distinct captions in the store.
+    captions: u64,
+    /// Size of `bank.sqlite`, in bytes.
+    file_bytes: u64,
+    /// Captions per tag.
+    tags: std::collections::BTreeMap<String, u64>,
+    /// One entry per loaded model index.
+    models: Vec<BankModel>,
+}
+
+/// One model's index of the bank.
+#[derive(Serialize, ToSchema)]
+pub struct BankModel {
+    /// The loaded model with this digest (none when no loaded bundle has it).
+    model: Option<ModelRef>,
+    index: IndexStats,
+    /// Its backfill, when captions lacked its vectors at start.
+    backfill: Option<Progress>,
+}
+
+#[utoipa::path(get, path = "/v1/bank", operation_id = "bank", tag = "bank", params(StatsQuery),
+    responses((status = 200, body = BankView), super::Failure))]
 pub async fn stats(
     State(service): State<Service>,
-    Query(query): Query<StatsQuery>,
-) -> Result<Json<Value>, ApiError> {
+    query: Result<Query<StatsQuery>, QueryRejection>,
+) -> Result<Json<BankView>, ApiError> {
+    let Query(query) = query
+        .map_err(|e| unreadable("id", "a caption id (a whole number from 0)", e.body_text()))?;
     let Some(id) = query.id else {
-        return Ok(Json(summary(&service).await?));
+        return Ok(Json(BankView::Summary(summary(&service).await?)));
     };
     let bank = service.bank()?.clone();
     let caption = blocking(move || bank.caption(id).map_err(ApiError::from)).await?;
     match caption {
-        Some(c) => Ok(Json(
-            json!({"id": c.id, "text": c.text, "tags": c.tags, "added_unix_ms": c.added_unix_ms}),
-        )),
+        Some(c) => Ok(Json(BankView::Caption(c))),
         None => Err(ApiError::new(
             ErrorCode::NotFound,
             format!("no caption with id {id} in the bank"),
@@ -147,34 +200,34 @@ pub async fn stats(
 }
 
 /// The bank's numbers as `GET /v1/bank` answers them (also the live page's bank section).
-pub async fn summary(service: &Service) -> Result<Value, ApiError> {
+pub async fn summary(service: &Service) -> Result<BankSummary, ApiError> {
     let engine = Arc::clone(service.engine()?);
     let bank = service.bank()?.clone();
     let backfills = service.backfills();
     let stats = blocking(move || bank.stats().map_err(ApiError::from)).await?;
-    let models: Vec<Value> = stats
+    let models = stats
         .models
-        .iter()
-        .map(|index| {
-            let model = engine
+        .into_iter()
+        .map(|index| BankModel {
+            model: engine
                 .models()
                 .iter()
                 .find(|m| m.bundle.digest == index.digest)
-                .map(|m| ModelRef::of(m));
-            json!({"model": model, "index": index, "backfill": backfills.progress(&index.digest)})
+                .map(|m| ModelRef::of(m)),
+            backfill: backfills.progress(&index.digest),
+            index,
         })
         .collect();
-    let tags: serde_json::Map<String, Value> = stats
-        .tags
-        .iter()
-        .map(|(t, n)| (t.clone(), json!(n)))
-        .collect();
-    Ok(
-        json!({"captions": stats.captions, "file_bytes": stats.file_bytes, "tags": tags, "models": models}),
-    )
+    Ok(BankSummary {
+        captions: stats.captions,
+        file_bytes: stats.file_bytes,
+        tags: stats.tags.into_iter().collect(),
+        models,
+    })
 }
 
-#[derive(Deserialize)]
+/// One query (`text`, `image` or `vector`) or a batch (`texts`, `images` or `vectors`).
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct NeighborsRequest {
     model: Option<String>,
@@ -194,7 +247,7 @@ pub struct NeighborsRequest {
 }
 
 /// What a neighbour query searches.
-#[derive(Deserialize, Default, Clone, Copy, PartialEq, Eq)]
+#[derive(Deserialize, Default, Clone, Copy, PartialEq, Eq, ToSchema)]
 #[serde(rename_all = "lowercase")]
 enum Among {
     #[default]
@@ -311,10 +364,89 @@ fn vector_fault(e: IndexError, field: String) -> ApiError {
     }
 }
 
+/// Nearest captions (or images) of one query: the single form's answer, and
+/// each entry of a batch's `results`.
+#[derive(Serialize, ToSchema)]
+pub struct Found {
+    /// How the search was answered: by the graph or by the exact scan.
+    answered: Answered,
+    /// Breadth used (0 for the exact scan).
+    ef_search: usize,
+    /// Best first.
+    neighbors: Vec<Hit>,
+}
+
+/// A caption of the bank, or a registered image (`among: "images"`).
+#[derive(Serialize, ToSchema)]
+#[serde(untagged)]
+enum Hit {
+    Caption(BankHit),
+    Image(ImageHit),
+}
+
+/// A registered image near the query (`among: "images"`).
+#[derive(Serialize, ToSchema)]
+struct ImageHit {
+    id: String,
+    cosine: f32,
+}
+
+/// The answer of `POST /v1/neighbors`: one query's hits, or a batch's `results` in order.
+#[derive(Serialize, ToSchema)]
+#[serde(untagged)]
+pub enum NeighborsAnswer {
+    One(OneAnswer),
+    Many(ManyAnswer),
+}
+
+/// The answer to `text`, `image` or `vector`.
+#[derive(Serialize, ToSchema)]
+pub struct OneAnswer {
+    model: ModelRef,
+    /// True while the model's bank is still being backfilled (absent for `among: "images"`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    partial: Option<bool>,
+    #[serde(flatten)]
+    found: Found,
+}
+
+/// The answer to `texts`, `images` or `vectors`.
+#[derive(Serialize, ToSchema)]
+pub struct ManyAnswer {
+    model: ModelRef,
+    /// True while the model's bank is still being backfilled (absent for `among: "images"`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    partial: Option<bool>,
+    results: Vec<Found>,
+}
+
+impl NeighborsAnswer {
+    fn new(model: &Model, partial: Option<bool>, mut found: Vec<Found>, batch: bool) -> Self {
+        let model = ModelRef::of(model);
+        match found.pop() {
+            Some(one) if !batch => NeighborsAnswer::One(OneAnswer {
+                model,
+                partial,
+                found: one,
+            }),
+            last => {
+                found.extend(last);
+                NeighborsAnswer::Many(ManyAnswer {
+                    model,
+                    partial,
+                    results: found,
+                })
+            }
+        }
+    }
+}
+
+#[utoipa::path(post, path = "/v1/neighbors", operation_id = "neighbors", tag = "bank", request_body = NeighborsRequest,
+    responses((status = 200, body = NeighborsAnswer), super::Failure))]
 pub async fn neighbors(
     State(service): State<Service>,
     ApiJson(request): ApiJson<NeighborsRequest>,
-) -> Result<Json<Value>, ApiError> {
+) -> Result<Json<NeighborsAnswer>, ApiError> {
     let engine = service.engine()?;
     let model = engine.model(request.model.as_deref())?;
     let mode = if request.exact {
@@ -332,52 +464,45 @@ pub async fn neighbors(
     q.check()?;
     let Queries { vectors, batch } = queries(&service, model, &request).await?;
     if request.among == Among::Images {
-        let mut results = Vec::with_capacity(vectors.len());
+        let mut found = Vec::with_capacity(vectors.len());
         for query in vectors {
             let hits = engine.nearest_images(model, query, request.k).await?;
-            let neighbors: Vec<Value> = hits
-                .iter()
-                .map(|h| json!({"id": h.id, "cosine": h.cosine}))
-                .collect();
-            results.push(neighbors);
+            found.push(Found {
+                answered: Answered::Exact,
+                ef_search: 0,
+                neighbors: hits
+                    .iter()
+                    .map(|h| {
+                        Hit::Image(ImageHit {
+                            id: h.id.clone(),
+                            cosine: h.cosine,
+                        })
+                    })
+                    .collect(),
+            });
         }
-        if !batch {
-            let neighbors = results.pop().unwrap_or_default();
-            return Ok(Json(
-                json!({"model": ModelRef::of(model), "answered": "exact", "ef_search": 0, "neighbors": neighbors}),
-            ));
-        }
-        let results: Vec<Value> = results
-            .into_iter()
-            .map(|neighbors| json!({"answered": "exact", "ef_search": 0, "neighbors": neighbors}))
-            .collect();
-        return Ok(Json(
-            json!({"model": ModelRef::of(model), "results": results}),
-        ));
+        return Ok(Json(NeighborsAnswer::new(model, None, found, batch)));
     }
     let bank = model_bank(&service, model)?;
     let partial = service.backfills().partial(&model.bundle.digest);
-    if !batch {
+    let answers: Vec<BankAnswer> = if batch {
+        blocking(move || bank.search_many(&vectors, &q).map_err(ApiError::from)).await?
+    } else {
         let query = vectors.into_iter().next().unwrap_or_default();
-        let answer: BankAnswer =
-            blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?;
-        return Ok(Json(json!({
-            "model": ModelRef::of(model),
-            "answered": answer.answered,
-            "ef_search": answer.ef_search,
-            "partial": partial,
-            "neighbors": answer.hits,
-        })));
-    }
-    let answers: Vec<BankAnswer> =
-        blocking(move || bank.search_many(&vectors, &q).map_err(ApiError::from)).await?;
-    let results: Vec<Value> = answers
-        .iter()
-        .map(|a| json!({"answered": a.answered, "ef_search": a.ef_search, "neighbors": a.hits}))
+        vec![blocking(move || bank.search(&query, &q).map_err(ApiError::from)).await?]
+    };
+    let found = answers
+        .into_iter()
+        .map(|a| Found {
+            answered: a.answered,
+            ef_search: a.ef_search,
+            neighbors: a.hits.into_iter().map(Hit::Caption).collect(),
+        })
         .collect();
-    Ok(Json(json!({
-        "model": ModelRef::of(model),
-        "partial": partial,
-        "results": results,
-    })))
+    Ok(Json(NeighborsAnswer::new(
+        model,
+        Some(partial),
+        found,
+        batch,
+    )))
 }

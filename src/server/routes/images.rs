@@ -9,6 +9,7 @@ use axum::http::{header, HeaderMap};
 use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
 
 use crate::encoders::{ImageSource, Registered};
 use crate::intake::image_source::{sources, ImageRef};
@@ -19,23 +20,26 @@ use crate::server::error::{ApiError, ErrorCode};
 use crate::server::json::{body_rejection, is_json, parse_json};
 use crate::service::Service;
 
-#[derive(Deserialize)]
+/// Images to register, by content (`base64`) or by file (`path` under `--image-root`).
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
-struct RegisterRequest {
+pub struct RegisterRequest {
     images: Vec<ImageRef>,
     model: Option<String>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 pub struct RegisterResponse {
     images: Vec<RegisteredOut>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 struct RegisteredOut {
+    /// The image's content id (sha256 of its bytes), for `{"id": ...}` later.
     id: String,
     width: u32,
     height: u32,
+    /// False when the image was registered before.
     new: bool,
 }
 
@@ -50,6 +54,11 @@ impl From<Registered> for RegisteredOut {
     }
 }
 
+/// One image file as the whole body (for the API document: the handler reads raw bytes).
+#[derive(ToSchema)]
+#[schema(value_type = String, format = Binary)]
+pub struct ImageFile(#[allow(dead_code)] Vec<u8>);
+
 /// Media types taken as one raw image file.
 const RAW_IMAGE_TYPES: [&str; 4] = [
     "image/png",
@@ -58,6 +67,15 @@ const RAW_IMAGE_TYPES: [&str; 4] = [
     "application/octet-stream",
 ];
 
+#[utoipa::path(post, path = "/v1/images", operation_id = "register_images", tag = "scoring",
+    request_body(content(
+        (RegisterRequest = "application/json"),
+        (ImageFile = "image/png"),
+        (ImageFile = "image/jpeg"),
+        (ImageFile = "image/webp"),
+        (ImageFile = "application/octet-stream"),
+    )),
+    responses((status = 200, body = RegisterResponse), super::Failure))]
 pub async fn register(
     State(service): State<Service>,
     caller: Option<Extension<Caller>>,

@@ -91,12 +91,17 @@ pub async fn icon() -> Response {
 }
 
 /// Other query parameters are ignored, as GET routes commonly do.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, utoipa::IntoParams)]
+#[into_params(parameter_in = Query)]
 pub struct PulseQuery {
     /// Seconds of history, one point per second.
     seconds: Option<u64>,
 }
 
+/// The live page's feed. Its shape follows the page and may change between
+/// versions: scripts should use `/metrics`, `/v1/runs` and `/v1/bank`.
+#[utoipa::path(get, path = "/v1/pulse", operation_id = "pulse", tag = "watch", params(PulseQuery),
+    responses((status = 200, body = Object), super::Failure))]
 pub async fn pulse(
     State(service): State<Service>,
     query: Result<Query<PulseQuery>, QueryRejection>,
@@ -137,7 +142,7 @@ pub async fn pulse(
     };
     // The bank's indexes load after the engine: until then it has no numbers.
     let bank = if service.bank().is_ok() {
-        super::bank::summary(&service).await?
+        json!(super::bank::summary(&service).await?)
     } else {
         Value::Null
     };

@@ -13,11 +13,13 @@ pub mod statistics;
 pub mod vectors;
 
 use serde::Serialize;
+use utoipa::{IntoResponses, ToSchema};
 
 use crate::encoders::Model;
+use crate::server::error::ErrorBody;
 
 /// How answers name the model they used, so a run can log its reward model.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, ToSchema)]
 pub struct ModelRef {
     pub id: String,
     pub name: String,
@@ -35,4 +37,16 @@ impl ModelRef {
             digest: model.bundle.digest.clone(),
         }
     }
+}
+
+/// The answers that are not a success, as the API document lists them: the
+/// status comes from `error.code` (the table of `proto-free-api.md`).
+#[derive(IntoResponses)]
+pub enum Failure {
+    /// The request was refused; `error.code` says why and `error.field` where.
+    #[response(status = "4XX")]
+    Refused(#[to_schema] ErrorBody),
+    /// The server could not answer now (overloaded, not ready, storage full) or failed.
+    #[response(status = "5XX")]
+    Failed(#[to_schema] ErrorBody),
 }

@@ -5,6 +5,7 @@ use std::sync::Arc;
 use axum::extract::State;
 use axum::Json;
 use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
 
 use super::ModelRef;
 use crate::runs::{record_scored, RunReport, RunTag, Thresholds, Warning};
@@ -17,7 +18,7 @@ use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
 use crate::service::Service;
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RewardsRequest {
     pub model: Option<String>,
@@ -35,7 +36,7 @@ pub struct RewardsRequest {
     pub groups: Vec<GroupJson>,
 }
 
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, ToSchema)]
 pub struct RewardsResponse {
     pub model: ModelRef,
     pub scale: Scale,
@@ -54,6 +55,8 @@ pub struct RewardsResponse {
     pub warnings: Option<Vec<Warning>>,
 }
 
+#[utoipa::path(post, path = "/v1/rewards", operation_id = "rewards", tag = "scoring", request_body = RewardsRequest,
+    responses((status = 200, body = RewardsResponse), super::Failure))]
 pub async fn score(
     State(service): State<Service>,
     ApiJson(request): ApiJson<RewardsRequest>,
@@ -78,8 +81,8 @@ pub async fn score(
         .and_then(|bank| bank.loaded(&model.bundle.digest));
     let mut spec = RewardSpec::new(request.scale, request.baseline, remap)?;
     if let Some(json) = request.guard {
-        // No bundle carries a fluency head yet: a fluency weight is refused.
-        spec = spec.with_guard(Guard::new(json, None, BankNearest::of(bank.clone()))?);
+        let nearest = BankNearest::of(bank.clone());
+        spec = spec.with_guard(Guard::new(json, model.fluency_head(), nearest)?);
     }
     let groups = request
         .groups

@@ -1,20 +1,24 @@
 //! `GET /v1/runs` and `GET /v1/runs/NAME`: the run watch's runs and one
 //! run's steps, filterable by step range.
 
-use axum::extract::rejection::QueryRejection;
+use axum::extract::rejection::{PathRejection, QueryRejection};
 use axum::extract::{Path, Query, State};
 use axum::Json;
 use serde::{Deserialize, Serialize};
+use utoipa::{IntoParams, ToSchema};
 
 use crate::runs::{RunInfo, StepSummary, MAX_SERIES_STEPS};
-use crate::server::error::{ApiError, ErrorCode};
+use crate::server::error::ApiError;
+use crate::server::json::unreadable;
 use crate::service::Service;
 
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, ToSchema)]
 pub struct RunsAnswer {
     pub runs: Vec<RunInfo>,
 }
 
+#[utoipa::path(get, path = "/v1/runs", operation_id = "runs", tag = "runs",
+    responses((status = 200, body = RunsAnswer), super::Failure))]
 pub async fn list(State(service): State<Service>) -> Result<Json<RunsAnswer>, ApiError> {
     let watch = service.runs().clone();
     let runs = tokio::task::spawn_blocking(move || watch.list())
@@ -24,14 +28,15 @@ pub async fn list(State(service): State<Service>) -> Result<Json<RunsAnswer>, Ap
 }
 
 /// The step range of `GET /v1/runs/NAME`, both ends included.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, IntoParams)]
 #[serde(deny_unknown_fields)]
+#[into_params(parameter_in = Query)]
 pub struct StepRange {
     pub from: Option<u64>,
     pub to: Option<u64>,
 }
 
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, ToSchema)]
 pub struct RunAnswer {
     #[serde(flatten)]
     pub run: RunInfo,
@@ -40,18 +45,17 @@ pub struct RunAnswer {
     pub series: Vec<StepSummary>,
 }
 
+#[utoipa::path(get, path = "/v1/runs/{name}", operation_id = "run_series", tag = "runs",
+    params(("name" = String, Path, description = "The run's name"), StepRange),
+    responses((status = 200, body = RunAnswer), super::Failure))]
 pub async fn series(
     State(service): State<Service>,
-    Path(name): Path<String>,
+    name: Result<Path<String>, PathRejection>,
     range: Result<Query<StepRange>, QueryRejection>,
 ) -> Result<Json<RunAnswer>, ApiError> {
-    let Query(range) = range.map_err(|e| {
-        ApiError::new(
-            ErrorCode::InvalidField,
-            format!("from and to must be whole steps from 0: {}", e.body_text()),
-        )
-        .at("from")
-    })?;
+    let Path(name) = name.map_err(|e| unreadable("name", "a run name in UTF-8", e.body_text()))?;
+    let Query(range) =
+        range.map_err(|e| unreadable("from", "a whole step from 0, as is to", e.body_text()))?;
     let watch = service.runs().clone();
     let (from, to) = (range.from.unwrap_or(0), range.to.unwrap_or(u64::MAX));
     let (run, series) = tokio::task::spawn_blocking(move || watch.series(&name, from, to))

@@ -11,6 +11,7 @@ use axum::Extension;
 use axum::Json;
 use serde::{Deserialize, Serialize};
 use serde_json::Value;
+use utoipa::ToSchema;
 
 use super::ModelRef;
 use crate::encoders::offline::EngineProbeEncoder;
@@ -31,7 +32,7 @@ use crate::stats::{
 
 /// What a statistics route answers: the JSON report, or the same HTML page
 /// as `befit calibrate --report` / `befit drift --report`.
-#[derive(Deserialize, Default, Clone, Copy, PartialEq, Eq)]
+#[derive(Deserialize, Default, Clone, Copy, PartialEq, Eq, ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum ReportFormat {
     /// The JSON body of `docs/statistics.md`.
@@ -57,10 +58,12 @@ fn html_page(page: String) -> Response {
     ([(CONTENT_TYPE, "text/html; charset=utf-8")], page).into_response()
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct CalibrationRequest {
     model: Option<String>,
+    /// The probe rows, as the lines of a probe file (`docs/statistics.md`).
+    #[schema(value_type = Vec<Object>)]
     probe: Vec<Value>,
     #[serde(default)]
     options: CalibrationOptions,
@@ -70,18 +73,20 @@ pub struct CalibrationRequest {
     format: ReportFormat,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 pub struct CalibrationResponse {
     model: ModelRef,
     skipped: Vec<String>,
     report: CalibrationReport,
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct DriftRequest {
     from: String,
     to: String,
+    /// The probe rows, as the lines of a probe file (`docs/statistics.md`).
+    #[schema(value_type = Vec<Object>)]
     probe: Vec<Value>,
     #[serde(default)]
     options: DriftOptions,
@@ -93,7 +98,7 @@ pub struct DriftRequest {
 }
 
 /// Keeps the fitted map under a name `/v1/rewards` accepts as `remap`.
-#[derive(Deserialize)]
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct SaveMap {
     name: String,
@@ -104,7 +109,7 @@ pub struct SaveMap {
     replace: bool,
 }
 
-#[derive(Deserialize, Default, Clone, Copy)]
+#[derive(Deserialize, Default, Clone, Copy, ToSchema)]
 #[serde(rename_all = "lowercase")]
 enum MapKind {
     #[default]
@@ -112,7 +117,7 @@ enum MapKind {
     Affine,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 pub struct DriftResponse {
     from: ModelRef,
     to: ModelRef,
@@ -183,6 +188,14 @@ async fn embed_with(
     Ok((embedded.vectors, embedded.skipped))
 }
 
+#[utoipa::path(post, path = "/v1/calibration", operation_id = "calibration", tag = "statistics", request_body = CalibrationRequest,
+    responses(
+        (status = 200, content(
+            (CalibrationResponse = "application/json"),
+            (String = "text/html", example = "<!doctype html>..."),
+        )),
+        super::Failure,
+    ))]
 pub async fn calibration(
     State(service): State<Service>,
     ApiJson(request): ApiJson<CalibrationRequest>,
@@ -221,6 +234,14 @@ pub async fn calibration(
     .into_response())
 }
 
+#[utoipa::path(post, path = "/v1/drift", operation_id = "drift", tag = "statistics", request_body = DriftRequest,
+    responses(
+        (status = 200, content(
+            (DriftResponse = "application/json"),
+            (String = "text/html", example = "<!doctype html>..."),
+        )),
+        super::Failure,
+    ))]
 pub async fn drift(
     State(service): State<Service>,
     caller: Option<Extension<Caller>>,

@@ -3,6 +3,7 @@
 use axum::extract::State;
 use axum::Json;
 use serde::{Deserialize, Serialize};
+use utoipa::ToSchema;
 
 use super::ModelRef;
 use crate::intake::image_source::{sources, ImageRef};
@@ -12,7 +13,7 @@ use crate::server::error::ApiError;
 use crate::server::json::ApiJson;
 use crate::service::Service;
 
-#[derive(Deserialize)]
+#[derive(Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct VectorsRequest {
     model: Option<String>,
@@ -22,7 +23,7 @@ pub struct VectorsRequest {
     texts: Vec<String>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 pub struct VectorsResponse {
     model: ModelRef,
     dimension: usize,
@@ -30,19 +31,21 @@ pub struct VectorsResponse {
     texts: Vec<TextVector>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 struct ImageVector {
     id: String,
     vector: Vec<f32>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, ToSchema)]
 struct TextVector {
     vector: Vec<f32>,
     tokens: usize,
     truncated: bool,
 }
 
+#[utoipa::path(post, path = "/v1/vectors", operation_id = "vectors", tag = "scoring", request_body = VectorsRequest,
+    responses((status = 200, body = VectorsResponse), super::Failure))]
 pub async fn embed(
     State(service): State<Service>,
     ApiJson(request): ApiJson<VectorsRequest>,

@@ -27,7 +27,7 @@ pub const DEFAULT_MOVED_PAIRS: usize = 20;
 pub const DEFAULT_SCATTER_POINTS: usize = 2000;
 
 /// Settings of a drift comparison.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(default, deny_unknown_fields)]
 pub struct DriftOptions {
     /// Settings of the two calibrations compared.
@@ -66,7 +66,7 @@ impl DriftOptions {
 }
 
 /// Sizes of the probe and of the two spaces.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct DriftCounts {
     /// Images (N).
     pub images: usize,
@@ -83,7 +83,7 @@ pub struct DriftCounts {
 }
 
 /// Rank agreement of the two bundles' cosines on the same pairs.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct PairAgreement {
     /// Pairs compared.
     pub pairs: usize,
@@ -94,7 +94,7 @@ pub struct PairAgreement {
 }
 
 /// Rank agreement over all pairs and over true pairs only.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Agreement {
     /// True and contrast pairs together.
     pub all_pairs: PairAgreement,
@@ -103,7 +103,7 @@ pub struct Agreement {
 }
 
 /// Linear CKA of the two bundles' vectors of the same rows.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct CkaFigures {
     /// Over the N image vectors.
     pub images: Option<f64>,
@@ -113,7 +113,7 @@ pub struct CkaFigures {
 
 /// Orthogonal Procrustes of the old bundle's rows onto the new one's; null
 /// when the bundles' dimensions differ.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ProcrustesFigures {
     /// Over the N image vectors.
     pub images: Option<ProcrustesFit>,
@@ -122,7 +122,7 @@ pub struct ProcrustesFigures {
 }
 
 /// Whether each image's nearest captions stayed the same.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct NeighbourOverlap {
     /// Captions per image compared (at most M).
     pub k: usize,
@@ -133,7 +133,7 @@ pub struct NeighbourOverlap {
 
 /// The two continuity maps from the new bundle's cosine to the old one's,
 /// fitted on all pairs.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct ContinuityFits {
     /// Least-squares line.
     pub affine: FittedMap,
@@ -142,7 +142,7 @@ pub struct ContinuityFits {
 }
 
 /// Which kind of pair a cosine belongs to.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "lowercase")]
 pub enum PairKind {
     /// An image with one of its true captions.
@@ -152,7 +152,7 @@ pub enum PairKind {
 }
 
 /// One pair whose reward moved much between the bundles.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct MovedPair {
     /// Index of the pair: 0..M true captions, M..M+K contrasts.
     pub pair: usize,
@@ -180,7 +180,7 @@ pub struct MovedPair {
 }
 
 /// A sample of the pairs for the scatter plot.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Scatter {
     /// Every `stride`-th pair (in pair order) is kept.
     pub stride: usize,
@@ -189,7 +189,7 @@ pub struct Scatter {
 }
 
 /// One calibration figure under both bundles.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct FigureChange {
     /// Under the old bundle (null when not defined there).
     pub from: Option<f64>,
@@ -200,7 +200,7 @@ pub struct FigureChange {
 }
 
 /// Every drift figure between two bundles over one probe set.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct DriftReport {
     /// The old bundle.
     pub from_bundle: String,

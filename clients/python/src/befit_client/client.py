@@ -394,9 +394,9 @@ class Client:
         :func:`affine`); ``baseline`` is ``"none"``, ``"mean-of-others"``
         (needs 2+ captions per group) or ``"greedy"`` (needs ``greedy[i]``);
         ``references[i]`` feeds ``ref-clip-s``; ``remap`` names a reward
-        continuity map. ``guard`` (the ``guard`` object of the API: penalties,
-        ``nearest_bank``) adds per-sample signals (``Rewards.signals``) and
-        guarded rewards. ``run`` and ``step`` count the samples in the run
+        continuity map. ``guard`` (the ``guard`` object of the API:
+        ``fluency_weight``, penalties, ``nearest_bank``) adds per-sample
+        signals (``Rewards.signals``) and guarded rewards. ``run`` and ``step`` count the samples in the run
         watch; ``run_thresholds`` sets the run's warning thresholds, and
         ``Rewards.warnings`` carries what the step crosses. (A retried chunk
         may be counted twice in the watch.) Requests over the limits are split
