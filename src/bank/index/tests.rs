@@ -22,7 +22,10 @@ fn ids(hits: &[Neighbour]) -> Vec<RowId> {
 
 /// Default settings on `backend`: every test runs on every backend.
 fn with_backend(backend: IndexBackend) -> IndexParams {
-    IndexParams::for_backend(backend)
+    IndexParams {
+        backend,
+        ..IndexParams::default()
+    }
 }
 
 /// Graph search only, so small test banks exercise HNSW and not the scan.
