@@ -9,8 +9,7 @@ use std::time::Instant;
 
 use serde::Serialize;
 
-use super::graph::Graph;
-use super::parameters::IndexParams;
+use super::hnsw::HnswGraph;
 use super::{write, IndexError, VectorIndex};
 use crate::bank::dump::{self, Manifest};
 use crate::bank::exact::ExactRows;
@@ -67,14 +66,14 @@ impl VectorIndex {
             path: dir.clone(),
             source,
         })?;
-        let written = self.graph.write(&tmp);
+        let written = self.graph.write(&tmp, dump::HNSW_BASENAME);
         let max_row_id = self
             .any_indexed
             .load(Ordering::SeqCst)
             .then(|| self.max_indexed.load(Ordering::SeqCst));
         drop(exclusive);
-        let files = match written {
-            Ok(files) => files,
+        let basename = match written {
+            Ok(name) => name,
             Err(message) => {
                 let _ = std::fs::remove_dir_all(&tmp);
                 return Err(IndexError::DumpFailed { path: tmp, message });
@@ -82,20 +81,20 @@ impl VectorIndex {
         };
         let manifest = Manifest {
             format: dump::MANIFEST_FORMAT,
-            backend: self.params.backend.name().to_string(),
-            library: self.params.backend.library().to_string(),
-            distance: self.params.backend.distance(),
+            hnsw_rs: dump::HNSW_RS_VERSION.to_string(),
+            distance: HnswGraph::distance_name(),
             digest: self.digest.clone(),
             dimension: self.dim,
             max_connections: self.params.max_connections,
             ef_construction: self.params.ef_construction,
             rows,
             max_row_id,
+            basename,
             files: Vec::new(),
             written_at_unix_ms: dump::unix_ms(),
         };
         let at = manifest.written_at_unix_ms;
-        if let Err(source) = dump::publish(dir, &tmp, &files, manifest) {
+        if let Err(source) = dump::publish(dir, &tmp, manifest) {
             let _ = std::fs::remove_dir_all(&tmp);
             return Err(IndexError::DumpIo {
                 path: dir.clone(),
@@ -115,9 +114,6 @@ impl VectorIndex {
     }
 }
 
-/// A dump read back: its graph, its manifest and the ids it holds.
-type LoadedDump = (Box<dyn Graph>, Manifest, HashSet<RowId>);
-
 /// Loads a dump that passed [`dump::check`] and verifies it against the rows
 /// of the source: same count as the manifest, every row known with the same
 /// vector, no row twice. Returns the graph and the ids it holds, or why the
@@ -125,11 +121,10 @@ type LoadedDump = (Box<dyn Graph>, Manifest, HashSet<RowId>);
 pub(super) fn load_checked(
     checked: &dump::CheckedDump,
     rows: &ExactRows,
-    params: &IndexParams,
     dim: usize,
-) -> Result<LoadedDump, String> {
+) -> Result<(HnswGraph, Manifest, HashSet<RowId>), String> {
     let manifest = checked.manifest.clone();
-    let graph = params.backend.read_graph(&checked.folder, params, dim)?;
+    let graph = HnswGraph::read(&checked.folder, &manifest.basename)?;
     if graph.len() != manifest.rows {
         return Err(format!(
             "dump holds {} rows, its manifest says {}",
@@ -138,7 +133,7 @@ pub(super) fn load_checked(
         ));
     }
     let mut ids = HashSet::with_capacity(manifest.rows);
-    graph.each_point(rows.ids(), &mut |id, v| {
+    graph.each_point(|id, v| {
         if v.len() != dim {
             return Err(format!(
                 "dump row {id} has {} numbers, expected {dim}",
@@ -161,13 +156,11 @@ pub(super) fn load_checked(
         }
         Ok(())
     })?;
-    // The graph holds manifest.rows points (checked above); those not met
-    // among the store's rows are unknown to it (a backend that looks rows up
-    // by id cannot name them).
     if ids.len() != manifest.rows {
         return Err(format!(
-            "dump holds {} rows which the store does not have",
-            manifest.rows - ids.len().min(manifest.rows)
+            "dump lists {} rows, its manifest says {}",
+            ids.len(),
+            manifest.rows
         ));
     }
     Ok((graph, manifest, ids))
