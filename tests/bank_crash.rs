@@ -2,18 +2,27 @@
 //! child process appends (and dumps now and then) while announcing every
 //! append that returned; the parent kills it mid-stream, reopens the bank
 //! and checks that every announced caption is there, in the store and the
-//! index, and that SQLite's integrity check passes. (The same test against
-//! the real binary over HTTP is in `tests/integration/bank.rs`.)
+//! index, that the index was loaded from a dump, and that SQLite's integrity
+//! check passes; once per index backend. (The same test against the real
+//! binary over HTTP is in `tests/integration/bank.rs`.)
 
 use std::io::{BufRead, BufReader};
 use std::process::{Command, Stdio};
 
+use befit::bank::index::{GraphOrigin, IndexBackend};
 use befit::bank::synthetic::SceneEmbedder;
 use befit::bank::{BankConfig, BankQuery, CaptionBank, NewCaption, SearchMode};
 
 const DIGEST: &str = "c0ffeec0ffeec0ffeec0ffeec0ffeec0ffeec0ffeec0ffeec0ffeec0ffeec0ff";
 const DIM: usize = 32;
 const CHILD_ENV: &str = "BEFIT_BANK_CRASH_CHILD_DIR";
+const BACKEND_ENV: &str = "BEFIT_BANK_CRASH_BACKEND";
+
+fn config(backend: IndexBackend) -> BankConfig {
+    let mut config = BankConfig::default();
+    config.index.backend = backend;
+    config
+}
 
 fn caption(e: &SceneEmbedder, i: usize) -> NewCaption {
     let text = format!("scene{} caption {i}", i % 97);
@@ -27,8 +36,8 @@ fn caption(e: &SceneEmbedder, i: usize) -> NewCaption {
 /// The child's work: appends forever, printing one line per append that returned, until killed.
 /// Not a test of its own (one that `cargo test` would run and pass without doing anything): the
 /// crash test below runs it, in a copy of this test binary started with `CHILD_ENV` set.
-fn append_until_killed(dir: &std::path::Path) -> ! {
-    let bank = CaptionBank::open(dir, BankConfig::default()).unwrap();
+fn append_until_killed(dir: &std::path::Path, backend: IndexBackend) -> ! {
+    let bank = CaptionBank::open(dir, config(backend)).unwrap();
     let (model, _) = bank.model(DIGEST, DIM).unwrap();
     let e = SceneEmbedder::new(DIM, 97);
     for batch in 0.. {
@@ -46,8 +55,18 @@ fn append_until_killed(dir: &std::path::Path) -> ! {
 #[test]
 fn every_acknowledged_append_survives_sigkill() {
     if let Some(dir) = std::env::var_os(CHILD_ENV) {
-        append_until_killed(std::path::Path::new(&dir));
+        let name = std::env::var(BACKEND_ENV).unwrap();
+        append_until_killed(
+            std::path::Path::new(&dir),
+            IndexBackend::from_name(&name).unwrap(),
+        );
     }
+    for backend in IndexBackend::ALL {
+        killed_while_appending(backend);
+    }
+}
+
+fn killed_while_appending(backend: IndexBackend) {
     let dir = tempfile::tempdir().unwrap();
     // This same test, in a child process that sees CHILD_ENV and appends until it is killed.
     let mut child = Command::new(std::env::current_exe().unwrap())
@@ -59,6 +78,7 @@ fn every_acknowledged_append_survives_sigkill() {
             "1",
         ])
         .env(CHILD_ENV, dir.path())
+        .env(BACKEND_ENV, backend.name())
         .stdout(Stdio::piped())
         .stderr(Stdio::null())
         .spawn()
@@ -90,14 +110,19 @@ fn every_acknowledged_append_survives_sigkill() {
     );
     assert_eq!(acked.len(), 40);
 
-    let bank = CaptionBank::open(dir.path(), BankConfig::default()).unwrap();
+    let bank = CaptionBank::open(dir.path(), config(backend)).unwrap();
     assert_eq!(
         bank.store().integrity_check().unwrap(),
         vec!["ok".to_string()]
     );
     let (model, report) = bank.model(DIGEST, DIM).unwrap();
     let report = report.unwrap();
-    assert!(report.rows >= 40 * 20, "{report:?}");
+    assert!(report.rows >= 40 * 20, "{backend}: {report:?}");
+    // Dumps were written every 7 appends, the first long before the kill.
+    assert!(
+        matches!(report.origin, GraphOrigin::Loaded { dumped, .. } if dumped >= 7 * 20),
+        "{backend}: {report:?}"
+    );
     let e = SceneEmbedder::new(DIM, 97);
     for (batch, ids) in &acked {
         for (j, id) in ids.iter().enumerate() {
@@ -105,14 +130,15 @@ fn every_acknowledged_append_survives_sigkill() {
             let stored = model
                 .get(*id)
                 .unwrap()
-                .unwrap_or_else(|| panic!("caption {id} lost"));
+                .unwrap_or_else(|| panic!("{backend}: caption {id} lost"));
             assert_eq!(stored.text, c.text);
             let q = BankQuery {
                 k: 1,
                 mode: SearchMode::Index,
                 ..Default::default()
             };
-            assert_eq!(model.search(&c.vector, &q).unwrap().hits[0].id, *id);
+            let hits = model.search(&c.vector, &q).unwrap().hits;
+            assert_eq!(hits[0].id, *id, "{backend}");
         }
     }
 }

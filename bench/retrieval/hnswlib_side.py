@@ -8,6 +8,7 @@ per figure on standard output.
 
 import argparse
 import json
+import tempfile
 import time
 from pathlib import Path
 
@@ -22,6 +23,13 @@ RECALL_EPSILON = 1e-6
 def recall(exact_cos: np.ndarray, approx_cos: np.ndarray, k: int) -> float:
     threshold = exact_cos[:, k - 1:k] - RECALL_EPSILON
     return float(np.mean(np.sum(approx_cos[:, :k] >= threshold, axis=1) / k))
+
+
+def resident_bytes() -> int:
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1]) * 1024
+    return 0
 
 
 def main() -> None:
@@ -40,14 +48,29 @@ def main() -> None:
     exact_cos = np.load(a.dir / "exact_cos.npy")
     n, dim = base.shape
 
+    before = resident_bytes()
     index = hnswlib.Index(space="ip", dim=dim)
     index.init_index(max_elements=n, M=a.m, ef_construction=a.ef_construction, random_seed=100)
     index.set_num_threads(a.threads)
     t = time.perf_counter()
     index.add_items(base, np.arange(n), num_threads=a.threads)
     build = time.perf_counter() - t
+    per_caption = (resident_bytes() - before) / n
     print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "build", "seconds": build,
-                      "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}), flush=True)
+                      "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction,
+                      "bytes_per_caption": per_caption}), flush=True)
+    with tempfile.TemporaryDirectory(dir=a.dir) as tmp:
+        path = str(Path(tmp) / "hnswlib.bin")
+        t = time.perf_counter()
+        index.save_index(path)
+        dump = time.perf_counter() - t
+        t = time.perf_counter()
+        loaded = hnswlib.Index(space="ip", dim=dim)
+        loaded.load_index(path, max_elements=n)
+        load = time.perf_counter() - t
+        del loaded
+    print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "dump",
+                      "dump_seconds": dump, "load_seconds": load}), flush=True)
 
     for ef in [int(x) for x in a.ef_search.split(",")]:
         index.set_ef(ef)

@@ -1,5 +1,6 @@
-//! Retrieval benchmark, befit's side: builds the caption index (hnsw_rs
-//! through `befit::bank::VectorIndex`) and the exact scan over seeded
+//! Retrieval benchmark, befit's side: builds the caption index (the
+//! `--backend` graph, hnsw-rs or usearch, through
+//! `befit::bank::VectorIndex`) and the exact scan over seeded
 //! vectors, and reports build time, queries per second and recall@k at
 //! several search breadths as JSON lines. It writes the vectors and the exact
 //! answers as .npy files so `hnswlib_side.py` runs hnswlib on the very same
@@ -18,7 +19,8 @@ use std::time::Instant;
 
 use befit::bank::exact::ExactRows;
 use befit::bank::index::{
-    Answered, FilterWalk, IndexParams, Search, SearchMode, VectorIndex, DEFAULT_EF_SEARCH,
+    Answered, FilterWalk, IndexBackend, IndexParams, Search, SearchMode, VectorIndex,
+    DEFAULT_EF_SEARCH,
 };
 use befit::bank::recall::mean_recall;
 use befit::bank::synthetic::{blocks_like, uniform_sphere};
@@ -43,6 +45,7 @@ struct Args {
     filtered: bool,
     dims: Vec<usize>,
     singles: usize,
+    backend: IndexBackend,
 }
 
 fn list<T: std::str::FromStr>(s: &str) -> Vec<T> {
@@ -67,6 +70,7 @@ fn parse_args() -> Args {
         filtered: false,
         dims: vec![64, 512],
         singles: 100,
+        backend: IndexBackend::default(),
     };
     let mut it = std::env::args().skip(1);
     while let Some(flag) = it.next() {
@@ -88,6 +92,13 @@ fn parse_args() -> Args {
             "--filtered" => a.filtered = true,
             "--dims" => a.dims = list(&value()),
             "--singles" => a.singles = value().parse().unwrap_or(a.singles),
+            "--backend" => {
+                let name = value();
+                a.backend = IndexBackend::from_name(&name).unwrap_or_else(|| {
+                    eprintln!("unknown backend {name:?}, using {}", a.backend);
+                    a.backend
+                });
+            }
             // cargo bench passes --bench to harness-less benchmarks.
             "--bench" => {}
             other => eprintln!("ignoring unknown argument {other}"),
@@ -131,7 +142,20 @@ fn params(a: &Args, exact_below: usize) -> IndexParams {
         ef_search: 64,
         exact_below,
         build_threads: a.threads,
+        backend: a.backend,
     }
+}
+
+/// Resident memory of this process in bytes (`VmRSS` of /proc/self/status).
+fn resident_bytes() -> u64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find_map(|l| l.strip_prefix("VmRSS:"))
+                .and_then(|v| v.trim().trim_end_matches("kB").trim().parse::<u64>().ok())
+        })
+        .map_or(0, |kib| kib * 1024)
 }
 
 fn rows(base: &[f32], dim: usize) -> Vec<(RowId, Vec<f32>)> {
@@ -161,10 +185,13 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     let index_dir = stem.join("befit-index");
     let _ = std::fs::remove_dir_all(&index_dir);
     let source = rows(&base, dim);
+    let resident_before = resident_bytes();
     let t = Instant::now();
     let (index, _) = VectorIndex::open(&index_dir, DIGEST, dim, params(a, 0), &source)
         .map_err(std::io::Error::other)?;
     let build = t.elapsed().as_secs_f64();
+    // The index's whole footprint: the graph and the exact rows beside it.
+    let index_bytes = resident_bytes().saturating_sub(resident_before);
     drop(source);
 
     // Exact scan: ground truth and its own speed (one thread).
@@ -196,7 +223,9 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     );
     emit(
         serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "build",
-        "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction}),
+        "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction,
+        "backend": a.backend, "dim": dim, "bytes_per_caption": index_bytes as f64 / n as f64,
+        "exact_rows_bytes_per_caption": (dim * 4) as f64}),
     );
 
     for &ef in &a.ef_search {
@@ -267,7 +296,7 @@ fn crossover(a: &Args) -> std::io::Result<()> {
         }
         emit(
             serde_json::json!({"what": "crossover", "n": n, "exact_qps": qps[0], "index_qps": qps[1],
-            "ef_search": befit::bank::index::DEFAULT_EF_SEARCH}),
+            "ef_search": befit::bank::index::DEFAULT_EF_SEARCH, "backend": a.backend, "dim": dim}),
         );
     }
     Ok(())

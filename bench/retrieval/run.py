@@ -36,6 +36,9 @@ def main() -> None:
     p.add_argument("--ef-construction", type=int, default=200)
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--queries", type=int, default=1000)
+    p.add_argument("--dim", type=int, default=64)
+    p.add_argument("--backends", default="usearch,hnsw-rs",
+                   help="befit's index backends, each run beside the same hnswlib run")
     p.add_argument("--out", default=str(ROOT / "target" / "retrieval"))
     p.add_argument("--json", help="also write every figure to this file")
     p.add_argument("--filtered", action="store_true",
@@ -47,9 +50,12 @@ def main() -> None:
 
     common = ["--m", str(a.m), "--ef-construction", str(a.ef_construction),
               "--ef-search", a.ef_search, "--threads", str(a.threads)]
-    befit = lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--",
-                   "--sizes", a.sizes, "--kinds", a.kinds, "--queries", str(a.queries),
-                   "--out", a.out] + common)
+    befit = []
+    for backend in a.backends.split(","):
+        befit += [dict(r, side=f"befit {backend}") for r in
+                  lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--",
+                         "--sizes", a.sizes, "--kinds", a.kinds, "--queries", str(a.queries),
+                         "--dim", str(a.dim), "--backend", backend, "--out", a.out] + common)]
     hnsw = []
     for size in a.sizes.split(","):
         for kind in a.kinds.split(","):
@@ -66,20 +72,31 @@ def main() -> None:
         return None
 
     print(f"M={a.m} ef_construction={a.ef_construction} build threads={a.threads}, "
-          f"{a.queries} queries on one thread, k=10, dim 64")
+          f"{a.queries} queries on one thread, k=10, dim {a.dim}")
     for n in [int(s) for s in a.sizes.split(",")]:
         for kind in a.kinds.split(","):
-            bb, hb = get("befit", kind, n, "build"), get("hnswlib", kind, n, "build")
-            ex = get("befit", kind, n, "exact")
-            dump = get("befit", kind, n, "dump")
-            print(f"\n{kind}, n={n}: build befit {bb['seconds']:.1f} s, hnswlib {hb['seconds']:.1f} s "
-                  f"(ratio {bb['seconds'] / hb['seconds']:.2f}); exact scan {ex['qps']:.0f} q/s"
-                  + (f"; dump {dump['dump_seconds']:.1f} s, load {dump['load_seconds']:.1f} s" if dump else ""))
-            print(f"{'ef_search':>9} | {'befit q/s':>10} {'recall':>7} | {'hnswlib q/s':>11} {'recall':>7} | {'q/s ratio':>9}")
+            hb, hd = get("hnswlib", kind, n, "build"), get("hnswlib", kind, n, "dump")
+            print(f"\n{kind}, n={n}: hnswlib build {hb['seconds']:.1f} s, "
+                  f"{hb['bytes_per_caption']:.0f} bytes/caption resident, "
+                  f"dump {hd['dump_seconds']:.2f} s, load {hd['load_seconds']:.2f} s")
+            for backend in a.backends.split(","):
+                side = f"befit {backend}"
+                bb, ex, dump = get(side, kind, n, "build"), get(side, kind, n, "exact"), get(side, kind, n, "dump")
+                print(f"  {backend}: build {bb['seconds']:.1f} s (ratio to hnswlib "
+                      f"{bb['seconds'] / hb['seconds']:.2f}); {bb['bytes_per_caption']:.0f} bytes/caption "
+                      f"resident with the exact rows ({bb['exact_rows_bytes_per_caption']:.0f} of them), "
+                      f"graph alone {(bb['bytes_per_caption'] - bb['exact_rows_bytes_per_caption']) / hb['bytes_per_caption']:.2f}x hnswlib's; "
+                      f"exact scan {ex['qps']:.0f} q/s"
+                      + (f"; dump {dump['dump_seconds']:.2f} s, restart {dump['load_seconds']:.2f} s" if dump else ""))
+            print(f"{'ef_search':>9} | " + " | ".join(f"{b + ' q/s':>16} {'recall':>7} {'ratio':>6}" for b in a.backends.split(","))
+                  + f" | {'hnswlib q/s':>11} {'recall':>7}")
             for ef in [int(x) for x in a.ef_search.split(",")]:
-                b, h = get("befit", kind, n, "search", ef), get("hnswlib", kind, n, "search", ef)
-                print(f"{ef:>9} | {b['qps']:>10.0f} {b['recall']:>7.4f} | {h['qps']:>11.0f} {h['recall']:>7.4f} | "
-                      f"{b['qps'] / h['qps']:>9.2f}")
+                h = get("hnswlib", kind, n, "search", ef)
+                cells = []
+                for backend in a.backends.split(","):
+                    b = get(f"befit {backend}", kind, n, "search", ef)
+                    cells.append(f"{b['qps']:>16.0f} {b['recall']:>7.4f} {b['qps'] / h['qps']:>6.2f}")
+                print(f"{ef:>9} | " + " | ".join(cells) + f" | {h['qps']:>11.0f} {h['recall']:>7.4f}")
 
 
 def filtered(a) -> None:

@@ -4,8 +4,8 @@
 //! ```text
 //! <root>/<digest>/CURRENT              "dump-000007": the generation to load
 //! <root>/<digest>/dump-000007/
-//!     index.hnsw.graph, index.hnsw.data   hnsw_rs's own dump
-//!     manifest.json                        what it covers, sha256 of each file
+//!     index.hnsw.graph, index.hnsw.data   the backend's own files (these: hnsw_rs)
+//!     manifest.json                        backend, what it covers, sha256 of each file
 //! <root>/<digest>/tmp-<pid>-<nanos>/    a dump being written (removed at open)
 //! ```
 //!
@@ -16,11 +16,12 @@
 //! `CURRENT` at all; either way the index is loaded or rebuilt, never read
 //! half-written.
 //!
-//! hnsw_rs's loader trusts its input: a truncated file hits `unwrap`s, a
-//! garbled length allocates whatever it says, an unknown format version calls
-//! `process::exit`. So nothing reaches it unless the manifest parses, names
-//! this digest, dimension and build settings, and every file's size and
-//! sha256 match what was written.
+//! The graph libraries trust their input (hnsw_rs's loader: a truncated file
+//! hits `unwrap`s, a garbled length allocates whatever it says, an unknown
+//! format version calls `process::exit`). So nothing reaches one unless the
+//! manifest parses, names this backend and library version, digest,
+//! dimension and build settings, lists every file the backend reads, and
+//! every file's size and sha256 match what was written.
 
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, Read, Write};
@@ -32,15 +33,8 @@ use sha2::{Digest, Sha256};
 use super::RowId;
 
 /// Version of the manifest and folder layout; a dump of another version is
-/// rebuilt rather than read.
-pub const MANIFEST_FORMAT: u32 = 1;
-
-/// The hnsw_rs release whose file format the dumps are in (pinned in
-/// Cargo.toml); a dump from another release is rebuilt rather than read.
-pub const HNSW_RS_VERSION: &str = "0.3.5";
-
-/// Base name hnsw_rs is given for its two files.
-pub const HNSW_BASENAME: &str = "index";
+/// rebuilt rather than read. 2: the backend is recorded, its files listed.
+pub const MANIFEST_FORMAT: u32 = 2;
 
 /// Name of the pointer file.
 pub const CURRENT_FILE: &str = "CURRENT";
@@ -69,8 +63,10 @@ pub struct DumpedFile {
 pub struct Manifest {
     /// [`MANIFEST_FORMAT`] when written.
     pub format: u32,
-    /// [`HNSW_RS_VERSION`] when written.
-    pub hnsw_rs: String,
+    /// The graph backend that wrote it (`hnsw-rs`, `usearch`).
+    pub backend: String,
+    /// Library and version whose file format the graph files are in.
+    pub library: String,
     /// Type name of the distance the graph was built with.
     pub distance: String,
     /// Bundle digest the vectors come from.
@@ -86,8 +82,6 @@ pub struct Manifest {
     /// Highest row id in the dump: rows of the store above it (and any others
     /// the dump lacks) are replayed after loading.
     pub max_row_id: Option<RowId>,
-    /// Base name hnsw_rs wrote its files under.
-    pub basename: String,
     /// Every file of the dump but the manifest.
     pub files: Vec<DumpedFile>,
     /// When the dump was written, milliseconds since the Unix epoch.
@@ -97,6 +91,12 @@ pub struct Manifest {
 /// What a manifest must say for its dump to be loaded.
 #[derive(Debug, Clone)]
 pub struct Expected<'a> {
+    /// Graph backend.
+    pub backend: &'a str,
+    /// Library and version of the backend.
+    pub library: &'a str,
+    /// Files the backend reads, each of which the manifest must list.
+    pub files: &'a [String],
     /// Bundle digest.
     pub digest: &'a str,
     /// Vector length.
@@ -221,9 +221,7 @@ pub fn check(digest_dir: &Path, expected: &Expected<'_>) -> Result<CheckedDump, 
             ));
         }
     }
-    let graph = format!("{}.hnsw.graph", manifest.basename);
-    let data = format!("{}.hnsw.data", manifest.basename);
-    for needed in [&graph, &data] {
+    for needed in expected.files {
         if !manifest.files.iter().any(|f| &f.name == needed) {
             return Err(format!("manifest does not list {needed}"));
         }
@@ -238,10 +236,16 @@ fn check_manifest(m: &Manifest, e: &Expected<'_>) -> Result<(), String> {
             m.format
         ));
     }
-    if m.hnsw_rs != HNSW_RS_VERSION {
+    if m.backend != e.backend {
         return Err(format!(
-            "dump written by hnsw_rs {} (this befit uses {HNSW_RS_VERSION})",
-            m.hnsw_rs
+            "dump written by the {} backend, this index uses {}",
+            m.backend, e.backend
+        ));
+    }
+    if m.library != e.library {
+        return Err(format!(
+            "dump written by {} (this befit uses {})",
+            m.library, e.library
         ));
     }
     if m.digest != e.digest {
@@ -268,12 +272,6 @@ fn check_manifest(m: &Manifest, e: &Expected<'_>) -> Result<(), String> {
             m.distance, e.distance
         ));
     }
-    if !is_plain_name(&m.basename) {
-        return Err(format!(
-            "manifest basename {:?} is not a plain file name",
-            m.basename
-        ));
-    }
     Ok(())
 }
 
@@ -289,14 +287,25 @@ pub fn temp_folder(digest_dir: &Path) -> io::Result<PathBuf> {
     Ok(path)
 }
 
-/// Fsyncs the files hnsw_rs wrote into `tmp`, writes the manifest (with the
-/// files' checksums) and makes the folder the current generation.
+/// Fsyncs the files a backend wrote into `tmp` (`written`, their names),
+/// writes the manifest (with the files' checksums) and makes the folder the
+/// current generation.
 ///
 /// `manifest.files` is filled in here.
-pub fn publish(digest_dir: &Path, tmp: &Path, mut manifest: Manifest) -> io::Result<PathBuf> {
+pub fn publish(
+    digest_dir: &Path,
+    tmp: &Path,
+    written: &[String],
+    mut manifest: Manifest,
+) -> io::Result<PathBuf> {
     let mut files = Vec::new();
-    for suffix in ["hnsw.graph", "hnsw.data"] {
-        let name = format!("{}.{suffix}", manifest.basename);
+    for name in written {
+        if !is_plain_name(name) || name == MANIFEST_FILE {
+            return Err(io::Error::other(format!(
+                "the graph wrote a file named {name:?}, which a dump cannot hold"
+            )));
+        }
+        let name = name.clone();
         let path = tmp.join(&name);
         fsync_file(&path)?;
         let (sha256, bytes) = file_sha256(&path)?;
@@ -385,7 +394,8 @@ mod tests {
     fn manifest(digest: &str) -> Manifest {
         Manifest {
             format: MANIFEST_FORMAT,
-            hnsw_rs: HNSW_RS_VERSION.into(),
+            backend: "b".into(),
+            library: "lib 1".into(),
             distance: "d".into(),
             digest: digest.into(),
             dimension: 4,
@@ -393,14 +403,21 @@ mod tests {
             ef_construction: 100,
             rows: 0,
             max_row_id: None,
-            basename: HNSW_BASENAME.into(),
             files: vec![],
             written_at_unix_ms: 0,
         }
     }
 
+    fn files() -> &'static [String] {
+        static NAMES: std::sync::OnceLock<Vec<String>> = std::sync::OnceLock::new();
+        NAMES.get_or_init(|| vec!["index.hnsw.graph".into(), "index.hnsw.data".into()])
+    }
+
     fn expected(digest: &str) -> Expected<'_> {
         Expected {
+            backend: "b",
+            library: "lib 1",
+            files: files(),
             digest,
             dimension: 4,
             max_connections: 16,
@@ -413,7 +430,7 @@ mod tests {
         let tmp = temp_folder(dir).unwrap();
         fs::write(tmp.join("index.hnsw.graph"), b"graph bytes").unwrap();
         fs::write(tmp.join("index.hnsw.data"), b"data bytes").unwrap();
-        publish(dir, &tmp, manifest(digest)).unwrap()
+        publish(dir, &tmp, files(), manifest(digest)).unwrap()
     }
 
     #[test]
@@ -439,6 +456,28 @@ mod tests {
         assert!(check(root.path(), &expected("bb"))
             .unwrap_err()
             .contains("digest"));
+        let other_backend = Expected {
+            backend: "c",
+            ..expected("aa")
+        };
+        assert!(check(root.path(), &other_backend)
+            .unwrap_err()
+            .contains("the b backend, this index uses c"));
+        let other_library = Expected {
+            library: "lib 2",
+            ..expected("aa")
+        };
+        assert!(check(root.path(), &other_library)
+            .unwrap_err()
+            .contains("lib 1"));
+        let more_files = ["index.extra".to_string()];
+        let unlisted = Expected {
+            files: &more_files,
+            ..expected("aa")
+        };
+        assert!(check(root.path(), &unlisted)
+            .unwrap_err()
+            .contains("does not list index.extra"));
 
         fs::write(folder.join("index.hnsw.graph"), b"graph byteX").unwrap();
         assert!(check(root.path(), &expected("aa"))

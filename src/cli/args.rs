@@ -6,6 +6,7 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
+use crate::bank::index::IndexBackend;
 use crate::batching::{DEFAULT_MAX_BATCH, DEFAULT_MAX_WAIT_MICROS, DEFAULT_QUEUE_DEPTH};
 use crate::intake::image_decode::{ImageLimits, DEFAULT_MAX_DECODED_BYTES, DEFAULT_MAX_PIXELS};
 use crate::intake::limits::*;
@@ -76,6 +77,23 @@ pub enum BankCommand {
     EmbedMissing(BankEmbedMissingArgs),
 }
 
+/// Which graph library holds the caption bank's index.
+#[derive(Debug, Args)]
+pub struct BankIndexArgs {
+    /// Graph library of the caption bank's index: usearch or hnsw-rs. A dump written by
+    /// the other one is not read: the index is rebuilt from the bank at start.
+    #[arg(long, value_name = "NAME", default_value_t = IndexBackend::default(),
+          value_parser = parse_backend)]
+    pub bank_backend: IndexBackend,
+}
+
+fn parse_backend(name: &str) -> Result<IndexBackend, String> {
+    IndexBackend::from_name(name).ok_or_else(|| {
+        let names: Vec<&str> = IndexBackend::ALL.iter().map(|b| b.name()).collect();
+        format!("unknown backend {name:?}: give one of {}", names.join(", "))
+    })
+}
+
 /// What every command that writes the bank's vectors takes.
 #[derive(Debug, Args)]
 pub struct BankWriteArgs {
@@ -88,6 +106,8 @@ pub struct BankWriteArgs {
     /// Captions embedded and committed together.
     #[arg(long, default_value_t = crate::bank::import::DEFAULT_IMPORT_BATCH)]
     pub batch_size: usize,
+    #[command(flatten)]
+    pub index: BankIndexArgs,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
     #[command(flatten)]
@@ -141,6 +161,8 @@ pub struct BankQueryArgs {
     /// Data folder holding the bank.
     #[arg(long, value_name = "DIR", default_value = DEFAULT_DATA_DIR)]
     pub data_dir: PathBuf,
+    #[command(flatten)]
+    pub index: BankIndexArgs,
     #[command(flatten)]
     pub runtime: RuntimeArgs,
     #[command(flatten)]
@@ -348,6 +370,8 @@ pub struct ServeArgs {
     /// data folder's counts.json recorded (they were emptied or replaced).
     #[arg(long)]
     pub accept_smaller_stores: bool,
+    #[command(flatten)]
+    pub bank_index: BankIndexArgs,
     #[command(flatten)]
     pub guards: ServeGuardArgs,
     #[command(flatten)]

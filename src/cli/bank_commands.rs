@@ -4,7 +4,7 @@ use std::process::ExitCode;
 
 use anyhow::{bail, Context};
 
-use super::args::{BankEmbedMissingArgs, BankImportArgs, BankQueryArgs};
+use super::args::{BankEmbedMissingArgs, BankImportArgs, BankIndexArgs, BankQueryArgs};
 use super::probe_commands::{progress_bar, OfflineModel};
 use super::progress::ImportBar;
 use crate::bank::import::import_jsonl;
@@ -12,8 +12,10 @@ use crate::bank::{BankConfig, BankQuery, CaptionBank, SearchMode};
 use crate::service::data_dir::{DataDir, BANK_WRITE_ADVICE};
 use crate::vectors::Embedder;
 
-fn open_bank(data_dir: &std::path::Path) -> anyhow::Result<CaptionBank> {
-    CaptionBank::open(data_dir, BankConfig::default())
+fn open_bank(data_dir: &std::path::Path, index: &BankIndexArgs) -> anyhow::Result<CaptionBank> {
+    let mut config = BankConfig::default();
+    config.index.backend = index.bank_backend;
+    CaptionBank::open(data_dir, config)
         .with_context(|| format!("opening the caption bank in {}", data_dir.display()))
 }
 
@@ -25,7 +27,7 @@ pub fn import(a: BankImportArgs) -> anyhow::Result<ExitCode> {
     // A running server would never see what this writes: refuse its data folder.
     let _lock = DataDir::new(&w.data_dir).lock("befit bank import", BANK_WRITE_ADVICE)?;
     let model = OfflineModel::open(&w.bundle, &w.runtime, &w.encoders)?;
-    let bank = open_bank(&w.data_dir)?;
+    let bank = open_bank(&w.data_dir, &w.index)?;
     let (model_bank, _) = bank.model(&model.model.bundle.digest, model.model.dimension())?;
     let embedder = model.embedder();
     let bar = ImportBar::new(total_bytes);
@@ -62,7 +64,7 @@ pub fn query(a: BankQueryArgs) -> anyhow::Result<ExitCode> {
         bail!("-k must be at least 1");
     }
     let model = OfflineModel::open(&a.bundle, &a.runtime, &a.encoders)?;
-    let bank = open_bank(&a.data_dir)?;
+    let bank = open_bank(&a.data_dir, &a.index)?;
     let (model_bank, _) = bank.model(&model.model.bundle.digest, model.model.dimension())?;
     let embedder = model.embedder();
     let query = match (&a.image, &a.text) {
@@ -108,7 +110,7 @@ pub fn embed_missing(a: BankEmbedMissingArgs) -> anyhow::Result<ExitCode> {
     let w = &a.write;
     let _lock = DataDir::new(&w.data_dir).lock("befit bank embed-missing", BANK_WRITE_ADVICE)?;
     let model = OfflineModel::open(&w.bundle, &w.runtime, &w.encoders)?;
-    let bank = open_bank(&w.data_dir)?;
+    let bank = open_bank(&w.data_dir, &w.index)?;
     let digest = &model.model.bundle.digest;
     let (model_bank, _) = bank.model(digest, model.model.dimension())?;
     let missing = crate::service::backfill::missing_captions(&bank, digest)?;

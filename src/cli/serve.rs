@@ -107,6 +107,7 @@ fn service_config(a: &ServeArgs) -> anyhow::Result<ServiceConfig> {
         maps,
         bank_dump_every: Duration::from_secs(DEFAULT_BANK_DUMP_SECONDS),
         accept_smaller_stores: a.accept_smaller_stores,
+        bank_backend: a.bank_index.bank_backend,
     })
 }
 

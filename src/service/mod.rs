@@ -21,7 +21,7 @@ use std::path::PathBuf;
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
-use crate::bank::index::GraphOrigin;
+use crate::bank::index::{GraphOrigin, IndexBackend};
 use crate::bank::{BankConfig, BankError, CaptionBank};
 use crate::encoders::{load_bundles, Engine, LoadBundlesError, Model, ModelSettings};
 use crate::intake::image_root::ImageRoot;
@@ -52,6 +52,8 @@ pub struct ServiceConfig {
     pub bank_dump_every: Duration,
     /// Start even when a store holds fewer items than its high-water mark.
     pub accept_smaller_stores: bool,
+    /// Graph library of the caption bank's index.
+    pub bank_backend: IndexBackend,
 }
 
 impl ServiceConfig {
@@ -66,6 +68,7 @@ impl ServiceConfig {
             maps: Vec::new(),
             bank_dump_every: Duration::from_secs(DEFAULT_BANK_DUMP_SECONDS),
             accept_smaller_stores: false,
+            bank_backend: IndexBackend::default(),
         }
     }
 }
@@ -147,7 +150,7 @@ impl Service {
             None => None,
         };
         let store = Arc::new(ImageStore::open(&data_dir.images())?);
-        let bank = CaptionBank::open(data_dir.root(), bank_config(&config.limits))?;
+        let bank = CaptionBank::open(data_dir.root(), bank_config(config))?;
         let counts = high_water::Counts {
             images: store.image_count()?,
             captions: bank.store().caption_count().map_err(BankError::from)?,
@@ -313,13 +316,16 @@ impl Service {
     }
 }
 
-/// The bank refuses what the server's limits refuse, naming the same flags.
-pub fn bank_config(limits: &Limits) -> BankConfig {
-    BankConfig {
-        max_caption_bytes: limits.max_caption_bytes,
-        max_append: limits.max_captions,
+/// The bank refuses what the server's limits refuse, naming the same flags,
+/// and keeps its index with the configured backend.
+pub fn bank_config(config: &ServiceConfig) -> BankConfig {
+    let mut bank = BankConfig {
+        max_caption_bytes: config.limits.max_caption_bytes,
+        max_append: config.limits.max_captions,
         ..BankConfig::default()
-    }
+    };
+    bank.index.backend = config.bank_backend;
+    bank
 }
 
 /// A started service: bundles loading in the background, the bank dumped on a

@@ -8,7 +8,6 @@ use std::time::Instant;
 
 use serde::Serialize;
 
-use super::hnsw::HnswGraph;
 use super::parameters::{unit_vector, IndexParams};
 use super::persistence::{self, DumpState};
 use super::{read, write, IndexError, VectorIndex};
@@ -144,15 +143,20 @@ impl VectorIndex {
             )
             .map_err(IndexError::Source)?;
 
+        let backend = params.backend;
+        let files = backend.dump_files();
         let expected = Expected {
+            backend: backend.name(),
+            library: backend.library(),
+            files: &files,
             digest,
             dimension,
             max_connections: params.max_connections,
             ef_construction: params.ef_construction,
-            distance: &HnswGraph::distance_name(),
+            distance: &backend.distance(),
         };
         let origin = match dump::check(&dir, &expected)
-            .and_then(|checked| persistence::load_checked(&checked, &rows, dimension))
+            .and_then(|checked| persistence::load_checked(&checked, &rows, &params, dimension))
         {
             Ok((graph, manifest, in_dump)) => {
                 index.graph = graph;
@@ -180,7 +184,7 @@ impl VectorIndex {
                 }
             }
             Err(reason) => {
-                index.graph = HnswGraph::new(&params, rows.len());
+                index.graph = backend.new_graph(&params, dimension, rows.len())?;
                 let all: Vec<RowId> = rows.ids().to_vec();
                 *index.rows.get_mut().unwrap_or_else(|e| e.into_inner()) = rows;
                 index.insert_into_graph(&all, stop)?;
@@ -234,6 +238,7 @@ impl VectorIndex {
             return Ok(());
         }
         let _shared = read(&self.gate);
+        self.graph.reserve(ids.len())?;
         let matrix = read(&self.rows);
         let threads = self.params.build_threads.min(ids.len().div_ceil(64)).max(1);
         let next = AtomicUsize::new(0);

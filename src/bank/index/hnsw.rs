@@ -1,9 +1,7 @@
-//! The HNSW graph, through hnsw_rs: the only file of the index that names the
-//! library. [`HnswGraph`] offers what the index needs from a graph (insert,
-//! search, count, write to a folder, read back, list its points), each call
-//! guarded so a panic inside the library becomes an [`IndexError`] and never
-//! takes the service down. Another graph library would go beside this file
-//! with the same methods.
+//! The HNSW graph through hnsw_rs (the `hnsw-rs` backend): the only file of
+//! the index that names the library. [`HnswGraph`] implements [`Graph`],
+//! each call guarded so a panic inside the library becomes an
+//! [`IndexError`] and never takes the service down.
 
 use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::Path;
@@ -14,9 +12,10 @@ use hnsw_rs::hnsw::Hnsw;
 use hnsw_rs::hnswio::HnswIo;
 
 use super::errors::IndexError;
+use super::graph::{best_k, Graph, PointVisitor, RowFilter};
 use super::parameters::IndexParams;
-use crate::bank::distance::{cosine_from_distance, ClampedDot};
-use crate::bank::exact::{best_first, Neighbour};
+use crate::bank::distance::ClampedDot;
+use crate::bank::exact::Neighbour;
 use crate::bank::RowId;
 
 /// hnsw_rs can only reload a dump made with this many layers (its
@@ -24,11 +23,14 @@ use crate::bank::RowId;
 /// layer generator after a reload assumes the maximum.
 const HNSW_LAYERS: usize = 16;
 
-type Graph = Hnsw<'static, f32, ClampedDot>;
+/// Base name hnsw_rs is given for its two files in a dump folder.
+const BASENAME: &str = "index";
+
+type HnswLib = Hnsw<'static, f32, ClampedDot>;
 
 /// One hnsw_rs graph over unit vectors, its point ids the row ids.
 pub(super) struct HnswGraph {
-    graph: Graph,
+    graph: HnswLib,
 }
 
 impl HnswGraph {
@@ -45,79 +47,35 @@ impl HnswGraph {
         }
     }
 
-    /// The distance's name, recorded in dump manifests so a dump made with
-    /// another distance is rebuilt rather than read.
+    /// The hnsw_rs release whose file format the dumps are in (pinned in
+    /// Cargo.toml).
+    pub(super) const LIBRARY: &'static str = "hnsw_rs 0.3.5";
+
+    /// The distance's name (see [`super::graph::IndexBackend::distance`]).
     pub(super) fn distance_name() -> String {
         std::any::type_name::<ClampedDot>().to_string()
     }
 
-    /// Adds one point. Safe to call from several threads at once.
-    pub(super) fn insert(&self, vector: &[f32], id: RowId) -> Result<(), IndexError> {
-        // Checked when rows enter the index: ids fit a usize.
-        let data_id = id as usize;
-        catch_unwind(AssertUnwindSafe(|| {
-            self.graph.insert_slice((vector, data_id))
-        }))
-        .map_err(|_| IndexError::Internal("insert"))
+    /// The two files hnsw_rs writes.
+    pub(super) fn dump_files() -> Vec<String> {
+        vec![
+            format!("{BASENAME}.hnsw.graph"),
+            format!("{BASENAME}.hnsw.data"),
+        ]
     }
 
-    /// The `k` nearest points at breadth `ef`, best first; with `only`, the
-    /// `k` nearest of those points the filter allows, found by walking the
-    /// whole graph and keeping only allowed points among the `ef` best
-    /// (hnsw_rs's filtered search). A filtered walk can return fewer than
-    /// `k` when the filter cuts the graph; the caller decides what then.
-    pub(super) fn search(
-        &self,
-        q: &[f32],
-        k: usize,
-        ef: usize,
-        only: Option<&(dyn Fn(RowId) -> bool + Sync)>,
-    ) -> Result<Vec<Neighbour>, IndexError> {
-        let allowed = only.map(|f| move |id: &usize| f(*id as RowId));
-        let filter = allowed.as_ref().map(|f| f as &dyn FilterT);
-        let found = catch_unwind(AssertUnwindSafe(|| {
-            self.graph.search_filter(q, k, ef, filter)
-        }))
-        .map_err(|_| IndexError::Internal("search"))?;
-        let mut hits: Vec<Neighbour> = found
-            .into_iter()
-            .map(|n| Neighbour {
-                id: n.d_id as RowId,
-                cosine: cosine_from_distance(n.distance).clamp(-1.0, 1.0),
-            })
-            .collect();
-        hits.sort_by(best_first);
-        hits.truncate(k);
-        Ok(hits)
-    }
-
-    /// Points in the graph.
-    pub(super) fn len(&self) -> usize {
-        self.graph.get_nb_point()
-    }
-
-    /// Writes the graph's files into `folder` under `basename`; returns the
-    /// base name the library actually used.
-    pub(super) fn write(&self, folder: &Path, basename: &str) -> Result<String, String> {
-        match catch_unwind(AssertUnwindSafe(|| self.graph.file_dump(folder, basename))) {
-            Ok(Ok(name)) => Ok(name),
-            Ok(Err(e)) => Err(e.to_string()),
-            Err(_) => Err("it panicked".into()),
-        }
-    }
-
-    /// Reads a graph written by [`Self::write`]. The folder must have passed
+    /// Reads a graph written by [`Graph::write`]. The folder must have passed
     /// the dump checks first: the library trusts its input.
-    pub(super) fn read(folder: &Path, basename: &str) -> Result<Self, String> {
+    pub(super) fn read(folder: &Path) -> Result<Self, String> {
         // The loaded graph borrows its loader for as long as it lives (hnsw_rs
         // ties the two for memory-mapped data, unused here). The loader is a
         // few paths and counters, leaked once per load, so the graph can be
         // 'static.
-        let loader: &'static HnswIo = Box::leak(Box::new(HnswIo::new(folder, basename)));
+        let loader: &'static HnswIo = Box::leak(Box::new(HnswIo::new(folder, BASENAME)));
         let loaded = catch_unwind(AssertUnwindSafe(|| {
             loader.load_hnsw_with_dist::<f32, ClampedDot>(ClampedDot)
         }));
-        let mut graph: Graph = match loaded {
+        let mut graph: HnswLib = match loaded {
             Ok(Ok(g)) => g,
             Ok(Err(e)) => return Err(format!("hnsw_rs could not read the dump: {e}")),
             Err(_) => return Err("hnsw_rs failed while reading the dump".into()),
@@ -127,13 +85,62 @@ impl HnswGraph {
         graph.set_extend_candidates(false);
         Ok(Self { graph })
     }
+}
 
-    /// Calls `each` with every point's id and vector, layer by layer (a point
-    /// sits in exactly one layer's list); stops at the first error.
-    pub(super) fn each_point<E>(
+impl Graph for HnswGraph {
+    /// hnsw_rs grows its point table as it goes.
+    fn reserve(&self, _additional: usize) -> Result<(), IndexError> {
+        Ok(())
+    }
+
+    fn insert(&self, vector: &[f32], id: RowId) -> Result<(), IndexError> {
+        // Checked when rows enter the index: ids fit a usize.
+        let data_id = id as usize;
+        catch_unwind(AssertUnwindSafe(|| {
+            self.graph.insert_slice((vector, data_id))
+        }))
+        .map_err(|_| IndexError::Internal("insert"))
+    }
+
+    /// With `only`, walks the whole graph keeping only allowed points among
+    /// the `ef` best (hnsw_rs's filtered search).
+    fn search(
         &self,
-        mut each: impl FnMut(RowId, &[f32]) -> Result<(), E>,
-    ) -> Result<(), E> {
+        q: &[f32],
+        k: usize,
+        ef: usize,
+        only: Option<RowFilter<'_>>,
+    ) -> Result<Vec<Neighbour>, IndexError> {
+        let allowed = only.map(|f| move |id: &usize| f(*id as RowId));
+        let filter = allowed.as_ref().map(|f| f as &dyn FilterT);
+        let found = catch_unwind(AssertUnwindSafe(|| {
+            self.graph.search_filter(q, k, ef, filter)
+        }))
+        .map_err(|_| IndexError::Internal("search"))?;
+        Ok(best_k(
+            found.into_iter().map(|n| (n.d_id as RowId, n.distance)),
+            k,
+        ))
+    }
+
+    fn len(&self) -> usize {
+        self.graph.get_nb_point()
+    }
+
+    fn write(&self, folder: &Path) -> Result<Vec<String>, String> {
+        match catch_unwind(AssertUnwindSafe(|| self.graph.file_dump(folder, BASENAME))) {
+            Ok(Ok(name)) if name == BASENAME => Ok(Self::dump_files()),
+            Ok(Ok(name)) => Err(format!(
+                "hnsw_rs wrote its files as {name:?}, not {BASENAME:?} (the folder was not empty)"
+            )),
+            Ok(Err(e)) => Err(e.to_string()),
+            Err(_) => Err("it panicked".into()),
+        }
+    }
+
+    /// Lists the points layer by layer (a point sits in exactly one layer's
+    /// list); `known` is not needed.
+    fn each_point(&self, _known: &[RowId], each: PointVisitor<'_>) -> Result<(), String> {
         let indexation = self.graph.get_point_indexation();
         for layer in 0..HNSW_LAYERS {
             // The layer iterator indexes without a bounds check; a layer that

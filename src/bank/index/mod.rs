@@ -14,7 +14,9 @@
 //! - `build`: opening (load the dump or build the graph) and inserting.
 //! - `search`: graph, exact and tag-filtered search.
 //! - `persistence`: writing the dump and checking one before it is used.
-//! - `hnsw`: the graph itself, the one file that calls hnsw_rs.
+//! - `graph`: the [`IndexBackend`] choice and the trait every graph library
+//!   implements; `hnsw`: the one file that calls hnsw_rs, `usearch_graph`
+//!   the one that calls usearch.
 //!
 //! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
 //! Inserts run in parallel with each other and with searches; a dump holds
@@ -25,10 +27,12 @@
 
 mod build;
 pub mod errors;
+mod graph;
 mod hnsw;
 pub mod parameters;
 mod persistence;
 mod search;
+mod usearch_graph;
 
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
@@ -38,6 +42,7 @@ use serde::Serialize;
 
 pub use build::{GraphOrigin, LoadReport, RowSource};
 pub use errors::IndexError;
+pub use graph::IndexBackend;
 pub use parameters::{
     check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
     SearchMode, DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH,
@@ -48,7 +53,7 @@ pub use search::{Answered, FilterWalk, SearchAnswer};
 
 use super::exact::ExactRows;
 use super::RowId;
-use hnsw::HnswGraph;
+use graph::Graph;
 use persistence::DumpState;
 
 /// Numbers for `GET /v1/bank`.
@@ -85,7 +90,7 @@ pub struct VectorIndex {
     params: IndexParams,
     /// `<root>/<digest>`, or `None` in memory.
     dir: Option<PathBuf>,
-    graph: HnswGraph,
+    graph: Box<dyn Graph>,
     rows: RwLock<ExactRows>,
     /// Inserts share it, a dump takes it alone (see the module docs).
     gate: RwLock<()>,
@@ -122,7 +127,7 @@ impl VectorIndex {
             dim: dimension,
             params,
             dir: None,
-            graph: HnswGraph::new(&params, 1),
+            graph: params.backend.new_graph(&params, dimension, 1)?,
             rows: RwLock::new(ExactRows::new(dimension)),
             gate: RwLock::new(()),
             indexed: AtomicUsize::new(0),

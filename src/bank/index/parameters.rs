@@ -8,6 +8,7 @@ use std::collections::HashSet;
 use serde::Serialize;
 
 use super::errors::IndexError;
+use super::graph::IndexBackend;
 use crate::bank::RowId;
 
 /// HNSW `M`: links per node on the upper layers (twice that on layer 0).
@@ -87,6 +88,8 @@ pub struct IndexParams {
     pub exact_below: usize,
     /// Threads for building and replaying ([`DEFAULT_BUILD_THREADS`]).
     pub build_threads: usize,
+    /// The graph library ([`IndexBackend::default`]).
+    pub backend: IndexBackend,
 }
 
 impl Default for IndexParams {
@@ -97,6 +100,7 @@ impl Default for IndexParams {
             ef_search: DEFAULT_EF_SEARCH,
             exact_below: DEFAULT_EXACT_BELOW,
             build_threads: DEFAULT_BUILD_THREADS,
+            backend: IndexBackend::default(),
         }
     }
 }

@@ -9,7 +9,8 @@ use std::time::Instant;
 
 use serde::Serialize;
 
-use super::hnsw::HnswGraph;
+use super::graph::Graph;
+use super::parameters::IndexParams;
 use super::{write, IndexError, VectorIndex};
 use crate::bank::dump::{self, Manifest};
 use crate::bank::exact::ExactRows;
@@ -66,14 +67,14 @@ impl VectorIndex {
             path: dir.clone(),
             source,
         })?;
-        let written = self.graph.write(&tmp, dump::HNSW_BASENAME);
+        let written = self.graph.write(&tmp);
         let max_row_id = self
             .any_indexed
             .load(Ordering::SeqCst)
             .then(|| self.max_indexed.load(Ordering::SeqCst));
         drop(exclusive);
-        let basename = match written {
-            Ok(name) => name,
+        let files = match written {
+            Ok(files) => files,
             Err(message) => {
                 let _ = std::fs::remove_dir_all(&tmp);
                 return Err(IndexError::DumpFailed { path: tmp, message });
@@ -81,20 +82,20 @@ impl VectorIndex {
         };
         let manifest = Manifest {
             format: dump::MANIFEST_FORMAT,
-            hnsw_rs: dump::HNSW_RS_VERSION.to_string(),
-            distance: HnswGraph::distance_name(),
+            backend: self.params.backend.name().to_string(),
+            library: self.params.backend.library().to_string(),
+            distance: self.params.backend.distance(),
             digest: self.digest.clone(),
             dimension: self.dim,
             max_connections: self.params.max_connections,
             ef_construction: self.params.ef_construction,
             rows,
             max_row_id,
-            basename,
             files: Vec::new(),
             written_at_unix_ms: dump::unix_ms(),
         };
         let at = manifest.written_at_unix_ms;
-        if let Err(source) = dump::publish(dir, &tmp, manifest) {
+        if let Err(source) = dump::publish(dir, &tmp, &files, manifest) {
             let _ = std::fs::remove_dir_all(&tmp);
             return Err(IndexError::DumpIo {
                 path: dir.clone(),
@@ -114,6 +115,9 @@ impl VectorIndex {
     }
 }
 
+/// A dump read back: its graph, its manifest and the ids it holds.
+type LoadedDump = (Box<dyn Graph>, Manifest, HashSet<RowId>);
+
 /// Loads a dump that passed [`dump::check`] and verifies it against the rows
 /// of the source: same count as the manifest, every row known with the same
 /// vector, no row twice. Returns the graph and the ids it holds, or why the
@@ -121,10 +125,11 @@ impl VectorIndex {
 pub(super) fn load_checked(
     checked: &dump::CheckedDump,
     rows: &ExactRows,
+    params: &IndexParams,
     dim: usize,
-) -> Result<(HnswGraph, Manifest, HashSet<RowId>), String> {
+) -> Result<LoadedDump, String> {
     let manifest = checked.manifest.clone();
-    let graph = HnswGraph::read(&checked.folder, &manifest.basename)?;
+    let graph = params.backend.read_graph(&checked.folder, params, dim)?;
     if graph.len() != manifest.rows {
         return Err(format!(
             "dump holds {} rows, its manifest says {}",
@@ -133,7 +138,7 @@ pub(super) fn load_checked(
         ));
     }
     let mut ids = HashSet::with_capacity(manifest.rows);
-    graph.each_point(|id, v| {
+    graph.each_point(rows.ids(), &mut |id, v| {
         if v.len() != dim {
             return Err(format!(
                 "dump row {id} has {} numbers, expected {dim}",
@@ -156,11 +161,13 @@ pub(super) fn load_checked(
         }
         Ok(())
     })?;
+    // The graph holds manifest.rows points (checked above); those not met
+    // among the store's rows are unknown to it (a backend that looks rows up
+    // by id cannot name them).
     if ids.len() != manifest.rows {
         return Err(format!(
-            "dump lists {} rows, its manifest says {}",
-            ids.len(),
-            manifest.rows
+            "dump holds {} rows which the store does not have",
+            manifest.rows - ids.len().min(manifest.rows)
         ));
     }
     Ok((graph, manifest, ids))

@@ -20,6 +20,14 @@ fn ids(hits: &[Neighbour]) -> Vec<RowId> {
     hits.iter().map(|h| h.id).collect()
 }
 
+/// Default settings on `backend`: every test runs on every backend.
+fn with_backend(backend: IndexBackend) -> IndexParams {
+    IndexParams {
+        backend,
+        ..IndexParams::default()
+    }
+}
+
 /// Graph search only, so small test banks exercise HNSW and not the scan.
 fn graph(k: usize) -> Search<'static> {
     Search {
@@ -32,188 +40,200 @@ fn graph(k: usize) -> Search<'static> {
 
 #[test]
 fn default_breadth_meets_the_recall_target_on_a_blocks_like_bank() {
-    let (bank, queries) = blocks_like(20_000, 200, DIM, 11);
-    let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
-    index.insert(&rows_of(&bank, 1)).unwrap();
-    let recall = index_recall(&index, &queries, 10, DEFAULT_EF_SEARCH).unwrap();
-    assert!(
-        recall >= 0.98,
-        "recall@10 = {recall} at ef_search {DEFAULT_EF_SEARCH}"
-    );
+    for backend in IndexBackend::ALL {
+        let (bank, queries) = blocks_like(20_000, 200, DIM, 11);
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap();
+        index.insert(&rows_of(&bank, 1)).unwrap();
+        let recall = index_recall(&index, &queries, 10, DEFAULT_EF_SEARCH).unwrap();
+        assert!(
+            recall >= 0.98,
+            "recall@10 = {recall} at ef_search {DEFAULT_EF_SEARCH}"
+        );
+    }
 }
 
 #[test]
 fn self_queries_and_duplicates_never_panic() {
-    let data = uniform_sphere(300, DIM, 3);
-    let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
-    let mut rows = rows_of(&data, 1);
-    // Every vector three times under different ids: exact duplicates.
-    rows.extend(rows_of(&data, 1_001));
-    rows.extend(rows_of(&data, 2_001));
-    assert_eq!(index.insert(&rows).unwrap(), 900);
-    for (id, v) in rows.iter().take(300) {
-        let hits = index.search(v, &graph(3)).unwrap().hits;
-        assert!(hits.iter().all(|h| h.cosine > 0.9999), "row {id}: {hits:?}");
-        assert!(ids(&hits).contains(id));
+    for backend in IndexBackend::ALL {
+        let data = uniform_sphere(300, DIM, 3);
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap();
+        let mut rows = rows_of(&data, 1);
+        // Every vector three times under different ids: exact duplicates.
+        rows.extend(rows_of(&data, 1_001));
+        rows.extend(rows_of(&data, 2_001));
+        assert_eq!(index.insert(&rows).unwrap(), 900);
+        for (id, v) in rows.iter().take(300) {
+            let hits = index.search(v, &graph(3)).unwrap().hits;
+            assert!(hits.iter().all(|h| h.cosine > 0.9999), "row {id}: {hits:?}");
+            assert!(ids(&hits).contains(id));
+        }
+        assert_eq!(
+            index.insert(&rows[..5]).unwrap(),
+            0,
+            "same ids are not inserted twice"
+        );
     }
-    assert_eq!(
-        index.insert(&rows[..5]).unwrap(),
-        0,
-        "same ids are not inserted twice"
-    );
 }
 
 #[test]
 fn bad_vectors_and_settings_are_refused_with_errors() {
-    let index = VectorIndex::in_memory(DIGEST_A, 4, IndexParams::default()).unwrap();
-    assert!(matches!(
-        index.insert(&[(1, vec![1.0; 3])]),
-        Err(IndexError::Dimension { got: 3, .. })
-    ));
-    assert!(matches!(
-        index.insert(&[(1, vec![f32::NAN; 4])]),
-        Err(IndexError::NotFinite { position: 0 })
-    ));
-    assert!(matches!(
-        index.insert(&[(1, vec![0.0; 4])]),
-        Err(IndexError::Zero)
-    ));
-    assert!(matches!(
-        index.search(&[1.0; 4], &graph(0)),
-        Err(IndexError::Setting { name: "k", .. })
-    ));
-    assert!(
-        index.search(&[1.0; 4], &graph(5)).unwrap().hits.is_empty(),
-        "an empty index answers nothing"
-    );
-    let bad = IndexParams {
-        max_connections: 300,
-        ..IndexParams::default()
-    };
-    assert!(VectorIndex::in_memory(DIGEST_A, 4, bad).is_err());
-    assert!(matches!(
-        VectorIndex::in_memory("../x", 4, IndexParams::default()),
-        Err(IndexError::Digest(_))
-    ));
+    for backend in IndexBackend::ALL {
+        let index = VectorIndex::in_memory(DIGEST_A, 4, with_backend(backend)).unwrap();
+        assert!(matches!(
+            index.insert(&[(1, vec![1.0; 3])]),
+            Err(IndexError::Dimension { got: 3, .. })
+        ));
+        assert!(matches!(
+            index.insert(&[(1, vec![f32::NAN; 4])]),
+            Err(IndexError::NotFinite { position: 0 })
+        ));
+        assert!(matches!(
+            index.insert(&[(1, vec![0.0; 4])]),
+            Err(IndexError::Zero)
+        ));
+        assert!(matches!(
+            index.search(&[1.0; 4], &graph(0)),
+            Err(IndexError::Setting { name: "k", .. })
+        ));
+        assert!(
+            index.search(&[1.0; 4], &graph(5)).unwrap().hits.is_empty(),
+            "an empty index answers nothing"
+        );
+        let bad = IndexParams {
+            max_connections: 300,
+            ..with_backend(backend)
+        };
+        assert!(VectorIndex::in_memory(DIGEST_A, 4, bad).is_err());
+        assert!(matches!(
+            VectorIndex::in_memory("../x", 4, with_backend(backend)),
+            Err(IndexError::Digest(_))
+        ));
+    }
 }
 
 #[test]
 fn dump_and_reload_answer_the_same_and_replay_later_rows() {
-    let root = tempfile::tempdir().unwrap();
-    let data = uniform_sphere(3_000, DIM, 21);
-    let mut source = rows_of(&data[..2_000 * DIM], 1);
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert!(matches!(report.origin, GraphOrigin::Built { .. }));
-    let queries = uniform_sphere(20, DIM, 99);
-    let before: Vec<Vec<RowId>> = queries
-        .chunks(DIM)
-        .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
-        .collect();
-    let dumped = index.dump().unwrap();
-    assert!(dumped.written);
-    assert_eq!(dumped.rows, 2_000);
-    assert!(
-        !index.dump().unwrap().written,
-        "nothing changed, nothing written"
-    );
-    drop(index);
+    for backend in IndexBackend::ALL {
+        let root = tempfile::tempdir().unwrap();
+        let data = uniform_sphere(3_000, DIM, 21);
+        let mut source = rows_of(&data[..2_000 * DIM], 1);
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        assert!(matches!(report.origin, GraphOrigin::Built { .. }));
+        let queries = uniform_sphere(20, DIM, 99);
+        let before: Vec<Vec<RowId>> = queries
+            .chunks(DIM)
+            .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
+            .collect();
+        let dumped = index.dump().unwrap();
+        assert!(dumped.written);
+        assert_eq!(dumped.rows, 2_000);
+        assert!(
+            !index.dump().unwrap().written,
+            "nothing changed, nothing written"
+        );
+        drop(index);
 
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(
-        report.origin,
-        GraphOrigin::Loaded {
-            dumped: 2_000,
-            replayed: 0
-        }
-    );
-    let after: Vec<Vec<RowId>> = queries
-        .chunks(DIM)
-        .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
-        .collect();
-    assert_eq!(before, after, "a reloaded graph answers as the dumped one");
-    drop(index);
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        assert_eq!(
+            report.origin,
+            GraphOrigin::Loaded {
+                dumped: 2_000,
+                replayed: 0
+            }
+        );
+        let after: Vec<Vec<RowId>> = queries
+            .chunks(DIM)
+            .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
+            .collect();
+        assert_eq!(before, after, "a reloaded graph answers as the dumped one");
+        drop(index);
 
-    // Rows committed to the source after the dump are replayed at open.
-    source.extend(rows_of(&data[2_000 * DIM..], 2_001));
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(
-        report.origin,
-        GraphOrigin::Loaded {
-            dumped: 2_000,
-            replayed: 1_000
+        // Rows committed to the source after the dump are replayed at open.
+        source.extend(rows_of(&data[2_000 * DIM..], 2_001));
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        assert_eq!(
+            report.origin,
+            GraphOrigin::Loaded {
+                dumped: 2_000,
+                replayed: 1_000
+            }
+        );
+        assert_eq!(index.stats().indexed, 3_000);
+        for (id, v) in source.iter().skip(2_000).step_by(97) {
+            assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
         }
-    );
-    assert_eq!(index.stats().indexed, 3_000);
-    for (id, v) in source.iter().skip(2_000).step_by(97) {
-        assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
+        assert!(
+            index.dump().unwrap().written,
+            "replayed rows make the dump stale"
+        );
     }
-    assert!(
-        index.dump().unwrap().written,
-        "replayed rows make the dump stale"
-    );
 }
 
 #[test]
 fn another_digest_or_settings_rebuild_instead_of_loading() {
-    let root = tempfile::tempdir().unwrap();
-    let source = rows_of(&uniform_sphere(500, DIM, 5), 1);
-    let (index, _) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    index.dump().unwrap();
-    drop(index);
+    for backend in IndexBackend::ALL {
+        let root = tempfile::tempdir().unwrap();
+        let source = rows_of(&uniform_sphere(500, DIM, 5), 1);
+        let (index, _) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        index.dump().unwrap();
+        drop(index);
 
-    // A new bundle digest has its own folder: nothing to load there.
-    let (_, report) =
-        VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!(
-        report.origin,
-        GraphOrigin::Built {
-            reason: "no dump yet".into()
-        }
-    );
+        // A new bundle digest has its own folder: nothing to load there.
+        let (_, report) =
+            VectorIndex::open(root.path(), DIGEST_B, DIM, with_backend(backend), &source).unwrap();
+        assert_eq!(
+            report.origin,
+            GraphOrigin::Built {
+                reason: "no dump yet".into()
+            }
+        );
 
-    // A dump copied under another digest's folder is refused by its manifest.
-    let b_dir = root.path().join(DIGEST_B);
-    std::fs::remove_dir_all(&b_dir).unwrap();
-    copy_dir(&root.path().join(DIGEST_A), &b_dir);
-    let (_, report) =
-        VectorIndex::open(root.path(), DIGEST_B, DIM, IndexParams::default(), &source).unwrap();
-    assert!(
-        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("digest")),
-        "{report:?}"
-    );
+        // A dump copied under another digest's folder is refused by its manifest.
+        let b_dir = root.path().join(DIGEST_B);
+        std::fs::remove_dir_all(&b_dir).unwrap();
+        copy_dir(&root.path().join(DIGEST_A), &b_dir);
+        let (_, report) =
+            VectorIndex::open(root.path(), DIGEST_B, DIM, with_backend(backend), &source).unwrap();
+        assert!(
+            matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("digest")),
+            "{report:?}"
+        );
 
-    // Other build settings: rebuilt to honour them.
-    let other = IndexParams {
-        max_connections: 8,
-        ..IndexParams::default()
-    };
-    let (_, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, other, &source).unwrap();
-    assert!(
-        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("M=16")),
-        "{report:?}"
-    );
+        // Other build settings: rebuilt to honour them.
+        let other = IndexParams {
+            max_connections: 8,
+            ..with_backend(backend)
+        };
+        let (_, report) = VectorIndex::open(root.path(), DIGEST_A, DIM, other, &source).unwrap();
+        assert!(
+            matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("M=16")),
+            "{report:?}"
+        );
+    }
 }
 
 #[test]
 fn a_store_that_lost_rows_makes_the_dump_unusable() {
-    let root = tempfile::tempdir().unwrap();
-    let source = rows_of(&uniform_sphere(500, DIM, 6), 1);
-    let (index, _) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    index.dump().unwrap();
-    drop(index);
-    let fewer: Vec<_> = source[..400].to_vec();
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &fewer).unwrap();
-    assert!(
-        matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("does not have")),
-        "{report:?}"
-    );
-    assert_eq!(index.len(), 400);
+    for backend in IndexBackend::ALL {
+        let root = tempfile::tempdir().unwrap();
+        let source = rows_of(&uniform_sphere(500, DIM, 6), 1);
+        let (index, _) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        index.dump().unwrap();
+        drop(index);
+        let fewer: Vec<_> = source[..400].to_vec();
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &fewer).unwrap();
+        assert!(
+            matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains("does not have")),
+            "{report:?}"
+        );
+        assert_eq!(index.len(), 400);
+    }
 }
 
 fn copy_dir(from: &std::path::Path, to: &std::path::Path) {
@@ -231,254 +251,313 @@ fn copy_dir(from: &std::path::Path, to: &std::path::Path) {
 
 #[test]
 fn truncated_or_garbled_dump_files_are_rebuilt_not_read() {
-    let data = uniform_sphere(800, DIM, 8);
-    let source = rows_of(&data, 1);
-    for damage in [
-        "truncate-graph",
-        "garble-data",
-        "garble-manifest",
-        "empty-current",
-    ] {
-        let root = tempfile::tempdir().unwrap();
-        let (index, _) =
-            VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-        let q = &data[..DIM];
-        let expected = ids(&index.search(q, &graph(5)).unwrap().hits);
-        index.dump().unwrap();
-        drop(index);
-        let digest_dir = root.path().join(DIGEST_A);
-        let current = std::fs::read_to_string(digest_dir.join("CURRENT")).unwrap();
-        let folder = digest_dir.join(current.trim());
-        match damage {
-            "truncate-graph" => {
-                let p = folder.join("index.hnsw.graph");
-                let len = std::fs::metadata(&p).unwrap().len();
-                std::fs::OpenOptions::new()
-                    .write(true)
-                    .open(&p)
-                    .unwrap()
-                    .set_len(len / 2)
+    for backend in IndexBackend::ALL {
+        let data = uniform_sphere(800, DIM, 8);
+        let source = rows_of(&data, 1);
+        for damage in [
+            "truncate-graph",
+            "garble-data",
+            "garble-manifest",
+            "empty-current",
+        ] {
+            let root = tempfile::tempdir().unwrap();
+            let (index, _) =
+                VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source)
                     .unwrap();
-            }
-            "garble-data" => {
-                let p = folder.join("index.hnsw.data");
-                let mut bytes = std::fs::read(&p).unwrap();
-                for b in bytes.iter_mut().skip(10).step_by(7) {
-                    *b ^= 0xA5;
+            let q = &data[..DIM];
+            let expected = ids(&index.search(q, &graph(5)).unwrap().hits);
+            index.dump().unwrap();
+            drop(index);
+            let digest_dir = root.path().join(DIGEST_A);
+            let current = std::fs::read_to_string(digest_dir.join("CURRENT")).unwrap();
+            let folder = digest_dir.join(current.trim());
+            match damage {
+                "truncate-graph" => {
+                    let p = folder.join(&backend.dump_files()[0]);
+                    let len = std::fs::metadata(&p).unwrap().len();
+                    std::fs::OpenOptions::new()
+                        .write(true)
+                        .open(&p)
+                        .unwrap()
+                        .set_len(len / 2)
+                        .unwrap();
                 }
-                std::fs::write(&p, bytes).unwrap();
+                "garble-data" => {
+                    let p = folder.join(backend.dump_files().last().unwrap());
+                    let mut bytes = std::fs::read(&p).unwrap();
+                    for b in bytes.iter_mut().skip(10).step_by(7) {
+                        *b ^= 0xA5;
+                    }
+                    std::fs::write(&p, bytes).unwrap();
+                }
+                "garble-manifest" => {
+                    std::fs::write(folder.join("manifest.json"), b"\x00\x01garbage").unwrap()
+                }
+                _ => std::fs::write(digest_dir.join("CURRENT"), b"").unwrap(),
             }
-            "garble-manifest" => {
-                std::fs::write(folder.join("manifest.json"), b"\x00\x01garbage").unwrap()
-            }
-            _ => std::fs::write(digest_dir.join("CURRENT"), b"").unwrap(),
+            let (index, report) =
+                VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source)
+                    .unwrap();
+            assert!(
+                matches!(report.origin, GraphOrigin::Built { .. }),
+                "{damage}: {report:?}"
+            );
+            assert_eq!(index.len(), 800, "{damage}");
+            assert_eq!(
+                ids(&index.search(q, &graph(5)).unwrap().hits)[0],
+                expected[0],
+                "{damage}"
+            );
         }
-        let (index, report) =
-            VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-        assert!(
-            matches!(report.origin, GraphOrigin::Built { .. }),
-            "{damage}: {report:?}"
-        );
-        assert_eq!(index.len(), 800, "{damage}");
-        assert_eq!(
-            ids(&index.search(q, &graph(5)).unwrap().hits)[0],
-            expected[0],
-            "{damage}"
-        );
     }
 }
 
 #[test]
 fn unusable_source_rows_are_skipped_and_counted() {
-    let root = tempfile::tempdir().unwrap();
-    let mut source = rows_of(&uniform_sphere(10, DIM, 1), 1);
-    source.push((100, vec![f32::NAN; DIM]));
-    source.push((101, vec![1.0; 3]));
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    assert_eq!((report.rows, report.skipped), (10, 2));
-    assert_eq!(report.skipped_ids, vec![100, 101]);
-    assert_eq!(index.len(), 10);
+    for backend in IndexBackend::ALL {
+        let root = tempfile::tempdir().unwrap();
+        let mut source = rows_of(&uniform_sphere(10, DIM, 1), 1);
+        source.push((100, vec![f32::NAN; DIM]));
+        source.push((101, vec![1.0; 3]));
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        assert_eq!((report.rows, report.skipped), (10, 2));
+        assert_eq!(report.skipped_ids, vec![100, 101]);
+        assert_eq!(index.len(), 10);
+    }
 }
 
 #[test]
 fn tag_filters_only_return_allowed_rows_whatever_their_size() {
-    let (bank, queries) = blocks_like(6_000, 20, DIM, 4);
-    let params = IndexParams {
-        exact_below: 500,
-        ..IndexParams::default()
-    };
-    let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
-    index.insert(&rows_of(&bank, 1)).unwrap();
-    let narrow: HashSet<RowId> = (1..=6_000).filter(|i| i % 50 == 0).collect();
-    let wide: HashSet<RowId> = (1..=6_000).filter(|i| i % 3 == 0).collect();
-    // Both ways of walking the graph with a filter, over three set widths
-    // (2%, 14% and 33% of the bank; the 2% set is scanned exactly).
-    let sparse: HashSet<RowId> = (1..=6_000).filter(|i| i % 7 == 0).collect();
-    for (walk, only) in [FilterWalk::Within, FilterWalk::OverFetch]
-        .into_iter()
-        .flat_map(|w| [(w, &narrow), (w, &wide), (w, &sparse)])
-    {
-        for q in queries.chunks(DIM) {
-            let search = Search {
-                k: 10,
-                ef_search: None,
-                mode: SearchMode::Auto,
-                only: Some(only),
-            };
-            let got = index.search_walking(q, &search, walk).unwrap();
-            assert_eq!(got.hits.len(), 10, "{walk:?}");
-            assert!(got.hits.iter().all(|h| only.contains(&h.id)));
-            let exact = index.exact(q, 10, Some(only)).unwrap();
-            let recall = crate::bank::recall::recall_of_query(
-                &exact.iter().map(|h| h.cosine).collect::<Vec<_>>(),
-                &got.hits.iter().map(|h| h.cosine).collect::<Vec<_>>(),
-                10,
-            );
-            assert!(recall >= 0.8, "{walk:?}: filtered recall {recall}");
+    for backend in IndexBackend::ALL {
+        let (bank, queries) = blocks_like(6_000, 20, DIM, 4);
+        let params = IndexParams {
+            exact_below: 500,
+            ..with_backend(backend)
+        };
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+        index.insert(&rows_of(&bank, 1)).unwrap();
+        let narrow: HashSet<RowId> = (1..=6_000).filter(|i| i % 50 == 0).collect();
+        let wide: HashSet<RowId> = (1..=6_000).filter(|i| i % 3 == 0).collect();
+        // Both ways of walking the graph with a filter, over three set widths
+        // (2%, 14% and 33% of the bank; the 2% set is scanned exactly).
+        let sparse: HashSet<RowId> = (1..=6_000).filter(|i| i % 7 == 0).collect();
+        for (walk, only) in [FilterWalk::Within, FilterWalk::OverFetch]
+            .into_iter()
+            .flat_map(|w| [(w, &narrow), (w, &wide), (w, &sparse)])
+        {
+            for q in queries.chunks(DIM) {
+                let search = Search {
+                    k: 10,
+                    ef_search: None,
+                    mode: SearchMode::Auto,
+                    only: Some(only),
+                };
+                let got = index.search_walking(q, &search, walk).unwrap();
+                assert_eq!(got.hits.len(), 10, "{walk:?}");
+                assert!(got.hits.iter().all(|h| only.contains(&h.id)));
+                let exact = index.exact(q, 10, Some(only)).unwrap();
+                let recall = crate::bank::recall::recall_of_query(
+                    &exact.iter().map(|h| h.cosine).collect::<Vec<_>>(),
+                    &got.hits.iter().map(|h| h.cosine).collect::<Vec<_>>(),
+                    10,
+                );
+                assert!(recall >= 0.8, "{walk:?}: filtered recall {recall}");
+            }
         }
+        let search = Search {
+            k: 10,
+            ef_search: None,
+            mode: SearchMode::Auto,
+            only: Some(&narrow),
+        };
+        assert_eq!(
+            index.search(&queries[..DIM], &search).unwrap().answered,
+            Answered::Exact
+        );
     }
-    let search = Search {
-        k: 10,
-        ef_search: None,
-        mode: SearchMode::Auto,
-        only: Some(&narrow),
-    };
-    assert_eq!(
-        index.search(&queries[..DIM], &search).unwrap().answered,
-        Answered::Exact
-    );
 }
 
 #[test]
 fn batched_searches_answer_each_query_as_a_single_search_does() {
-    let (bank, queries) = blocks_like(3_000, 30, DIM, 6);
-    let params = IndexParams {
-        exact_below: 200,
-        ..IndexParams::default()
-    };
-    let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
-    index.insert(&rows_of(&bank, 1)).unwrap();
-    let queries: Vec<Vec<f32>> = queries.chunks(DIM).map(<[f32]>::to_vec).collect();
-    let narrow: HashSet<RowId> = (1..=3_000).filter(|i| i % 40 == 0).collect();
-    let wide: HashSet<RowId> = (1..=3_000).filter(|i| i % 2 == 0).collect();
-    for (mode, only) in [
-        (SearchMode::Exact, None),
-        (SearchMode::Exact, Some(&narrow)),
-        (SearchMode::Exact, Some(&wide)),
-        (SearchMode::Auto, Some(&narrow)),
-        (SearchMode::Index, None),
-    ] {
-        let search = Search {
-            k: 10,
-            ef_search: None,
-            mode,
-            only,
+    for backend in IndexBackend::ALL {
+        let (bank, queries) = blocks_like(3_000, 30, DIM, 6);
+        let params = IndexParams {
+            exact_below: 200,
+            ..with_backend(backend)
         };
-        let batched = index.search_many(&queries, &search).unwrap();
-        assert_eq!(batched.len(), queries.len());
-        for (q, got) in queries.iter().zip(&batched) {
-            assert_eq!(got, &index.search(q, &search).unwrap());
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+        index.insert(&rows_of(&bank, 1)).unwrap();
+        let queries: Vec<Vec<f32>> = queries.chunks(DIM).map(<[f32]>::to_vec).collect();
+        let narrow: HashSet<RowId> = (1..=3_000).filter(|i| i % 40 == 0).collect();
+        let wide: HashSet<RowId> = (1..=3_000).filter(|i| i % 2 == 0).collect();
+        for (mode, only) in [
+            (SearchMode::Exact, None),
+            (SearchMode::Exact, Some(&narrow)),
+            (SearchMode::Exact, Some(&wide)),
+            (SearchMode::Auto, Some(&narrow)),
+            (SearchMode::Index, None),
+        ] {
+            let search = Search {
+                k: 10,
+                ef_search: None,
+                mode,
+                only,
+            };
+            let batched = index.search_many(&queries, &search).unwrap();
+            assert_eq!(batched.len(), queries.len());
+            for (q, got) in queries.iter().zip(&batched) {
+                assert_eq!(got, &index.search(q, &search).unwrap());
+            }
         }
+        let none: Vec<Vec<f32>> = Vec::new();
+        assert!(matches!(
+            index.search_many(&none, &Search::top(3)),
+            Err(IndexError::Setting {
+                name: "queries",
+                ..
+            })
+        ));
+        let short = vec![queries[0].clone(), vec![1.0; DIM - 1]];
+        assert!(matches!(
+            index.search_many(&short, &Search::top(3)),
+            Err(IndexError::Dimension { .. })
+        ));
     }
-    let none: Vec<Vec<f32>> = Vec::new();
-    assert!(matches!(
-        index.search_many(&none, &Search::top(3)),
-        Err(IndexError::Setting {
-            name: "queries",
-            ..
-        })
-    ));
-    let short = vec![queries[0].clone(), vec![1.0; DIM - 1]];
-    assert!(matches!(
-        index.search_many(&short, &Search::top(3)),
-        Err(IndexError::Dimension { .. })
-    ));
 }
 
 #[test]
 fn auto_mode_scans_small_banks_exactly() {
-    let index = VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap();
-    index
-        .insert(&rows_of(&uniform_sphere(100, DIM, 2), 1))
-        .unwrap();
-    let q = uniform_sphere(1, DIM, 77);
-    assert_eq!(
-        index.search(&q, &Search::top(5)).unwrap().answered,
-        Answered::Exact
-    );
-    assert_eq!(
-        index.search(&q, &graph(5)).unwrap().answered,
-        Answered::Index
-    );
+    for backend in IndexBackend::ALL {
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap();
+        index
+            .insert(&rows_of(&uniform_sphere(100, DIM, 2), 1))
+            .unwrap();
+        let q = uniform_sphere(1, DIM, 77);
+        assert_eq!(
+            index.search(&q, &Search::top(5)).unwrap().answered,
+            Answered::Exact
+        );
+        assert_eq!(
+            index.search(&q, &graph(5)).unwrap().answered,
+            Answered::Index
+        );
+    }
 }
 
 #[test]
 fn concurrent_inserts_and_searches_find_every_inserted_row() {
-    let index =
-        std::sync::Arc::new(VectorIndex::in_memory(DIGEST_A, DIM, IndexParams::default()).unwrap());
-    let data = uniform_sphere(4_000, DIM, 31);
-    let rows = rows_of(&data, 1);
-    index.insert(&rows[..1_000]).unwrap();
-    let done = std::sync::Arc::new(AtomicBool::new(false));
-    let searcher = {
-        let (index, done) = (index.clone(), done.clone());
-        let queries = uniform_sphere(50, DIM, 5);
-        std::thread::spawn(move || {
-            let mut n = 0;
-            while !done.load(Ordering::SeqCst) {
-                for q in queries.chunks(DIM) {
-                    assert!(!index.search(q, &graph(10)).unwrap().hits.is_empty());
-                    n += 1;
+    for backend in IndexBackend::ALL {
+        let index = std::sync::Arc::new(
+            VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap(),
+        );
+        let data = uniform_sphere(4_000, DIM, 31);
+        let rows = rows_of(&data, 1);
+        index.insert(&rows[..1_000]).unwrap();
+        let done = std::sync::Arc::new(AtomicBool::new(false));
+        let searcher = {
+            let (index, done) = (index.clone(), done.clone());
+            let queries = uniform_sphere(50, DIM, 5);
+            std::thread::spawn(move || {
+                let mut n = 0;
+                while !done.load(Ordering::SeqCst) {
+                    for q in queries.chunks(DIM) {
+                        assert!(!index.search(q, &graph(10)).unwrap().hits.is_empty());
+                        n += 1;
+                    }
                 }
+                n
+            })
+        };
+        for chunk in rows[1_000..].chunks(50) {
+            index.insert(chunk).unwrap();
+            for (id, v) in chunk {
+                assert!(index.contains(*id));
+                assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
             }
-            n
-        })
-    };
-    for chunk in rows[1_000..].chunks(50) {
-        index.insert(chunk).unwrap();
-        for (id, v) in chunk {
-            assert!(index.contains(*id));
-            assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
         }
+        done.store(true, Ordering::SeqCst);
+        assert!(searcher.join().unwrap() > 0);
+        assert_eq!(index.stats().indexed, 4_000);
     }
-    done.store(true, Ordering::SeqCst);
-    assert!(searcher.join().unwrap() > 0);
-    assert_eq!(index.stats().indexed, 4_000);
 }
 
 #[test]
 fn a_build_gives_up_when_asked_to_stop_and_the_next_open_builds_it() {
-    let root = tempfile::tempdir().unwrap();
-    let source = rows_of(&uniform_sphere(10_000, DIM, 12), 1);
-    let stop = std::sync::atomic::AtomicBool::new(false);
-    let started = std::time::Instant::now();
-    let asked = std::thread::scope(|s| {
-        // Asked to stop shortly after the build began (the service got SIGTERM).
-        s.spawn(|| {
-            std::thread::sleep(std::time::Duration::from_millis(30));
-            stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    for backend in IndexBackend::ALL {
+        let root = tempfile::tempdir().unwrap();
+        let source = rows_of(&uniform_sphere(10_000, DIM, 12), 1);
+        let stop = std::sync::atomic::AtomicBool::new(false);
+        let started = std::time::Instant::now();
+        let asked = std::thread::scope(|s| {
+            // Asked to stop shortly after the build began (the service got SIGTERM).
+            s.spawn(|| {
+                std::thread::sleep(std::time::Duration::from_millis(30));
+                stop.store(true, std::sync::atomic::Ordering::Relaxed);
+            });
+            VectorIndex::open_until(
+                root.path(),
+                DIGEST_A,
+                DIM,
+                with_backend(backend),
+                &source,
+                &stop,
+            )
         });
-        VectorIndex::open_until(
-            root.path(),
-            DIGEST_A,
-            DIM,
-            IndexParams::default(),
-            &source,
-            &stop,
-        )
-    });
-    let stopped_after = started.elapsed();
-    assert!(matches!(asked, Err(IndexError::Stopped)), "{asked:?}");
-    // The full build, for comparison (same rows, same machine, same run).
-    let started = std::time::Instant::now();
-    let (index, report) =
-        VectorIndex::open(root.path(), DIGEST_A, DIM, IndexParams::default(), &source).unwrap();
-    let built_after = started.elapsed();
-    assert_eq!(index.len(), 10_000);
-    assert!(matches!(report.origin, GraphOrigin::Built { .. }));
-    assert!(
-        stopped_after * 3 < built_after,
-        "stopping took {stopped_after:?} of a {built_after:?} build"
-    );
+        let stopped_after = started.elapsed();
+        assert!(matches!(asked, Err(IndexError::Stopped)), "{asked:?}");
+        // The full build, for comparison (same rows, same machine, same run).
+        let started = std::time::Instant::now();
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
+        let built_after = started.elapsed();
+        assert_eq!(index.len(), 10_000);
+        assert!(matches!(report.origin, GraphOrigin::Built { .. }));
+        assert!(
+            stopped_after * 3 < built_after,
+            "stopping took {stopped_after:?} of a {built_after:?} build"
+        );
+    }
+}
+
+#[test]
+fn switching_backend_at_start_rebuilds_and_each_reloads_only_its_own_dump() {
+    let root = tempfile::tempdir().unwrap();
+    let data = uniform_sphere(600, DIM, 31);
+    let source = rows_of(&data, 1);
+    let q = &data[5 * DIM..6 * DIM];
+    let [first, second] = IndexBackend::ALL;
+    for (from, to) in [(first, second), (second, first)] {
+        let (index, _) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(from), &source).unwrap();
+        // The first round builds and writes; the second loads the dump the
+        // first round's rebuild wrote, so there is nothing new to write.
+        index.dump().unwrap();
+        drop(index);
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(to), &source).unwrap();
+        let expected_reason = format!("the {from} backend, this index uses {to}");
+        assert!(
+            matches!(&report.origin, GraphOrigin::Built { reason } if reason.contains(&expected_reason)),
+            "{from} -> {to}: {report:?}"
+        );
+        assert_eq!(index.len(), 600);
+        assert_eq!(index.search(q, &graph(1)).unwrap().hits[0].id, 6, "{to}");
+        assert!(
+            index.dump().unwrap().written,
+            "the rebuilt {to} graph is dumped"
+        );
+        drop(index);
+        let (index, report) =
+            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(to), &source).unwrap();
+        assert_eq!(
+            report.origin,
+            GraphOrigin::Loaded {
+                dumped: 600,
+                replayed: 0
+            },
+            "{to} reloads its own dump"
+        );
+        assert_eq!(index.search(q, &graph(1)).unwrap().hits[0].id, 6, "{to}");
+    }
 }

@@ -1,0 +1,248 @@
+//! The HNSW graph through usearch (the `usearch` backend): the only file of
+//! the index that names the library. usearch is C++ (built by its crate's
+//! build script); its calls return errors as values, which become
+//! [`IndexError`]s.
+//!
+//! Three things usearch leaves to its caller:
+//! - Room: an insert past the reserved capacity fails, and reserving must not
+//!   run beside inserts or searches. Calls share a lock that reserving takes
+//!   alone, and inserts keep [`THREAD_SLOTS`] spare places so inserts running
+//!   at once never overrun.
+//! - Threads: each call borrows one of the per-thread contexts reserved with
+//!   the capacity, and fails when none is free. [`THREAD_SLOTS`] contexts are
+//!   reserved and a call waits for a free one instead of failing.
+//! - The search breadth is a setting of the whole index, not of a call: a
+//!   search at another breadth changes it with the lock held alone.
+
+use std::path::Path;
+use std::sync::{Condvar, Mutex, RwLock};
+
+use usearch::{Index, IndexOptions, MetricKind, ScalarKind};
+
+use super::errors::IndexError;
+use super::graph::{best_k, Graph, PointVisitor, RowFilter};
+use super::parameters::IndexParams;
+use super::{read, write};
+use crate::bank::exact::Neighbour;
+use crate::bank::RowId;
+
+/// Calls that may run inside usearch at once (searches and inserts). More
+/// wait for a free slot. Each slot holds a search context (candidate queues
+/// and a visited set, some kilobytes to a few megabytes at a million rows);
+/// the service's blocking pool rarely runs more index work at once than
+/// there are cores.
+const THREAD_SLOTS: usize = 64;
+
+/// The one file of a dump.
+const FILE: &str = "index.usearch";
+
+/// One usearch index over unit vectors (f32, inner product), keys the row ids.
+pub(super) struct UsearchGraph {
+    index: RwLock<Index>,
+    slots: Slots,
+}
+
+/// A counting semaphore over usearch's per-thread contexts.
+struct Slots {
+    free: Mutex<usize>,
+    freed: Condvar,
+}
+
+impl Slots {
+    fn new() -> Self {
+        Self {
+            free: Mutex::new(THREAD_SLOTS),
+            freed: Condvar::new(),
+        }
+    }
+
+    fn take(&self) -> SlotGuard<'_> {
+        let mut free = self.free.lock().unwrap_or_else(|e| e.into_inner());
+        while *free == 0 {
+            free = self.freed.wait(free).unwrap_or_else(|e| e.into_inner());
+        }
+        *free -= 1;
+        SlotGuard(self)
+    }
+}
+
+struct SlotGuard<'a>(&'a Slots);
+
+impl Drop for SlotGuard<'_> {
+    fn drop(&mut self) {
+        *self.0.free.lock().unwrap_or_else(|e| e.into_inner()) += 1;
+        self.0.freed.notify_one();
+    }
+}
+
+fn options(params: &IndexParams, dimension: usize) -> IndexOptions {
+    IndexOptions {
+        dimensions: dimension,
+        // `1 - dot`, as hnsw_rs's ClampedDot: the vectors are unit length.
+        metric: MetricKind::IP,
+        quantization: ScalarKind::F32,
+        connectivity: params.max_connections,
+        expansion_add: params.ef_construction,
+        expansion_search: params.ef_search,
+        multi: false,
+    }
+}
+
+impl UsearchGraph {
+    /// The usearch release whose file format the dumps are in (pinned in
+    /// Cargo.toml).
+    pub(super) const LIBRARY: &'static str = "usearch 2.26.6";
+
+    /// The distance's name (see [`super::graph::IndexBackend::distance`]).
+    pub(super) fn distance_name() -> String {
+        "usearch inner product (1 - dot), f32".into()
+    }
+
+    /// The one file usearch writes.
+    pub(super) fn dump_files() -> Vec<String> {
+        vec![FILE.to_string()]
+    }
+
+    /// An empty index with room for `capacity` points.
+    pub(super) fn new(
+        params: &IndexParams,
+        dimension: usize,
+        capacity: usize,
+    ) -> Result<Self, IndexError> {
+        let index =
+            Index::new(&options(params, dimension)).map_err(|_| IndexError::Internal("create"))?;
+        index
+            .reserve_capacity_and_threads(capacity.max(1) + THREAD_SLOTS, THREAD_SLOTS)
+            .map_err(|_| IndexError::Internal("reserve"))?;
+        Ok(Self {
+            index: RwLock::new(index),
+            slots: Slots::new(),
+        })
+    }
+
+    /// Reads the file written by [`Graph::write`] from a folder that passed
+    /// the dump checks.
+    pub(super) fn read(
+        folder: &Path,
+        params: &IndexParams,
+        dimension: usize,
+    ) -> Result<Self, String> {
+        let path = folder.join(FILE);
+        let path = path
+            .to_str()
+            .ok_or_else(|| format!("{} is not a UTF-8 path", path.display()))?;
+        let graph = Self::new(params, dimension, 1).map_err(|e| e.to_string())?;
+        {
+            let index = write(&graph.index);
+            index
+                .load(path)
+                .map_err(|e| format!("usearch could not read the dump: {e}"))?;
+            if index.dimensions() != dimension {
+                return Err(format!(
+                    "dump holds {}-long vectors, expected {dimension}",
+                    index.dimensions()
+                ));
+            }
+            // Loading sizes the index to its content and resets its limits.
+            index
+                .reserve_capacity_and_threads(index.size() + THREAD_SLOTS, THREAD_SLOTS)
+                .map_err(|e| format!("usearch could not make room after loading: {e}"))?;
+            index.change_expansion_add(params.ef_construction);
+            index.change_expansion_search(params.ef_search);
+        }
+        Ok(graph)
+    }
+
+    /// Grows the capacity (lock held alone) when fewer than `spare` places
+    /// are left.
+    fn ensure_room(&self, spare: usize) -> Result<(), IndexError> {
+        let short = |index: &Index| index.size() + spare > index.capacity();
+        if !short(&read(&self.index)) {
+            return Ok(());
+        }
+        let index = write(&self.index);
+        if short(&index) {
+            let wanted = (index.size() + spare).max(index.capacity() + index.capacity() / 2);
+            index
+                .reserve_capacity_and_threads(wanted, THREAD_SLOTS)
+                .map_err(|_| IndexError::Internal("reserve"))?;
+        }
+        Ok(())
+    }
+}
+
+impl Graph for UsearchGraph {
+    fn reserve(&self, additional: usize) -> Result<(), IndexError> {
+        self.ensure_room(additional + THREAD_SLOTS)
+    }
+
+    fn insert(&self, vector: &[f32], id: RowId) -> Result<(), IndexError> {
+        self.ensure_room(THREAD_SLOTS)?;
+        let _slot = self.slots.take();
+        read(&self.index)
+            .add(id, vector)
+            .map_err(|_| IndexError::Internal("insert"))
+    }
+
+    fn search(
+        &self,
+        q: &[f32],
+        k: usize,
+        ef: usize,
+        only: Option<RowFilter<'_>>,
+    ) -> Result<Vec<Neighbour>, IndexError> {
+        let _slot = self.slots.take();
+        let mut index = read(&self.index);
+        if index.expansion_search() != ef {
+            drop(index);
+            write(&self.index).change_expansion_search(ef);
+            index = read(&self.index);
+        }
+        let found = match only {
+            None => index.search(q, k),
+            Some(allowed) => index.filtered_search(q, k, allowed),
+        }
+        .map_err(|_| IndexError::Internal("search"))?;
+        // usearch's inner-product distance is `1 - dot`, as ClampedDot's.
+        Ok(best_k(
+            found
+                .keys
+                .iter()
+                .copied()
+                .zip(found.distances.iter().copied()),
+            k,
+        ))
+    }
+
+    fn len(&self) -> usize {
+        read(&self.index).size()
+    }
+
+    /// usearch cannot list its keys: looks up each of `known`.
+    fn each_point(&self, known: &[RowId], each: PointVisitor<'_>) -> Result<(), String> {
+        let index = read(&self.index);
+        let mut v = vec![0f32; index.dimensions()];
+        for &id in known {
+            if !index.contains(id) {
+                continue;
+            }
+            match index.get(id, &mut v) {
+                Ok(1) => each(id, &v)?,
+                Ok(n) => return Err(format!("dump holds row {id} {n} times")),
+                Err(e) => return Err(format!("usearch could not read row {id}: {e}")),
+            }
+        }
+        Ok(())
+    }
+
+    fn write(&self, folder: &Path) -> Result<Vec<String>, String> {
+        let path = folder.join(FILE);
+        let path = path
+            .to_str()
+            .ok_or_else(|| format!("{} is not a UTF-8 path", path.display()))?;
+        read(&self.index)
+            .save(path)
+            .map_err(|e| format!("usearch could not write its file: {e}"))?;
+        Ok(Self::dump_files())
+    }
+}
