@@ -87,10 +87,17 @@ fn import_search_dump_and_restart() {
             assert_eq!(hit.tags, vec!["set-a".to_string()]);
         }
         let graph = model.search(query, &ten_by_graph).unwrap();
+        // A hit counts when its true cosine reaches the true 10th one (ann-benchmarks'
+        // knn_threshold rule, as befit::bank::recall): captions of colliding scene names can
+        // tie, and either of two tied captions is a right answer.
+        let tenth = want[9].0 - 1e-6;
         found += graph
             .hits
             .iter()
-            .filter(|h| want_texts.contains(&h.text.as_str()))
+            .filter(|h| {
+                let i = texts.iter().position(|t| *t == h.text).unwrap();
+                dot(&vectors[i], query) >= tenth
+            })
             .count();
         // Whatever the graph returns, each hit carries its own text's cosine with the query.
         for hit in &graph.hits {

@@ -9,7 +9,7 @@
 use std::io::{BufRead, BufReader};
 use std::process::{Command, Stdio};
 
-use befit::bank::index::{GraphOrigin, IndexBackend};
+use befit::bank::index::{GraphOrigin, IndexBackend, IndexParams};
 use befit::bank::synthetic::SceneEmbedder;
 use befit::bank::{BankConfig, BankQuery, CaptionBank, NewCaption, SearchMode};
 
@@ -19,9 +19,10 @@ const CHILD_ENV: &str = "BEFIT_BANK_CRASH_CHILD_DIR";
 const BACKEND_ENV: &str = "BEFIT_BANK_CRASH_BACKEND";
 
 fn config(backend: IndexBackend) -> BankConfig {
-    let mut config = BankConfig::default();
-    config.index.backend = backend;
-    config
+    BankConfig {
+        index: IndexParams::for_backend(backend),
+        ..BankConfig::default()
+    }
 }
 
 fn caption(e: &SceneEmbedder, i: usize) -> NewCaption {

@@ -8,13 +8,15 @@ use super::args::{BankEmbedMissingArgs, BankImportArgs, BankIndexArgs, BankQuery
 use super::probe_commands::{progress_bar, OfflineModel};
 use super::progress::ImportBar;
 use crate::bank::import::import_jsonl;
-use crate::bank::{BankConfig, BankQuery, CaptionBank, SearchMode};
+use crate::bank::{BankConfig, BankQuery, CaptionBank, IndexParams, SearchMode};
 use crate::service::data_dir::{DataDir, BANK_WRITE_ADVICE};
 use crate::vectors::Embedder;
 
 fn open_bank(data_dir: &std::path::Path, index: &BankIndexArgs) -> anyhow::Result<CaptionBank> {
-    let mut config = BankConfig::default();
-    config.index.backend = index.bank_backend;
+    let config = BankConfig {
+        index: IndexParams::for_backend(index.bank_backend),
+        ..BankConfig::default()
+    };
     CaptionBank::open(data_dir, config)
         .with_context(|| format!("opening the caption bank in {}", data_dir.display()))
 }

@@ -22,7 +22,7 @@ use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
 use crate::bank::index::{GraphOrigin, IndexBackend};
-use crate::bank::{BankConfig, BankError, CaptionBank};
+use crate::bank::{BankConfig, BankError, CaptionBank, IndexParams};
 use crate::encoders::{load_bundles, Engine, LoadBundlesError, Model, ModelSettings};
 use crate::intake::image_root::ImageRoot;
 use crate::intake::limits::Limits;
@@ -319,13 +319,11 @@ impl Service {
 /// The bank refuses what the server's limits refuse, naming the same flags,
 /// and keeps its index with the configured backend.
 pub fn bank_config(config: &ServiceConfig) -> BankConfig {
-    let mut bank = BankConfig {
+    BankConfig {
+        index: IndexParams::for_backend(config.bank_backend),
         max_caption_bytes: config.limits.max_caption_bytes,
         max_append: config.limits.max_captions,
-        ..BankConfig::default()
-    };
-    bank.index.backend = config.bank_backend;
-    bank
+    }
 }
 
 /// A started service: bundles loading in the background, the bank dumped on a

@@ -11,7 +11,7 @@ use serde::{Deserialize, Serialize};
 
 use super::errors::IndexError;
 use super::hnsw::HnswGraph;
-use super::parameters::IndexParams;
+use super::parameters::{IndexParams, HNSW_RS_EXACT_BELOW, USEARCH_EXACT_BELOW};
 use super::usearch_graph::UsearchGraph;
 use crate::bank::distance::cosine_from_distance;
 use crate::bank::exact::{best_first, Neighbour};
@@ -80,9 +80,12 @@ pub(super) fn best_k(found: impl Iterator<Item = (RowId, f32)>, k: usize) -> Vec
 #[serde(rename_all = "kebab-case")]
 pub enum IndexBackend {
     /// hnsw_rs, pure Rust.
-    #[default]
     HnswRs,
-    /// usearch, C++ built with the crate.
+    /// usearch, C++ built with the crate: the default, by measurement
+    /// (BENCHMARKS.md, "Retrieval": at 100k x 64 it built faster than
+    /// hnswlib and searched faster at every breadth, where hnsw_rs built 6
+    /// to 10 times slower and searched 5 to 14 times slower).
+    #[default]
     Usearch,
 }
 
@@ -101,6 +104,15 @@ impl IndexBackend {
     /// The backend called `name` ([`Self::name`]).
     pub fn from_name(name: &str) -> Option<Self> {
         Self::ALL.into_iter().find(|b| b.name() == name)
+    }
+
+    /// Banks up to this many rows are scanned exactly in auto mode: where
+    /// the scan stops beating this backend's graph, measured per backend.
+    pub fn exact_below(self) -> usize {
+        match self {
+            Self::HnswRs => HNSW_RS_EXACT_BELOW,
+            Self::Usearch => USEARCH_EXACT_BELOW,
+        }
     }
 
     /// Library and version whose file format its dumps are in (pinned in

@@ -46,7 +46,8 @@ pub use graph::IndexBackend;
 pub use parameters::{
     check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
     SearchMode, DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH,
-    DEFAULT_EXACT_BELOW, DEFAULT_MAX_CONNECTIONS, MAX_EF_SEARCH, MAX_K, MAX_QUERIES,
+    DEFAULT_EXACT_BELOW, DEFAULT_MAX_CONNECTIONS, HNSW_RS_EXACT_BELOW, MAX_EF_SEARCH, MAX_K,
+    MAX_QUERIES, USEARCH_EXACT_BELOW,
 };
 pub use persistence::DumpReport;
 pub use search::{Answered, FilterWalk, SearchAnswer};

@@ -34,12 +34,23 @@ pub const DEFAULT_EF_CONSTRUCTION: usize = 200;
 pub const DEFAULT_EF_SEARCH: usize = 256;
 
 /// Banks with at most this many rows are searched exactly in
-/// [`SearchMode::Auto`]: below it the exact scan answers faster than hnsw_rs
-/// at the default breadth. Measured on 64-d vectors: at 100k rows the scan
-/// does 550 queries/s, the graph 200 at `ef_search` 256; the scan's cost
-/// grows linearly, the graph's slowly, so they meet near 250k
-/// (`bench/retrieval`, BENCHMARKS.md). Set a little below the crossover.
-pub const DEFAULT_EXACT_BELOW: usize = 200_000;
+/// [`SearchMode::Auto`] with the hnsw-rs backend: below it the exact scan
+/// answers faster than hnsw_rs at the default breadth. Measured on 64-d
+/// vectors: at 100k rows the scan does 550 queries/s, the graph 200 at
+/// `ef_search` 256; the scan's cost grows linearly, the graph's slowly, so
+/// they meet near 250k (`bench/retrieval`, BENCHMARKS.md). Set a little
+/// below the crossover.
+pub const HNSW_RS_EXACT_BELOW: usize = 200_000;
+
+/// [`HNSW_RS_EXACT_BELOW`] for the usearch backend: at `ef_search` 256 on
+/// 64-d blocks-like banks the exact scan answered 27.5k queries/s and the
+/// graph 21.6k at 2000 rows, 11.2k against 17.6k at 5000, and 499 against
+/// 5084 at 100k (`bench/retrieval --crossover --backend usearch`,
+/// BENCHMARKS.md). Set at the last size where the scan was faster.
+pub const USEARCH_EXACT_BELOW: usize = 2_000;
+
+/// [`IndexParams::exact_below`] of the default backend.
+pub const DEFAULT_EXACT_BELOW: usize = USEARCH_EXACT_BELOW;
 
 /// Threads used to build or replay the graph. The service shares its machine
 /// with the encoders, so the default is modest.
@@ -84,7 +95,8 @@ pub struct IndexParams {
     pub ef_construction: usize,
     /// Search breadth when a search does not say ([`DEFAULT_EF_SEARCH`]).
     pub ef_search: usize,
-    /// Exact scan in [`SearchMode::Auto`] up to this many rows ([`DEFAULT_EXACT_BELOW`]).
+    /// Exact scan in [`SearchMode::Auto`] up to this many rows (by backend:
+    /// [`HNSW_RS_EXACT_BELOW`], [`USEARCH_EXACT_BELOW`]).
     pub exact_below: usize,
     /// Threads for building and replaying ([`DEFAULT_BUILD_THREADS`]).
     pub build_threads: usize,
@@ -94,13 +106,21 @@ pub struct IndexParams {
 
 impl Default for IndexParams {
     fn default() -> Self {
+        Self::for_backend(IndexBackend::default())
+    }
+}
+
+impl IndexParams {
+    /// The defaults with `backend`, and the exact-scan threshold measured
+    /// for it ([`IndexBackend::exact_below`]).
+    pub fn for_backend(backend: IndexBackend) -> Self {
         Self {
             max_connections: DEFAULT_MAX_CONNECTIONS,
             ef_construction: DEFAULT_EF_CONSTRUCTION,
             ef_search: DEFAULT_EF_SEARCH,
-            exact_below: DEFAULT_EXACT_BELOW,
+            exact_below: backend.exact_below(),
             build_threads: DEFAULT_BUILD_THREADS,
-            backend: IndexBackend::default(),
+            backend,
         }
     }
 }

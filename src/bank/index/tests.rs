@@ -22,10 +22,7 @@ fn ids(hits: &[Neighbour]) -> Vec<RowId> {
 
 /// Default settings on `backend`: every test runs on every backend.
 fn with_backend(backend: IndexBackend) -> IndexParams {
-    IndexParams {
-        backend,
-        ..IndexParams::default()
-    }
+    IndexParams::for_backend(backend)
 }
 
 /// Graph search only, so small test banks exercise HNSW and not the scan.
