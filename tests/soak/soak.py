@@ -20,7 +20,10 @@ Phases, each bounded in time and count, each printing its figures:
 Every request goes to 127.0.0.1 only. Prints the figures; exits non-zero if an acknowledged item
 is lost, the server fails to start after the faults, or a bomb is not refused.
 
-    python tests/soak/soak.py [--max-queue-wait-ms N] [--json FILE] [--load-only]
+    python tests/soak/soak.py [--max-queue-wait-ms N] [--json FILE] [--load-only] [--shared-cores]
+
+On a machine of two or more cores, befit runs alone on the first core and this generator on the
+others, as if the load came from another machine; `--shared-cores` lets them share every core.
 """
 
 from __future__ import annotations
@@ -66,13 +69,15 @@ def free_port() -> int:
 
 
 class Server:
-    def __init__(self, data_dir: str, extra: list[str]):
+    def __init__(self, data_dir: str, extra: list[str], cores: set[int] | None = None):
         self.port = free_port()
+        # Pinned before exec, so befit sizes its thread pools to the cores it is given.
+        pin = (lambda: os.sched_setaffinity(0, cores)) if cores else None
         self.proc = subprocess.Popen(
             [str(BIN), "serve", "--bundle", str(REPO / "fixtures/models/blocks-v1"), "--listen",
              f"127.0.0.1:{self.port}", "--data-dir", data_dir, "--image-root", str(REPO / "fixtures/probe"),
              "--caption-cache", "0", *extra],
-            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, preexec_fn=pin)
         deadline = time.time() + 60
         while time.time() < deadline:
             if self.proc.poll() is not None:
@@ -349,14 +354,26 @@ def main() -> int:
     ap.add_argument("--max-queue-wait-ms", type=int, default=None)
     ap.add_argument("--json", type=Path, default=None)
     ap.add_argument("--load-only", action="store_true", help="capacity and 3x load only (to compare settings)")
+    ap.add_argument("--shared-cores", action="store_true",
+                    help="run befit and the load generator on the same cores (default: on a machine of 2 "
+                         "or more cores, befit gets core 0 alone and the generator the others)")
     args = ap.parse_args()
+    cores = sorted(os.sched_getaffinity(0))
+    server_cores = None if args.shared_cores or len(cores) < 2 else {cores[0]}
+    if server_cores:
+        # The generator would otherwise take its CPU from befit's: at 3x load it needs about half
+        # a core, which is capacity befit measured in phase 1 but cannot have in phase 2.
+        os.sched_setaffinity(0, set(cores[1:]))
     if not BIN.exists():
         print(f"{BIN} missing: make build", file=sys.stderr)
         return 2
     extra = [] if args.max_queue_wait_ms is None else ["--max-queue-wait-ms", str(args.max_queue_wait_ms)]
-    figures: dict = {"max_queue_wait_ms": args.max_queue_wait_ms}
+    figures: dict = {"max_queue_wait_ms": args.max_queue_wait_ms,
+                     "server_cores": sorted(server_cores) if server_cores else "shared"}
+    print(f"befit on cores {figures['server_cores']}, the generator on "
+          f"{sorted(os.sched_getaffinity(0))}", flush=True)
     with tempfile.TemporaryDirectory() as data_dir:
-        server = Server(data_dir, extra)
+        server = Server(data_dir, extra, server_cores)
         try:
             rows = [json.loads(l) for l in (REPO / "fixtures/probe/probe.jsonl").read_text().splitlines()[:16]]
             ids = [i["id"] for i in post(server.port, "/v1/images", {"images": [{"path": r["image"]} for r in rows]})[1]["images"]]
