@@ -59,11 +59,23 @@ fn self_queries_and_duplicates_never_panic() {
         rows.extend(rows_of(&data, 1_001));
         rows.extend(rows_of(&data, 2_001));
         assert_eq!(index.insert(&rows).unwrap(), 900);
+        // The graph is approximate and exact duplicates are its hard case:
+        // a copy can be pruned from its twins' neighbour lists (the build
+        // runs on two threads, so which one varies). Every search must
+        // still start with a copy, and nearly all must find all three.
+        let mut all_three = 0;
         for (id, v) in rows.iter().take(300) {
             let hits = index.search(v, &graph(3)).unwrap().hits;
-            assert!(hits.iter().all(|h| h.cosine > 0.9999), "row {id}: {hits:?}");
-            assert!(ids(&hits).contains(id));
+            assert!(hits[0].cosine > 0.9999, "{backend:?} row {id}: {hits:?}");
+            let copies = [*id, id + 1_000, id + 2_000];
+            all_three += usize::from(copies.iter().all(|c| ids(&hits).contains(c)));
         }
+        // usearch found all three for 289 to 300 of 300 rows in 15 runs,
+        // hnsw_rs always 300. 0.9 is this test's floor (chosen, no source).
+        assert!(
+            all_three >= 270,
+            "{backend:?}: all three copies found for {all_three} of 300 rows"
+        );
         assert_eq!(
             index.insert(&rows[..5]).unwrap(),
             0,
