@@ -42,9 +42,9 @@ const MAX_LEVEL: usize = 64;
 /// their own and drop them afterwards.
 const POOL: usize = 16;
 
-/// Cache lines of a record prefetched before it is scored (the hardware
-/// prefetcher follows the rest of a long vector).
-const PREFETCH_LINES: usize = 2;
+/// Cache lines of a vector prefetched before it is scored (all of a 64-d
+/// one; the hardware prefetcher follows the rest of a longer vector).
+const PREFETCH_LINES: usize = 4;
 
 /// Why a graph could not be copied.
 #[derive(Debug, thiserror::Error)]
@@ -129,6 +129,8 @@ struct Scratch {
     best: BinaryHeap<Scored>,
     /// Nodes still to expand, nearest on top.
     frontier: BinaryHeap<std::cmp::Reverse<Scored>>,
+    /// The unvisited neighbours of the node being expanded.
+    fresh: Vec<u32>,
 }
 
 impl Scratch {
@@ -138,6 +140,7 @@ impl Scratch {
             generation: 0,
             best: BinaryHeap::new(),
             frontier: BinaryHeap::new(),
+            fresh: Vec::new(),
         }
     }
 
@@ -439,17 +442,22 @@ impl FlatGraph {
             if nearest.distance > worst && scratch.best.len() >= ef {
                 break;
             }
+            // Three passes over the neighbours so their memory is fetched
+            // in parallel: prefetch their visited stamps, mark the unvisited
+            // ones and prefetch their vectors, then score them.
             let neighbours = self.base_neighbours(nearest.node);
-            if let Some(&first) = neighbours.first() {
-                self.prefetch_vector(first);
+            for &n in neighbours {
+                prefetch(scratch.stamps.as_ptr().wrapping_add(n as usize));
             }
-            for (i, &n) in neighbours.iter().enumerate() {
-                if let Some(&next) = neighbours.get(i + 1) {
-                    self.prefetch_vector(next);
+            scratch.fresh.clear();
+            for &n in neighbours {
+                if scratch.visit(n) {
+                    self.prefetch_vector(n);
+                    scratch.fresh.push(n);
                 }
-                if !scratch.visit(n) {
-                    continue;
-                }
+            }
+            for i in 0..scratch.fresh.len() {
+                let n = scratch.fresh[i];
                 let d = self.distance(q, n);
                 if scratch.best.len() < ef || d < worst {
                     let candidate = Scored {
@@ -468,7 +476,10 @@ impl FlatGraph {
             }
             if let Some(std::cmp::Reverse(next)) = scratch.frontier.peek() {
                 // Its neighbour list, read on the next turn.
-                prefetch(self.record(next.node)[self.dim..].as_ptr());
+                let links = &self.record(next.node)[self.dim..];
+                for line in (0..links.len()).step_by(LINE_WORDS) {
+                    prefetch(links[line..].as_ptr());
+                }
             }
         }
     }
