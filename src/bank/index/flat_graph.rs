@@ -98,10 +98,16 @@ impl std::fmt::Debug for FlatGraph {
 }
 
 /// A candidate: distance `1 - dot` and internal index; ordered by distance.
-#[derive(Clone, Copy, PartialEq)]
+#[derive(Clone, Copy)]
 struct Scored {
     distance: f32,
     node: u32,
+}
+
+impl PartialEq for Scored {
+    fn eq(&self, other: &Self) -> bool {
+        self.cmp(other) == Ordering::Equal
+    }
 }
 
 impl Eq for Scored {}
@@ -240,7 +246,7 @@ impl FlatGraph {
                 return fail(format!("row {id}'s vector is not finite at {position}"));
             }
             if node < upper_nodes {
-                upper_start.push(upper.len() as u32);
+                upper_start.push(upper_offset(&upper)?);
             }
             for l in 0..=level {
                 links.clear();
@@ -282,7 +288,7 @@ impl FlatGraph {
                 }
             }
         }
-        upper_start.push(upper.len() as u32);
+        upper_start.push(upper_offset(&upper)?);
         Ok(Self {
             digest: digest.to_string(),
             dim,
@@ -483,6 +489,16 @@ impl FlatGraph {
             }
         }
     }
+}
+
+/// Where the next upper-level list starts, as a `u32` offset.
+fn upper_offset(upper: &[u32]) -> Result<u32, FreezeError> {
+    u32::try_from(upper.len()).map_err(|_| {
+        FreezeError(format!(
+            "the upper levels hold {} links, more than u32 offsets reach",
+            upper.len()
+        ))
+    })
 }
 
 /// The level-0 array as words, for writing records.
