@@ -11,15 +11,18 @@
 //! `--batched` measures the exact scan of a batch of queries and of single
 //! queries at each of `--dims`, for `exact_run.py` to set beside numpy;
 //! `--filtered` measures tag-filtered search, the graph walked with the
-//! filter against over-fetching, at several tag shares).
+//! filter against over-fetching, at several tag shares; `--flat`, with the
+//! usearch backend, also freezes a flat copy of the graph and measures its
+//! searches at each breadth right after usearch's, lines marked
+//! `"copy": "flat"`).
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
-use befit::bank::exact::ExactRows;
+use befit::bank::exact::{ExactRows, Neighbour};
 use befit::bank::index::{
-    Answered, FilterWalk, IndexBackend, IndexParams, Search, SearchMode, VectorIndex,
+    Answered, FilterWalk, IndexBackend, IndexError, IndexParams, Search, SearchMode, VectorIndex,
     DEFAULT_EF_SEARCH,
 };
 use befit::bank::recall::mean_recall;
@@ -46,6 +49,7 @@ struct Args {
     dims: Vec<usize>,
     singles: usize,
     backend: IndexBackend,
+    flat: bool,
 }
 
 fn list<T: std::str::FromStr>(s: &str) -> Vec<T> {
@@ -71,6 +75,7 @@ fn parse_args() -> Args {
         dims: vec![64, 512],
         singles: 100,
         backend: IndexBackend::default(),
+        flat: false,
     };
     let mut it = std::env::args().skip(1);
     while let Some(flag) = it.next() {
@@ -90,6 +95,7 @@ fn parse_args() -> Args {
             "--no-dump" => a.dump = false,
             "--batched" => a.batched = true,
             "--filtered" => a.filtered = true,
+            "--flat" => a.flat = true,
             "--dims" => a.dims = list(&value()),
             "--singles" => a.singles = value().parse().unwrap_or(a.singles),
             "--backend" => {
@@ -193,6 +199,21 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     // The index's whole footprint: the graph and the exact rows beside it.
     let index_bytes = resident_bytes().saturating_sub(resident_before);
     drop(source);
+    let copy = if a.flat {
+        let resident_before = resident_bytes();
+        let t = Instant::now();
+        let copy = index.freeze().map_err(std::io::Error::other)?;
+        let freeze = t.elapsed().as_secs_f64();
+        emit(
+            serde_json::json!({"side": "befit", "copy": "flat", "kind": kind, "n": n, "what": "build",
+            "freeze_seconds": freeze, "dim": dim, "m": a.m,
+            "bytes_per_caption": copy.bytes() as f64 / n as f64,
+            "resident_growth_per_caption": resident_bytes().saturating_sub(resident_before) as f64 / n as f64}),
+        );
+        Some(copy)
+    } else {
+        None
+    };
 
     // Exact scan: ground truth and its own speed (one thread).
     let t = Instant::now();
@@ -235,21 +256,22 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
             mode: SearchMode::Index,
             only: None,
         };
-        let t = Instant::now();
-        let mut approx = Vec::with_capacity(a.queries);
-        for q in queries.chunks(dim) {
-            let hits = index
-                .search(q, &search)
-                .map_err(std::io::Error::other)?
-                .hits;
-            approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
-        }
-        let secs = t.elapsed().as_secs_f64();
+        let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, |q| {
+            Ok(index.search(q, &search)?.hits)
+        })?;
         emit(
             serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search", "ef_search": ef,
-            "qps": a.queries as f64 / secs, "recall": mean_recall(&exact_cos, &approx, a.k)}),
+            "qps": qps, "recall": recall}),
         );
+        if let Some(copy) = &copy {
+            let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, |q| copy.search(q, a.k, ef))?;
+            emit(
+                serde_json::json!({"side": "befit", "copy": "flat", "kind": kind, "n": n,
+                "what": "search", "ef_search": ef, "qps": qps, "recall": recall}),
+            );
+        }
     }
+    drop(copy);
 
     if a.dump {
         let t = Instant::now();
@@ -267,6 +289,28 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     }
     let _ = std::fs::remove_dir_all(&index_dir);
     Ok(())
+}
+
+/// Queries per second of `search` over `queries` (one thread) and its
+/// recall@k against the exact cosines.
+fn timed(
+    queries: &[f32],
+    dim: usize,
+    exact_cos: &[Vec<f32>],
+    k: usize,
+    mut search: impl FnMut(&[f32]) -> Result<Vec<Neighbour>, IndexError>,
+) -> std::io::Result<(f64, f64)> {
+    let t = Instant::now();
+    let mut approx = Vec::with_capacity(exact_cos.len());
+    for q in queries.chunks(dim) {
+        let hits = search(q).map_err(std::io::Error::other)?;
+        approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
+    }
+    let secs = t.elapsed().as_secs_f64();
+    Ok((
+        approx.len() as f64 / secs,
+        mean_recall(exact_cos, &approx, k),
+    ))
 }
 
 /// Exact scan against the graph at the default breadth, bank sizes up to

@@ -9,6 +9,11 @@ seconds: lower is better for befit below 1).
     python bench/retrieval/run.py --sizes 100000           # the smaller size only
     python bench/retrieval/run.py                          # 100k and 1M
     python bench/retrieval/run.py --filtered --sizes 100000  # tag filters only (about 8 min)
+    python bench/retrieval/run.py --sizes 100000 --kinds blocks --backends usearch,usearch-flat
+
+The backend `usearch-flat` is usearch's graph frozen into befit's flat copy
+(`VectorIndex::freeze`): measured in the usearch run (`--flat`), each breadth
+right after usearch's own searches, with the freeze time and the copy's size.
 """
 
 import argparse
@@ -51,11 +56,18 @@ def main() -> None:
     common = ["--m", str(a.m), "--ef-construction", str(a.ef_construction),
               "--ef-search", a.ef_search, "--threads", str(a.threads)]
     befit = []
-    for backend in a.backends.split(","):
-        befit += [dict(r, side=f"befit {backend}") for r in
-                  lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--",
-                         "--sizes", a.sizes, "--kinds", a.kinds, "--queries", str(a.queries),
-                         "--dim", str(a.dim), "--backend", backend, "--out", a.out] + common)]
+    backends = a.backends.split(",")
+    flat = "usearch-flat" in backends
+    runs = [b for b in backends if b != "usearch-flat"]
+    if flat and "usearch" not in runs:
+        runs.append("usearch")
+    for backend in runs:
+        extra = ["--flat"] if flat and backend == "usearch" else []
+        befit += [dict(r, side=f"befit {backend}-flat" if r.get("copy") == "flat" else f"befit {backend}")
+                  for r in lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--",
+                                  "--sizes", a.sizes, "--kinds", a.kinds, "--queries", str(a.queries),
+                                  "--dim", str(a.dim), "--backend", backend, "--out", a.out]
+                                 + extra + common)]
     hnsw = []
     for size in a.sizes.split(","):
         for kind in a.kinds.split(","):
@@ -81,6 +93,13 @@ def main() -> None:
                   f"dump {hd['dump_seconds']:.2f} s, load {hd['load_seconds']:.2f} s")
             for backend in a.backends.split(","):
                 side = f"befit {backend}"
+                if backend == "usearch-flat":
+                    fb = get(side, kind, n, "build")
+                    print(f"  {backend}: freeze {fb['freeze_seconds']:.2f} s after usearch's build; "
+                          f"copy {fb['bytes_per_caption']:.0f} bytes/caption "
+                          f"({fb['bytes_per_caption'] / hb['bytes_per_caption']:.2f}x hnswlib's resident), "
+                          f"resident growth {fb['resident_growth_per_caption']:.0f} bytes/caption")
+                    continue
                 bb, ex, dump = get(side, kind, n, "build"), get(side, kind, n, "exact"), get(side, kind, n, "dump")
                 print(f"  {backend}: build {bb['seconds']:.1f} s (ratio to hnswlib "
                       f"{bb['seconds'] / hb['seconds']:.2f}); {bb['bytes_per_caption']:.0f} bytes/caption "

@@ -10,6 +10,7 @@ use std::path::Path;
 use serde::{Deserialize, Serialize};
 
 use super::errors::IndexError;
+use super::flat_graph::{FlatGraph, FreezeError};
 use super::hnsw::HnswGraph;
 use super::parameters::{IndexParams, HNSW_RS_EXACT_BELOW, USEARCH_EXACT_BELOW};
 use super::usearch_graph::UsearchGraph;
@@ -57,6 +58,14 @@ pub(super) trait Graph: Send + Sync {
     /// Writes the graph's files into the empty folder `folder`; returns the
     /// names of the files written.
     fn write(&self, folder: &Path) -> Result<Vec<String>, String>;
+
+    /// A flat read-only copy for searching (see [`FlatGraph`]); `known` as
+    /// for [`Graph::each_point`]. Only the usearch backend makes one.
+    fn freeze(&self, _digest: &str, _known: &[RowId]) -> Result<FlatGraph, FreezeError> {
+        Err(FreezeError(
+            "only the usearch backend's graph can be copied".into(),
+        ))
+    }
 }
 
 /// The `k` best of a library's answer given as `(row, 1 - dot)` pairs,

@@ -17,6 +17,9 @@
 //! - `graph`: the [`IndexBackend`] choice and the trait every graph library
 //!   implements; `hnsw`: the one file that calls hnsw_rs, `usearch_graph`
 //!   the one that calls usearch.
+//! - `flat_graph`: a frozen flat copy of a usearch graph laid out for
+//!   searching ([`VectorIndex::freeze`]), measured by the retrieval
+//!   benchmark; the service does not search it.
 //!
 //! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
 //! Inserts run in parallel with each other and with searches; a dump holds
@@ -27,6 +30,7 @@
 
 mod build;
 pub mod errors;
+mod flat_graph;
 mod graph;
 mod hnsw;
 pub mod parameters;
@@ -42,6 +46,7 @@ use serde::Serialize;
 
 pub use build::{GraphOrigin, LoadReport, RowSource};
 pub use errors::IndexError;
+pub use flat_graph::{FlatGraph, FreezeError};
 pub use graph::IndexBackend;
 pub use parameters::{
     check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
@@ -172,6 +177,15 @@ impl VectorIndex {
     /// The stored (unit) vector of row `id`.
     pub fn vector(&self, id: RowId) -> Option<Vec<f32>> {
         read(&self.rows).vector(id).map(<[f32]>::to_vec)
+    }
+
+    /// A frozen flat copy of the graph for searching ([`FlatGraph`]): rows
+    /// inserted later are not in it. Inserts and searches wait while it is
+    /// made. Only the usearch backend makes one.
+    pub fn freeze(&self) -> Result<FlatGraph, FreezeError> {
+        // Rows enter the matrix before the graph, so these cover the graph.
+        let known = read(&self.rows).ids().to_vec();
+        self.graph.freeze(&self.digest, &known)
     }
 
     /// Numbers for the stats route.

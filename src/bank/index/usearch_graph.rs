@@ -20,6 +20,7 @@ use std::sync::{Condvar, Mutex, RwLock};
 use usearch::{Index, IndexOptions, MetricKind, ScalarKind};
 
 use super::errors::IndexError;
+use super::flat_graph::{FlatGraph, FreezeError, FreezeSource};
 use super::graph::{best_k, Graph, PointVisitor, RowFilter};
 use super::parameters::IndexParams;
 use super::{read, write};
@@ -153,6 +154,44 @@ impl UsearchGraph {
         Ok(graph)
     }
 
+    /// A flat copy of the graph for searching ([`FlatGraph`]) over the
+    /// points among `known` (the caller's rows; usearch cannot list its
+    /// keys), made with the lock held alone so no insert changes the graph
+    /// under the walk. Fails when the graph holds a point `known` does not
+    /// list, or its links do not make a well-formed graph.
+    fn freeze_graph(&self, digest: &str, known: &[RowId]) -> Result<FlatGraph, FreezeError> {
+        let index = write(&self.index);
+        let ids: Vec<RowId> = known
+            .iter()
+            .copied()
+            .filter(|&id| index.contains(id))
+            .collect();
+        if ids.len() != index.size() {
+            return Err(FreezeError(format!(
+                "the graph holds {} points but only {} of the known rows",
+                index.size(),
+                ids.len()
+            )));
+        }
+        // usearch does not expose its entry point. `FlatGraph::build` enters
+        // at a node of the highest level: usearch's entry is the first node
+        // that reached that level, and any node there reaches every other
+        // through the links of that level and those below, so the greedy
+        // descent starts as high and only its first steps differ.
+        let m = index.connectivity();
+        // usearch's level 0 keeps `connectivity_base` links, by default twice
+        // `connectivity` (index.hpp, `index_config_t`); the Rust options do
+        // not change it.
+        FlatGraph::build(
+            digest,
+            index.dimensions(),
+            2 * m,
+            m,
+            &ids,
+            &UsearchSource(&index),
+        )
+    }
+
     /// Grows the capacity (lock held alone) when fewer than `spare` places
     /// are left.
     fn ensure_room(&self, spare: usize) -> Result<(), IndexError> {
@@ -168,6 +207,28 @@ impl UsearchGraph {
                 .map_err(|_| IndexError::Internal("reserve"))?;
         }
         Ok(())
+    }
+}
+
+/// usearch's graph seen node by node, for [`FlatGraph::build`].
+struct UsearchSource<'a>(&'a Index);
+
+impl FreezeSource for UsearchSource<'_> {
+    fn level(&self, id: RowId) -> usize {
+        self.0.level_of_key(id)
+    }
+
+    fn links(&self, id: RowId, level: usize, out: &mut Vec<RowId>) -> Result<(), String> {
+        out.extend(self.0.neighbors(id, level));
+        Ok(())
+    }
+
+    fn vector(&self, id: RowId, out: &mut [f32]) -> Result<(), String> {
+        match self.0.get(id, out) {
+            Ok(1) => Ok(()),
+            Ok(n) => Err(format!("usearch holds row {id} {n} times")),
+            Err(e) => Err(format!("usearch could not read row {id}: {e}")),
+        }
     }
 }
 
@@ -233,6 +294,10 @@ impl Graph for UsearchGraph {
             }
         }
         Ok(())
+    }
+
+    fn freeze(&self, digest: &str, known: &[RowId]) -> Result<FlatGraph, FreezeError> {
+        self.freeze_graph(digest, known)
     }
 
     fn write(&self, folder: &Path) -> Result<Vec<String>, String> {
