@@ -199,6 +199,7 @@ impl VectorIndex {
                 GraphOrigin::Built { reason }
             }
         };
+        index.refresh_copy_or_warn();
         let report = LoadReport {
             rows: index.len(),
             skipped,
@@ -229,7 +230,16 @@ impl VectorIndex {
             }
         }
         self.insert_into_graph(&fresh, &AtomicBool::new(false))?;
+        self.refresh_copy_or_warn();
         Ok(fresh.len())
+    }
+
+    /// [`Self::refresh_copy`]; a failure only logs: searches go to the
+    /// library's graph (no copy yet) or keep the old copy and its tail.
+    fn refresh_copy_or_warn(&self) {
+        if let Err(e) = self.refresh_copy() {
+            tracing::warn!(digest = %self.digest, "{e}; searches keep what they had");
+        }
     }
 
     /// Inserts rows already in the matrix into the graph, giving up once `stop` is set.

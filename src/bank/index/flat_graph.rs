@@ -1,8 +1,9 @@
 //! A frozen, read-only copy of an HNSW graph laid out for searching
 //! ([`FlatGraph`]), made from a usearch graph by
-//! [`super::VectorIndex::freeze`]. It is measured by the retrieval
-//! benchmark (`--flat`, BENCHMARKS.md, "A flat copy of usearch's graph for
-//! searching") and not used by the service's searches.
+//! [`super::VectorIndex::freeze`]. Searches of a usearch index go through
+//! it (`frozen.rs` says when it is made); the retrieval benchmark measures
+//! it (`--flat`, BENCHMARKS.md, "A flat copy of usearch's graph for
+//! searching").
 //!
 //! Layout (the idea of hnswlib's level-0 array):
 //! - Level 0 is one contiguous, 64-byte-aligned array of fixed-size node
@@ -332,7 +333,8 @@ impl FlatGraph {
         Ok(self.search_unit(&q, k, ef.max(k)))
     }
 
-    fn search_unit(&self, q: &[f32], k: usize, ef: usize) -> Vec<Neighbour> {
+    /// [`Self::search`] for a query already of unit length, `ef >= k`.
+    pub(super) fn search_unit(&self, q: &[f32], k: usize, ef: usize) -> Vec<Neighbour> {
         if self.rows.is_empty() {
             return Vec::new();
         }

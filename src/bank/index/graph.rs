@@ -102,6 +102,13 @@ impl IndexBackend {
     /// Every backend, for tests and the benchmark.
     pub const ALL: [Self; 2] = [Self::HnswRs, Self::Usearch];
 
+    /// Whether searches go through a flat copy of the graph
+    /// ([`super::flat_graph::FlatGraph`]): usearch's, which answered about
+    /// twice as many queries a second from the copy (BENCHMARKS.md).
+    pub fn makes_flat_copy(self) -> bool {
+        matches!(self, Self::Usearch)
+    }
+
     /// The name used in flags, manifests and reports.
     pub fn name(self) -> &'static str {
         match self {

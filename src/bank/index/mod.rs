@@ -18,8 +18,9 @@
 //!   implements; `hnsw`: the one file that calls hnsw_rs, `usearch_graph`
 //!   the one that calls usearch.
 //! - `flat_graph`: a frozen flat copy of a usearch graph laid out for
-//!   searching ([`VectorIndex::freeze`]), measured by the retrieval
-//!   benchmark; the service does not search it.
+//!   searching ([`VectorIndex::freeze`]); `frozen`: when the copy is made
+//!   and renewed, and searches through it with the exact scan of the rows
+//!   it does not hold yet.
 //!
 //! Concurrency: searches, inserts and [`VectorIndex::dump`] take `&self`.
 //! Inserts run in parallel with each other and with searches; a dump holds
@@ -31,6 +32,7 @@
 mod build;
 pub mod errors;
 mod flat_graph;
+mod frozen;
 mod graph;
 mod hnsw;
 pub mod parameters;
@@ -40,7 +42,7 @@ mod usearch_graph;
 
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
-use std::sync::{Mutex, RwLock, RwLockReadGuard, RwLockWriteGuard};
+use std::sync::{Arc, Mutex, RwLock, RwLockReadGuard, RwLockWriteGuard};
 
 use serde::Serialize;
 
@@ -106,6 +108,8 @@ pub struct VectorIndex {
     /// Bumped by every insert; a dump records the value it saw.
     generation: AtomicU64,
     dumped: Mutex<DumpState>,
+    /// The flat copy searches go through, when the backend makes one.
+    frozen: RwLock<Option<Arc<frozen::Frozen>>>,
 }
 
 impl std::fmt::Debug for VectorIndex {
@@ -141,6 +145,7 @@ impl VectorIndex {
             any_indexed: AtomicBool::new(false),
             generation: AtomicU64::new(0),
             dumped: Mutex::new(DumpState::default()),
+            frozen: RwLock::new(None),
         })
     }
 

@@ -104,7 +104,7 @@ impl VectorIndex {
             return Ok(self.exact_with(&q, search.k, search.only));
         }
         let Some(only) = search.only else {
-            let hits = self.graph.search(&q, search.k, ef, None)?;
+            let hits = self.graph_search(&q, search.k, ef)?;
             return Ok(SearchAnswer {
                 hits,
                 answered: Answered::Index,
@@ -121,7 +121,7 @@ impl VectorIndex {
                 let fetch = ((search.k as f64 / share.min(1.0)) * OVERFETCH_FACTOR).ceil() as usize;
                 let fetch = fetch.clamp(search.k, n.max(search.k));
                 let ef = ef.max(fetch).min(MAX_EF_SEARCH.max(fetch));
-                let mut hits = self.graph.search(&q, fetch, ef, None)?;
+                let mut hits = self.graph_search(&q, fetch, ef)?;
                 hits.retain(|h| only.contains(&h.id));
                 (hits, ef)
             }
@@ -135,6 +135,15 @@ impl VectorIndex {
             answered: Answered::Index,
             ef_search: ef,
         })
+    }
+
+    /// The `k` best through the flat copy when there is one, else the
+    /// library's graph.
+    fn graph_search(&self, q: &[f32], k: usize, ef: usize) -> Result<Vec<Neighbour>, IndexError> {
+        match self.search_copy(q, k, ef) {
+            Some(hits) => Ok(hits),
+            None => self.graph.search(q, k, ef, None),
+        }
     }
 
     /// Several searches with the same settings, answered in order, each the

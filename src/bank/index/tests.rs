@@ -570,3 +570,66 @@ fn switching_backend_at_start_rebuilds_and_each_reloads_only_its_own_dump() {
         assert_eq!(index.search(q, &graph(1)).unwrap().hits[0].id, 6, "{to}");
     }
 }
+
+#[test]
+fn searches_go_through_the_flat_copy_and_its_tail_sees_every_row() {
+    for backend in IndexBackend::ALL {
+        let (bank, queries) = blocks_like(6_500, 100, DIM, 5);
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap();
+        index.insert(&rows_of(&bank[..4_000 * DIM], 1)).unwrap();
+        if !backend.makes_flat_copy() {
+            assert!(index.copy().is_none(), "{backend:?} makes no copy");
+            continue;
+        }
+        let first = index.copy().expect("a copy after the first insert");
+        assert_eq!(first.covers, 4_000);
+        // Through the copy, the recall target of the library's own graph
+        // (0.98 at the default breadth, as the first test of this file).
+        let recall = index_recall(&index, &queries, 10, DEFAULT_EF_SEARCH).unwrap();
+        assert!(
+            recall >= 0.98,
+            "{backend:?} recall@10 = {recall} through the copy"
+        );
+
+        // Fewer new rows than the tail limit: the same copy, and each new row
+        // is found first by its own vector through the exact scan of the tail.
+        let limit = index.tail_limit(4_000);
+        let later = rows_of(&bank[4_000 * DIM..(4_000 + limit) * DIM], 4_001);
+        index.insert(&later).unwrap();
+        let same = index.copy().unwrap();
+        assert!(
+            std::sync::Arc::ptr_eq(&first, &same),
+            "renewed before the tail passed {limit}"
+        );
+        for (id, v) in later.iter().step_by(37) {
+            let hits = index.search(v, &graph(3)).unwrap().hits;
+            assert_eq!(
+                hits[0].id, *id,
+                "{backend:?}: a tail row is found by itself"
+            );
+            assert_eq!(hits.len(), 3);
+        }
+
+        // One row more than the limit renews the copy over every row.
+        let next = 4_001 + limit as RowId;
+        index
+            .insert(&rows_of(
+                &bank[(4_000 + limit) * DIM..(4_001 + limit) * DIM],
+                next,
+            ))
+            .unwrap();
+        let renewed = index.copy().unwrap();
+        assert_eq!(renewed.covers, 4_001 + limit);
+        assert_eq!(
+            index
+                .search(
+                    &bank[(4_000 + limit) * DIM..(4_001 + limit) * DIM],
+                    &graph(1)
+                )
+                .unwrap()
+                .hits[0]
+                .id,
+            next
+        );
+    }
+}
