@@ -208,9 +208,11 @@ image-test: image cluster-tools
 	BEFIT_IMAGE=$(IMAGE) $(VENV_PY) -m pytest -q tests/cluster/test_image.py
 
 # befit under abuse and faults on loopback (tests/soak/soak.py): 3x load, slow and idle clients,
-# image bombs, kill -9 during writes, damaged files; prints its figures. About 1 minute.
+# image bombs, kill -9 during writes, damaged files; prints its figures. About 1 minute. befit runs
+# alone on the first core and the load generator on the others (SOAK_ARGS=--shared-cores: together).
+SOAK_ARGS ?=
 soak: build $(VENV)/.ready
-	$(VENV_PY) tests/soak/soak.py --json target/soak.json
+	$(VENV_PY) tests/soak/soak.py --json target/soak.json $(SOAK_ARGS)
 
 # Coverage-guided fuzzing (cargo-fuzz and libFuzzer, fuzz/): each target for FUZZ_SECONDS on one
 # core. cargo-fuzz asks for nightly-only flags; RUSTC_BOOTSTRAP=1 lets the machine's stable
