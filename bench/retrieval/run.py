@@ -11,9 +11,12 @@ seconds: lower is better for befit below 1).
     python bench/retrieval/run.py --filtered --sizes 100000  # tag filters only (about 8 min)
     python bench/retrieval/run.py --sizes 100000 --kinds blocks --backends usearch,usearch-flat
 
-The backend `usearch-flat` is usearch's graph frozen into befit's flat copy
-(`VectorIndex::freeze`): measured in the usearch run (`--flat`), each breadth
-right after usearch's own searches, with the freeze time and the copy's size.
+The backend `usearch-flat` is befit's default way with usearch: searches go
+through the flat copy of usearch's graph (`src/bank/index/frozen.rs`). Asked
+for beside `usearch`, the usearch run (`--flat`) measures the index's own
+searches through the copy first, then sets the copy aside, so the `usearch`
+rows are usearch's own search; it also times one more freeze and sizes the
+copy. Without `usearch-flat`, the `usearch` rows are the default (the copy).
 """
 
 import argparse

@@ -90,6 +90,12 @@ impl VectorIndex {
         Ok(true)
     }
 
+    /// Drops the copy: searches go to the library's graph until inserts
+    /// renew it (the retrieval benchmark measures both ways).
+    pub fn set_copy_aside(&self) {
+        *write(&self.frozen) = None;
+    }
+
     /// The current copy, if any.
     pub(super) fn copy(&self) -> Option<Arc<Frozen>> {
         read(&self.frozen).clone()
