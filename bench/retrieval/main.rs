@@ -275,7 +275,6 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
         }
     }
 
-
     if a.dump {
         let t = Instant::now();
         index.dump().map_err(std::io::Error::other)?;
@@ -320,7 +319,9 @@ fn timed(
 /// 100k: where the exact scan stops being the faster answer.
 fn crossover(a: &Args) -> std::io::Result<()> {
     let dim = a.dim;
-    for n in [1_000, 2_000, 5_000, 10_000, 20_000, 30_000, 50_000, 100_000] {
+    for n in [
+        250, 500, 1_000, 2_000, 5_000, 10_000, 20_000, 30_000, 50_000, 100_000,
+    ] {
         let (base, queries) = blocks_like(n, a.queries, dim, 9);
         let index =
             VectorIndex::in_memory(DIGEST, dim, params(a, 0)).map_err(std::io::Error::other)?;

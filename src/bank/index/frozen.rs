@@ -39,7 +39,7 @@ impl VectorIndex {
     /// `exact_below` (below it the scan beats the graph), or 1 % of the
     /// copy's rows if that is more.
     pub(super) fn tail_limit(&self, covers: usize) -> usize {
-        self.params.exact_below.max(covers / TAIL_SHARE)
+        self.exact_below_rows().max(covers / TAIL_SHARE)
     }
 
     /// Makes the flat copy, or renews it once its tail passed

@@ -64,6 +64,9 @@ use super::RowId;
 use graph::Graph;
 use persistence::DumpState;
 
+/// The dimension [`IndexParams::exact_below`] is counted in.
+pub const THRESHOLD_DIMENSION: usize = 64;
+
 /// Numbers for `GET /v1/bank`.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, utoipa::ToSchema)]
 pub struct IndexStats {
@@ -81,6 +84,10 @@ pub struct IndexStats {
     pub last_dump_unix_ms: Option<u64>,
     /// Settings.
     pub params: IndexParams,
+    /// Banks up to this many rows are scanned exactly in auto mode:
+    /// `params.exact_below` scaled to this dimension
+    /// ([`VectorIndex::exact_below_rows`]).
+    pub exact_below_rows: usize,
 }
 
 fn read<T>(l: &RwLock<T>) -> RwLockReadGuard<'_, T> {
@@ -193,6 +200,16 @@ impl VectorIndex {
         self.graph.freeze(&self.digest, &known)
     }
 
+    /// The exact-scan threshold for this index: `params.exact_below` is in
+    /// rows of 64-d vectors, and a scan of `d`-long vectors costs `d / 64`
+    /// times as much per row, where the graph's search cost grows alike
+    /// but starts higher. Measured with usearch's copy: the crossover lay
+    /// at 2000 rows for 64-d and at 250 for 512-d (BENCHMARKS.md, "The
+    /// default, and the issue's goals"), which is 2000 x 64 / d.
+    pub fn exact_below_rows(&self) -> usize {
+        self.params.exact_below.saturating_mul(THRESHOLD_DIMENSION) / self.dim.max(1)
+    }
+
     /// Numbers for the stats route.
     pub fn stats(&self) -> IndexStats {
         let dumped = *self.dumped.lock().unwrap_or_else(|e| e.into_inner());
@@ -204,6 +221,7 @@ impl VectorIndex {
             dumped_rows: dumped.rows,
             last_dump_unix_ms: dumped.at_unix_ms,
             params: self.params,
+            exact_below_rows: self.exact_below_rows(),
         }
     }
 }

@@ -39,18 +39,24 @@ pub const DEFAULT_EF_SEARCH: usize = 256;
 /// vectors: at 100k rows the scan does 550 queries/s, the graph 200 at
 /// `ef_search` 256; the scan's cost grows linearly, the graph's slowly, so
 /// they meet near 250k (`bench/retrieval`, BENCHMARKS.md). Set a little
-/// below the crossover.
+/// below the crossover. An index of another dimension scales it by
+/// `64 / dimension` as [`USEARCH_EXACT_BELOW`] was measured to scale; for
+/// hnsw_rs that scaling is assumed, not measured (a 512-d bank large enough
+/// to find its crossover would take hnsw_rs hours to build here).
 pub const HNSW_RS_EXACT_BELOW: usize = 200_000;
 
-/// [`HNSW_RS_EXACT_BELOW`] for the usearch backend: at `ef_search` 256 on
-/// 64-d blocks-like banks the exact scan answered 27.5k queries/s and the
-/// graph 21.6k at 2000 rows, 11.2k against 17.6k at 5000, and 499 against
-/// 5084 at 100k (`bench/retrieval --crossover --backend usearch`,
-/// BENCHMARKS.md). Set at the last size where the scan was faster.
+/// [`HNSW_RS_EXACT_BELOW`] for the usearch backend, searched through its flat
+/// copy: at `ef_search` 256 on 64-d blocks-like banks the exact scan
+/// answered 42.0k queries/s and the copy 42.0k at 2000 rows, 17.6k against
+/// 36.3k at 5000, and 750 against 18.5k at 100k; on 512-d ones 48.8k
+/// against 53.4k at 250 rows, 13.2k against 23.3k at 1000
+/// (`bench/retrieval --crossover --backend usearch --dim D`, BENCHMARKS.md).
+/// Set where the two met at 64-d; scaled by `64 / dimension`, it gives the
+/// 250 measured at 512-d.
 pub const USEARCH_EXACT_BELOW: usize = 2_000;
 
 /// [`IndexParams::exact_below`] of the default backend.
-pub const DEFAULT_EXACT_BELOW: usize = USEARCH_EXACT_BELOW;
+pub const DEFAULT_EXACT_BELOW: usize = HNSW_RS_EXACT_BELOW;
 
 /// Threads used to build or replay the graph. The service shares its machine
 /// with the encoders, so the default is modest.
@@ -95,8 +101,10 @@ pub struct IndexParams {
     pub ef_construction: usize,
     /// Search breadth when a search does not say ([`DEFAULT_EF_SEARCH`]).
     pub ef_search: usize,
-    /// Exact scan in [`SearchMode::Auto`] up to this many rows (by backend:
-    /// [`HNSW_RS_EXACT_BELOW`], [`USEARCH_EXACT_BELOW`]).
+    /// Exact scan in [`SearchMode::Auto`] up to this many rows of 64-d
+    /// vectors (by backend: [`HNSW_RS_EXACT_BELOW`], [`USEARCH_EXACT_BELOW`]);
+    /// an index of another dimension scales it
+    /// ([`super::VectorIndex::exact_below_rows`]).
     pub exact_below: usize,
     /// Threads for building and replaying ([`DEFAULT_BUILD_THREADS`]).
     pub build_threads: usize,

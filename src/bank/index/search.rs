@@ -193,13 +193,13 @@ impl VectorIndex {
     fn answers_exactly(&self, search: &Search<'_>) -> bool {
         let by_mode = match search.mode {
             SearchMode::Exact => true,
-            SearchMode::Auto => self.len() <= self.params.exact_below,
+            SearchMode::Auto => self.len() <= self.exact_below_rows(),
             SearchMode::Index => false,
         };
         by_mode
             || search
                 .only
-                .is_some_and(|only| only.len() <= self.params.exact_below || only.is_empty())
+                .is_some_and(|only| only.len() <= self.exact_below_rows() || only.is_empty())
     }
 
     /// The exact `k` nearest rows, optionally among `only`.

@@ -633,3 +633,38 @@ fn searches_go_through_the_flat_copy_and_its_tail_sees_every_row() {
         );
     }
 }
+
+#[test]
+fn the_exact_scan_threshold_shrinks_as_vectors_grow() {
+    // Measured crossovers with usearch's copy (BENCHMARKS.md): 2000 rows at
+    // 64-d, 250 at 512-d.
+    let params = with_backend(IndexBackend::Usearch);
+    let at = |dim| {
+        VectorIndex::in_memory(DIGEST_A, dim, params)
+            .unwrap()
+            .exact_below_rows()
+    };
+    assert_eq!(at(64), 2_000);
+    assert_eq!(at(512), 250);
+    let index = VectorIndex::in_memory(DIGEST_A, 512, params).unwrap();
+    let (bank, _) = blocks_like(300, 1, 512, 3);
+    let rows: Vec<(RowId, Vec<f32>)> = bank
+        .chunks(512)
+        .enumerate()
+        .map(|(i, v)| (i as RowId + 1, v.to_vec()))
+        .collect();
+    index.insert(&rows).unwrap();
+    let auto = Search {
+        k: 3,
+        ef_search: None,
+        mode: SearchMode::Auto,
+        only: None,
+    };
+    let answer = index.search(&bank[..512], &auto).unwrap();
+    assert_eq!(
+        answer.answered,
+        Answered::Index,
+        "300 rows of 512-d pass 250"
+    );
+    assert_eq!(index.stats().exact_below_rows, 250);
+}
