@@ -25,6 +25,25 @@ fn with_backend(backend: IndexBackend) -> IndexParams {
     IndexParams::for_backend(backend)
 }
 
+/// Opens the index of `root` on `backend` and checks that it loaded its
+/// dump of `dumped` rows and replayed `replayed` more.
+fn open_loaded(
+    root: &std::path::Path,
+    backend: IndexBackend,
+    source: &Vec<(RowId, Vec<f32>)>,
+    dumped: usize,
+    replayed: usize,
+) -> VectorIndex {
+    let (index, report) =
+        VectorIndex::open(root, DIGEST_A, DIM, with_backend(backend), source).unwrap();
+    assert_eq!(
+        report.origin,
+        GraphOrigin::Loaded { dumped, replayed },
+        "{backend:?} loads its own dump"
+    );
+    index
+}
+
 /// Graph search only, so small test banks exercise HNSW and not the scan.
 fn graph(k: usize) -> Search<'static> {
     Search {
@@ -143,15 +162,7 @@ fn dump_and_reload_answer_the_same_and_replay_later_rows() {
         );
         drop(index);
 
-        let (index, report) =
-            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
-        assert_eq!(
-            report.origin,
-            GraphOrigin::Loaded {
-                dumped: 2_000,
-                replayed: 0
-            }
-        );
+        let index = open_loaded(root.path(), backend, &source, 2_000, 0);
         let after: Vec<Vec<RowId>> = queries
             .chunks(DIM)
             .map(|q| ids(&index.search(q, &graph(10)).unwrap().hits))
@@ -161,15 +172,7 @@ fn dump_and_reload_answer_the_same_and_replay_later_rows() {
 
         // Rows committed to the source after the dump are replayed at open.
         source.extend(rows_of(&data[2_000 * DIM..], 2_001));
-        let (index, report) =
-            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(backend), &source).unwrap();
-        assert_eq!(
-            report.origin,
-            GraphOrigin::Loaded {
-                dumped: 2_000,
-                replayed: 1_000
-            }
-        );
+        let index = open_loaded(root.path(), backend, &source, 2_000, 1_000);
         assert_eq!(index.stats().indexed, 3_000);
         for (id, v) in source.iter().skip(2_000).step_by(97) {
             assert_eq!(index.search(v, &graph(1)).unwrap().hits[0].id, *id);
@@ -557,16 +560,7 @@ fn switching_backend_at_start_rebuilds_and_each_reloads_only_its_own_dump() {
             "the rebuilt {to} graph is dumped"
         );
         drop(index);
-        let (index, report) =
-            VectorIndex::open(root.path(), DIGEST_A, DIM, with_backend(to), &source).unwrap();
-        assert_eq!(
-            report.origin,
-            GraphOrigin::Loaded {
-                dumped: 600,
-                replayed: 0
-            },
-            "{to} reloads its own dump"
-        );
+        let index = open_loaded(root.path(), to, &source, 600, 0);
         assert_eq!(index.search(q, &graph(1)).unwrap().hits[0].id, 6, "{to}");
     }
 }
