@@ -13,7 +13,7 @@ DATA_DIR ?= befit-data
 
 export ORT_DYLIB_PATH ?= $(abspath $(ORT_LIB))
 
-.PHONY: all serve test bench ort venv build lint clean api-fuzz fuzz rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
+.PHONY: all serve test bench ort venv build lint cxx clean api-fuzz fuzz rl decoder-runs figures screenshots base-bundles soak install image image-tools image-test cluster-test cluster-tools cluster-throughput browser browser-deps
 
 all: build
 
@@ -37,8 +37,12 @@ $(VENV)/.ready: tests/reference/requirements.txt tests/client/requirements.txt
 
 venv: $(VENV)/.ready
 
-build: $(ORT_LIB)
+build: $(ORT_LIB) cxx
 	cargo build --release --locked
+
+# usearch's crate compiles C++17 sources: Debian's g++ when no C++ compiler is there.
+cxx:
+	@command -v c++ > /dev/null || { apt-get update -q && DEBIAN_FRONTEND=noninteractive apt-get install -y -q g++; }
 
 # `make install` (PREFIX=~/.local by default): the binary to PREFIX/bin, ONNX Runtime to
 # PREFIX/lib/befit/, where the binary looks for it (src/runtime/mod.rs).
@@ -53,7 +57,7 @@ serve: build
 	$(BIN) serve --bundle fixtures/models/blocks-v1 --listen $(ADDR) --data-dir $(DATA_DIR) \
 		--image-root fixtures/probe
 
-lint:
+lint: cxx
 	cargo fmt --check
 	cargo clippy --locked --all-targets -- -D warnings
 
