@@ -44,8 +44,8 @@ pub use errors::BankError;
 pub use exact::Neighbour;
 pub use import::{embed_missing, import_jsonl, ImportError, ImportReport};
 pub use index::{
-    Answered, DumpReport, IndexError, IndexParams, IndexStats, LoadReport, RowSource, Search,
-    SearchMode, VectorIndex,
+    Answered, DumpReport, IndexBackend, IndexError, IndexParams, IndexStats, LoadReport, RowSource,
+    Search, SearchMode, VectorIndex,
 };
 pub use model_bank::{Appended, BankAnswer, BankHit, BankQuery, ModelBank, NewCaption};
 pub use progress::ImportProgress;

@@ -5,19 +5,28 @@
 use std::collections::HashSet;
 use std::sync::Arc;
 
-use befit::bank::{BankConfig, BankQuery, CaptionBank, NewCaption, SearchMode};
+use befit::bank::{
+    BankConfig, BankQuery, CaptionBank, IndexBackend, IndexParams, NewCaption, SearchMode,
+};
 use serde_json::{json, Value};
 
 use crate::util::*;
 
-/// Every probe caption (true ones), embedded with blocks-v1, in a fresh bank.
-fn probe_bank() -> (Arc<befit::bank::ModelBank>, Vec<ProbeRow>, Vec<Vec<f32>>) {
+/// Every probe caption (true ones), embedded with blocks-v1, in a fresh bank
+/// whose index uses `backend`.
+fn probe_bank(
+    backend: IndexBackend,
+) -> (Arc<befit::bank::ModelBank>, Vec<ProbeRow>, Vec<Vec<f32>>) {
     let model = model("blocks-v1");
     let rows = probe_rows("probe.jsonl");
     let texts: Vec<String> = rows.iter().flat_map(|r| r.captions.clone()).collect();
     let runtime = tokio::runtime::Runtime::new().unwrap();
     let vectors = runtime.block_on(model.caption_vectors(&texts)).unwrap();
-    let bank = CaptionBank::open(&scratch_dir("probe-bank"), BankConfig::default()).unwrap();
+    let config = BankConfig {
+        index: IndexParams::for_backend(backend),
+        ..Default::default()
+    };
+    let bank = CaptionBank::open(&scratch_dir("probe-bank"), config).unwrap();
     let (mb, _) = bank.model(&model.bundle.digest, model.dimension()).unwrap();
     let new: Vec<NewCaption> = texts
         .iter()
@@ -46,36 +55,50 @@ fn probe_bank() -> (Arc<befit::bank::ModelBank>, Vec<ProbeRow>, Vec<Vec<f32>>) {
     (mb, rows, image_vectors)
 }
 
-#[test]
-fn index_recall_and_what_the_nearest_captions_say() {
-    let (bank, rows, images) = probe_bank();
+/// Recall@10 of the graph against the exact scan for the probe images, by
+/// the threshold rule (`befit::bank::recall`), and the share of the exact
+/// ids the graph returned; each query answered at the default breadth.
+fn probe_recall(bank: &befit::bank::ModelBank, images: &[Vec<f32>]) -> (f64, f64) {
+    let (mut exact_cosines, mut graph_cosines) = (Vec::new(), Vec::new());
     let mut overlap = 0usize;
-    for query in &images {
-        let graph = bank
-            .search(
+    for query in images {
+        let ask = |mode| {
+            bank.search(
                 query,
                 &BankQuery {
                     k: 10,
-                    mode: SearchMode::Index,
+                    mode,
                     ..Default::default()
                 },
             )
-            .unwrap();
-        let exact = bank
-            .search(
-                query,
-                &BankQuery {
-                    k: 10,
-                    mode: SearchMode::Exact,
-                    ..Default::default()
-                },
-            )
-            .unwrap();
+            .unwrap()
+        };
+        let (graph, exact) = (ask(SearchMode::Index), ask(SearchMode::Exact));
         let truth: HashSet<u64> = exact.hits.iter().map(|h| h.id).collect();
         overlap += graph.hits.iter().filter(|h| truth.contains(&h.id)).count();
+        exact_cosines.push(exact.hits.iter().map(|h| h.cosine).collect());
+        graph_cosines.push(graph.hits.iter().map(|h| h.cosine).collect());
     }
-    // Recall@10 of the graph at the default search breadth against the exact scan (the issue asks >= 0.98).
-    let recall = overlap as f64 / (10 * images.len()) as f64;
+    let recall = befit::bank::recall::mean_recall(&exact_cosines, &graph_cosines, 10);
+    (recall, overlap as f64 / (10 * images.len()) as f64)
+}
+
+#[test]
+fn every_backend_finds_the_probe_images_nearest_captions() {
+    for backend in [IndexBackend::HnswRs, IndexBackend::Usearch] {
+        let (bank, _, images) = probe_bank(backend);
+        let (recall, same_ids) = probe_recall(&bank, &images);
+        eprintln!(
+            "probe bank, {backend:?}: recall@10 {recall:.4}, exact ids returned {same_ids:.4}"
+        );
+        // The issue asks recall >= 0.98 at the default breadth (threshold rule).
+        assert!(recall >= 0.98, "{backend:?}: recall@10 {recall}");
+    }
+}
+
+#[test]
+fn what_the_nearest_captions_say() {
+    let (bank, rows, images) = probe_bank(IndexBackend::default());
     // How many of an image's 5 nearest captions are its own true captions, and how often at least
     // one is. Captions of other scenes may describe the image as well (many scenes share a
     // description), so neither is 1 even for a perfect encoder; chance is 5/5000 = 0.001.
@@ -102,8 +125,7 @@ fn index_recall_and_what_the_nearest_captions_say() {
     }
     let own_rate = own as f64 / (5 * rows.len()) as f64;
     let any_rate = any as f64 / rows.len() as f64;
-    eprintln!("probe bank: recall@10 (graph vs exact) {recall:.4}; own captions among the 5 nearest {own_rate:.3}; images with one of their own among the 5 nearest {any_rate:.3}");
-    assert!(recall >= 0.98, "recall@10 {recall}");
+    eprintln!("probe bank: own captions among the 5 nearest {own_rate:.3}; images with one of their own among the 5 nearest {any_rate:.3}");
     // Measured with blocks-v1: 0.962 and 0.715. The floors sit below that by the few images whose
     // near-tied captions a different CPU's float rounding could reorder, and far above chance.
     assert!(

@@ -27,6 +27,7 @@ use std::collections::{BinaryHeap, HashMap};
 use std::sync::Mutex;
 
 use super::errors::IndexError;
+use super::flat_links::{strengthen, LinkReport};
 use super::parameters::{check_search_bounds, unit_vector};
 use crate::bank::distance::dot;
 use crate::bank::exact::Neighbour;
@@ -85,6 +86,8 @@ pub struct FlatGraph {
     upper: Vec<u32>,
     rows: Vec<RowId>,
     top_level: usize,
+    /// What [`strengthen`] added to the library's level 0.
+    links: LinkReport,
     scratch: Mutex<Vec<Scratch>>,
 }
 
@@ -94,6 +97,7 @@ impl std::fmt::Debug for FlatGraph {
             .field("nodes", &self.rows.len())
             .field("dim", &self.dim)
             .field("top_level", &self.top_level)
+            .field("links", &self.links)
             .finish()
     }
 }
@@ -290,6 +294,7 @@ impl FlatGraph {
             }
         }
         upper_start.push(upper_offset(&upper)?);
+        let links = strengthen(words_mut(&mut base), record_words, dim, base_links);
         Ok(Self {
             digest: digest.to_string(),
             dim,
@@ -300,8 +305,14 @@ impl FlatGraph {
             upper,
             top_level: node_levels.first().copied().unwrap_or(0),
             rows,
+            links,
             scratch: Mutex::new(Vec::new()),
         })
+    }
+
+    /// What the copy added to the library's level-0 links (`flat_links`).
+    pub fn link_report(&self) -> LinkReport {
+        self.links
     }
 
     /// Points in the copy.

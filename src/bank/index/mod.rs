@@ -18,7 +18,8 @@
 //!   implements; `hnsw`: the one file that calls hnsw_rs, `usearch_graph`
 //!   the one that calls usearch.
 //! - `flat_graph`: a frozen flat copy of a usearch graph laid out for
-//!   searching ([`VectorIndex::freeze`]); `frozen`: when the copy is made
+//!   searching ([`VectorIndex::freeze`]), its level-0 links strengthened by
+//!   `flat_links` so no node is left unreachable; `frozen`: when the copy is made
 //!   and renewed, and searches through it with the exact scan of the rows
 //!   it does not hold yet.
 //!
@@ -32,6 +33,7 @@
 mod build;
 pub mod errors;
 mod flat_graph;
+mod flat_links;
 mod frozen;
 mod graph;
 mod hnsw;

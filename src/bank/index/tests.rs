@@ -90,7 +90,11 @@ fn self_queries_and_duplicates_never_panic() {
             all_three += usize::from(copies.iter().all(|c| ids(&hits).contains(c)));
         }
         // usearch found all three for 289 to 300 of 300 rows in 15 runs,
-        // hnsw_rs always 300. 0.9 is this test's floor (chosen, no source).
+        // and 291 to 300 in 80 runs through the copy with its strengthened
+        // links (`flat_links`: no node was stranded; the twins a search
+        // misses are reachable, but from far-off nodes the beam stops
+        // short of), hnsw_rs always 300. 0.9 is this test's floor (chosen,
+        // no source).
         assert!(
             all_three >= 270,
             "{backend:?}: all three copies found for {all_three} of 300 rows"
