@@ -206,9 +206,12 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
         let t = Instant::now();
         let copy = index.freeze().map_err(std::io::Error::other)?;
         let freeze = t.elapsed().as_secs_f64();
+        let links = copy.link_report();
         emit(
             serde_json::json!({"side": "befit", "copy": "flat", "kind": kind, "n": n, "what": "build",
             "freeze_seconds": freeze, "dim": dim, "m": a.m,
+            "library_links": links.library, "reverse_links": links.reverse,
+            "stranded": links.stranded, "rejoined": links.rejoined,
             "bytes_per_caption": copy.bytes() as f64 / n as f64,
             "resident_growth_per_caption": resident_bytes().saturating_sub(resident_before) as f64 / n as f64}),
         );

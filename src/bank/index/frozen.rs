@@ -76,10 +76,14 @@ impl VectorIndex {
             }
         };
         let copy = self.graph.freeze(&self.digest, &known)?;
+        let links = copy.link_report();
         tracing::info!(
             digest = %self.digest,
             rows = in_graph,
             megabytes = copy.bytes() / (1 << 20),
+            reverse_links = links.reverse,
+            stranded = links.stranded,
+            rejoined = links.rejoined,
             millis = start.elapsed().as_millis() as u64,
             "made the flat copy of the graph for searching"
         );

@@ -88,17 +88,17 @@ pub(super) fn best_k(found: impl Iterator<Item = (RowId, f32)>, k: usize) -> Vec
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize, utoipa::ToSchema)]
 #[serde(rename_all = "kebab-case")]
 pub enum IndexBackend {
-    /// hnsw_rs, pure Rust: the default. Its graph reaches recall@10 1.0
-    /// for image queries on the blocks probe bank at the default breadth,
-    /// where usearch's stays at 0.95 (0.956 at twice the breadth): image
-    /// vectors sit apart from the captions they query, and usearch's graph
-    /// of near-duplicate template captions leaves some of them unreached
-    /// (`tests/integration/bank.rs`; BENCHMARKS.md, "The default").
-    #[default]
+    /// hnsw_rs, pure Rust. Its graph reaches recall@10 1.0 for image queries
+    /// on the blocks probe bank (`tests/integration/bank.rs`), but builds
+    /// in 8.6x hnswlib's time, searches at 0.08-0.17x its queries/s and
+    /// takes 6.5x its memory (BENCHMARKS.md, "Retrieval").
     HnswRs,
     /// usearch, C++ built with the crate, searched through a flat copy of
-    /// its graph: 4.5x faster to build than hnsw_rs and, through the copy,
-    /// at or above hnswlib's queries/s at 1M (BENCHMARKS.md, "Retrieval").
+    /// its graph whose level-0 links are strengthened (`flat_links`): the
+    /// default. Builds in 1.5-2.05x hnswlib's time and, through the copy,
+    /// answers at or above hnswlib's queries/s at 100k and 1M x 64; recall@10
+    /// 0.999 on the probe bank (BENCHMARKS.md, "The default").
+    #[default]
     Usearch,
 }
 

@@ -56,7 +56,7 @@ pub const HNSW_RS_EXACT_BELOW: usize = 200_000;
 pub const USEARCH_EXACT_BELOW: usize = 2_000;
 
 /// [`IndexParams::exact_below`] of the default backend.
-pub const DEFAULT_EXACT_BELOW: usize = HNSW_RS_EXACT_BELOW;
+pub const DEFAULT_EXACT_BELOW: usize = USEARCH_EXACT_BELOW;
 
 /// Threads used to build or replay the graph. The service shares its machine
 /// with the encoders, so the default is modest.
