@@ -435,7 +435,7 @@ fn filtered(a: &Args) -> std::io::Result<()> {
         serde_json::json!({"what": "filtered-build", "n": n, "dim": dim,
         "seconds": t.elapsed().as_secs_f64()}),
     );
-    for share in [0.5, 0.2, 0.05, 0.01, 0.002] {
+    for share in [0.5, 0.2, 0.1, 0.05, 0.02, 0.01, 0.002] {
         let only: std::collections::HashSet<RowId> =
             (0..n as RowId).filter(|&id| tagged(id, share)).collect();
         let t = Instant::now();

@@ -124,27 +124,33 @@ def main() -> None:
 def filtered(a) -> None:
     """befit's two ways of searching a tag through the graph, side by side
     with the exact scan of the tag's rows (no hnswlib side: the question is
-    which of befit's own ways to use)."""
+    which of befit's own ways to use), for each backend of --backends."""
     size = a.sizes.split(",")[0]
-    rows = lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--", "--filtered",
-                  "--sizes", size, "--queries", str(a.queries), "--out", a.out,
-                  "--m", str(a.m), "--ef-construction", str(a.ef_construction),
-                  "--threads", str(a.threads)])
+    backends = [b for b in a.backends.split(",") if b != "usearch-flat"]
+    rows = []
+    for backend in backends:
+        rows += [dict(r, backend=backend)
+                 for r in lines(["cargo", "bench", "--quiet", "--bench", "retrieval", "--", "--filtered",
+                                 "--sizes", size, "--queries", str(a.queries), "--out", a.out,
+                                 "--dim", str(a.dim), "--backend", backend,
+                                 "--m", str(a.m), "--ef-construction", str(a.ef_construction),
+                                 "--threads", str(a.threads)])]
     if a.json:
         Path(a.json).write_text(json.dumps(rows, indent=1))
-    by_share = {}
-    for r in rows:
-        if r["what"] == "filtered":
-            by_share.setdefault(r["share"], {})[r["walk"]] = r
-    print(f"tag filters, n={size}, {a.queries} queries, k=10: queries/s and recall@10 "
-          "against the exact scan of the tag's rows")
-    print(f"{'share':>6} {'tagged':>8} | {'walk q/s':>8} {'recall':>6} | {'over-fetch q/s':>14} "
-          f"{'recall':>6} | {'scan q/s':>8} | {'over-fetch/walk':>15}")
-    for share, ways in by_share.items():
-        w, o = ways["within"], ways["over_fetch"]
-        print(f"{share:>6.1%} {w['tagged']:>8} | {w['qps']:>8.1f} {w['recall']:>6.3f} | "
-              f"{o['qps']:>14.1f} {o['recall']:>6.3f} | {w['exact_qps']:>8.0f} | "
-              f"{o['qps'] / w['qps']:>15.2f}")
+    for backend in backends:
+        by_share = {}
+        for r in rows:
+            if r["what"] == "filtered" and r["backend"] == backend:
+                by_share.setdefault(r["share"], {})[r["walk"]] = r
+        print(f"\n{backend}: tag filters, n={size}, dim {a.dim}, {a.queries} queries, k=10: "
+              "queries/s and recall@10 against the exact scan of the tag's rows")
+        print(f"{'share':>6} {'tagged':>8} | {'walk q/s':>8} {'recall':>6} | {'over-fetch q/s':>14} "
+              f"{'recall':>6} {'fell back':>9} | {'scan q/s':>8} | {'over-fetch/walk':>15} {'scan/over-fetch':>15}")
+        for share, ways in by_share.items():
+            w, o = ways["within"], ways["over_fetch"]
+            print(f"{share:>6.1%} {w['tagged']:>8} | {w['qps']:>8.1f} {w['recall']:>6.3f} | "
+                  f"{o['qps']:>14.1f} {o['recall']:>6.3f} {o['fell_back']:>9} | {w['exact_qps']:>8.0f} | "
+                  f"{o['qps'] / w['qps']:>15.2f} {w['exact_qps'] / o['qps']:>15.2f}")
 
 
 if __name__ == "__main__":

@@ -12,7 +12,10 @@ use serde::{Deserialize, Serialize};
 use super::errors::IndexError;
 use super::flat_graph::{FlatGraph, FreezeError};
 use super::hnsw::HnswGraph;
-use super::parameters::{IndexParams, HNSW_RS_EXACT_BELOW, USEARCH_EXACT_BELOW};
+use super::parameters::{
+    IndexParams, HNSW_RS_EXACT_BELOW, HNSW_RS_SCAN_ROWS_PER_BREADTH, USEARCH_EXACT_BELOW,
+    USEARCH_SCAN_ROWS_PER_BREADTH,
+};
 use super::usearch_graph::UsearchGraph;
 use crate::bank::distance::cosine_from_distance;
 use crate::bank::exact::{best_first, Neighbour};
@@ -132,6 +135,19 @@ impl IndexBackend {
         match self {
             Self::HnswRs => HNSW_RS_EXACT_BELOW,
             Self::Usearch => USEARCH_EXACT_BELOW,
+        }
+    }
+
+    /// Rows of a tag the exact scan reads in the time this backend's graph
+    /// search spends per unit of breadth, with the over-fetch a tag filter
+    /// uses ([`super::VectorIndex::filter_exact_below`]). Measured at
+    /// 100k x 64 by `bench/retrieval --filtered` (BENCHMARKS.md, "Tag
+    /// filters"): where over-fetching and the scan of the tag's rows answer
+    /// equally fast, `tagged^2 / (2 k bank)`.
+    pub fn scan_rows_per_breadth(self) -> f64 {
+        match self {
+            Self::HnswRs => HNSW_RS_SCAN_ROWS_PER_BREADTH,
+            Self::Usearch => USEARCH_SCAN_ROWS_PER_BREADTH,
         }
     }
 

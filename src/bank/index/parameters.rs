@@ -55,6 +55,21 @@ pub const HNSW_RS_EXACT_BELOW: usize = 200_000;
 /// 250 measured at 512-d.
 pub const USEARCH_EXACT_BELOW: usize = 2_000;
 
+/// [`IndexBackend::scan_rows_per_breadth`] of usearch's copy: at 100k x 64
+/// over-fetching a tag of 5% (5038 rows, breadth 400) answered 2894
+/// queries/s and the scan of its rows 3092; 2% and 1% were 7x and 45x
+/// faster scanned, 10% and more 3x and more faster over-fetched
+/// (`bench/retrieval --filtered --backend usearch`, BENCHMARKS.md, "Tag
+/// filters"). 5038^2 / (2 x 10 x 100 000) = 12.7.
+pub const USEARCH_SCAN_ROWS_PER_BREADTH: f64 = 12.7;
+
+/// [`IndexBackend::scan_rows_per_breadth`] of hnsw_rs: over-fetching a
+/// tag of 1% of 100k rows (breadth 2000) answered 67.6 queries/s and the
+/// scan of its 1036 rows 31 k (BENCHMARKS.md, "Tag filters", the hnsw_rs
+/// run): 7.4 us of graph per unit of breadth against 31 ns of scan per
+/// row. With [`HNSW_RS_EXACT_BELOW`] this changes no choice below 2.4M rows.
+pub const HNSW_RS_SCAN_ROWS_PER_BREADTH: f64 = 240.0;
+
 /// [`IndexParams::exact_below`] of the default backend.
 pub const DEFAULT_EXACT_BELOW: usize = USEARCH_EXACT_BELOW;
 

@@ -189,8 +189,8 @@ impl VectorIndex {
 
     /// Whether a search goes to the exact scan without trying the graph:
     /// asked to, a bank at most [`super::IndexParams::exact_below`] rows, or
-    /// a filter that small (or empty).
-    fn answers_exactly(&self, search: &Search<'_>) -> bool {
+    /// a filter at most [`Self::filter_exact_below`] rows (or empty).
+    pub(super) fn answers_exactly(&self, search: &Search<'_>) -> bool {
         let by_mode = match search.mode {
             SearchMode::Exact => true,
             SearchMode::Auto => self.len() <= self.exact_below_rows(),
@@ -199,7 +199,32 @@ impl VectorIndex {
         by_mode
             || search
                 .only
-                .is_some_and(|only| only.len() <= self.exact_below_rows() || only.is_empty())
+                .is_some_and(|only| only.len() <= self.filter_exact_below(search.k))
+    }
+
+    /// The largest tag filter that the exact scan of its rows answers, for
+    /// `k` hits, rather than over-fetching through the graph.
+    ///
+    /// Over-fetching a tag of `t` rows in a bank of `n` searches the graph
+    /// at breadth `2 k n / t` ([`FilterWalk::OverFetch`]); scanning the tag
+    /// reads its `t` rows. With `r` rows scanned in the time the graph
+    /// spends per unit of breadth ([`super::IndexBackend::scan_rows_per_breadth`],
+    /// measured), the two cost the same at `t^2 = 2 k n r`: a narrower tag
+    /// is scanned. So the limit grows with the square root of the bank: a
+    /// share of the bank that over-fetches well at 100k rows would ask for
+    /// breadths in the thousands at 1M. Never below
+    /// [`Self::exact_below_rows`], where scanning beats the graph outright;
+    /// 0 when `exact_below` is 0, which turns every choice of the scan by
+    /// size off (the benchmark's way to time the graph).
+    pub fn filter_exact_below(&self, k: usize) -> usize {
+        if self.params.exact_below == 0 {
+            return 0;
+        }
+        let balance = OVERFETCH_FACTOR
+            * k as f64
+            * self.len() as f64
+            * self.params.backend.scan_rows_per_breadth();
+        self.exact_below_rows().max(balance.sqrt() as usize)
     }
 
     /// The exact `k` nearest rows, optionally among `only`.

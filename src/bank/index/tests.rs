@@ -666,3 +666,65 @@ fn the_exact_scan_threshold_shrinks_as_vectors_grow() {
     );
     assert_eq!(index.stats().exact_below_rows, 250);
 }
+
+#[test]
+fn a_tag_is_scanned_while_scanning_it_costs_less_than_over_fetching() {
+    // `filter_exact_below`'s balance, t^2 = 2 k n r (derived in its doc),
+    // checked on the routing it decides: a tag one row inside the limit is
+    // scanned, one row past it goes to the graph, and the limit doubles
+    // when the bank grows fourfold.
+    let mut params = with_backend(IndexBackend::Usearch);
+    params.exact_below = 64;
+    let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+    let (bank, _) = blocks_like(4_000, 1, DIM, 3);
+    let k = 10;
+    let tag_of = |rows: usize| -> HashSet<RowId> { (1..=rows as RowId).collect() };
+    let scanned = |index: &VectorIndex, rows: usize| {
+        let only = tag_of(rows);
+        index.answers_exactly(&Search {
+            k,
+            ef_search: None,
+            mode: SearchMode::Index,
+            only: Some(&only),
+        })
+    };
+    let r = IndexBackend::Usearch.scan_rows_per_breadth();
+
+    index.insert(&rows_of(&bank[..1_000 * DIM], 1)).unwrap();
+    let small = index.filter_exact_below(k);
+    assert_eq!(small, (2.0 * 10.0 * 1_000.0 * r).sqrt() as usize);
+    assert!(small > 64, "the balance passes exact_below here: {small}");
+    assert!(scanned(&index, small));
+    assert!(!scanned(&index, small + 1));
+
+    index.insert(&rows_of(&bank[1_000 * DIM..], 1_001)).unwrap();
+    let large = index.filter_exact_below(k);
+    assert!(large.abs_diff(2 * small) <= 2, "{small} -> {large}");
+    assert!(scanned(&index, large) && !scanned(&index, large + 1));
+    // More hits asked for mean a wider over-fetch: the scan keeps more.
+    assert!(index.filter_exact_below(4 * k).abs_diff(2 * large) <= 2);
+
+    // The answer past the limit still has k hits (over-fetched, or the
+    // scan when too few tagged rows came back), best first.
+    let only = tag_of(large + 1);
+    let search = Search {
+        k,
+        ef_search: None,
+        mode: SearchMode::Index,
+        only: Some(&only),
+    };
+    let hits = index.search(&bank[..DIM], &search).unwrap().hits;
+    assert_eq!(hits.len(), k);
+    assert!(hits.iter().all(|h| only.contains(&h.id)));
+    assert!(hits.windows(2).all(|w| w[0].cosine >= w[1].cosine));
+
+    // exact_below 0 turns the choice off; an empty tag is always scanned.
+    params.exact_below = 0;
+    let graph_only = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+    graph_only
+        .insert(&rows_of(&bank[..1_000 * DIM], 1))
+        .unwrap();
+    assert_eq!(graph_only.filter_exact_below(k), 0);
+    assert!(!scanned(&graph_only, 10));
+    assert!(scanned(&graph_only, 0));
+}

@@ -19,7 +19,7 @@ use std::sync::{Condvar, Mutex, RwLock};
 
 use usearch::{Index, IndexOptions, MetricKind, ScalarKind, VectorType};
 
-use crate::bank::distance::dot;
+use crate::bank::distance::{dot, MAX_DISTANCE};
 
 use super::errors::IndexError;
 use super::flat_graph::{FlatGraph, FreezeError, FreezeSource};
@@ -89,20 +89,47 @@ fn use_project_dot(index: &mut Index, dimension: usize) -> Result<(), IndexError
     // Through the trait: `Index::change_metric` unwraps usearch's error.
     <f32 as VectorType>::change_metric(
         index,
-        Box::new(move |a: *const f32, b: *const f32| {
-            // SAFETY: usearch calls the metric with two of the index's vectors
-            // or a query, each `dimension` f32 long (the index checks a
-            // query's length before it reaches usearch).
-            let (a, b) = unsafe {
-                (
-                    std::slice::from_raw_parts(a, dimension),
-                    std::slice::from_raw_parts(b, dimension),
-                )
-            };
-            1.0 - dot(a, b)
-        }),
+        Box::new(move |a: *const f32, b: *const f32| metric(a, b, dimension)),
     )
     .map_err(|_| IndexError::Internal("metric"))
+}
+
+/// `1 - dot` of two vectors usearch hands the metric. Some of its pointers
+/// lack the 4-byte alignment a `&[f32]` must have (a debug build's check
+/// caught one in about one run of the bank tests in two; where in usearch
+/// they come from was not traced), so those are copied into aligned
+/// buffers first; aligned ones are read in place. A null pointer (never
+/// seen) is the largest distance.
+fn metric(a: *const f32, b: *const f32, dimension: usize) -> f32 {
+    if a.is_null() || b.is_null() {
+        return MAX_DISTANCE;
+    }
+    if a.is_aligned() && b.is_aligned() {
+        // SAFETY: usearch calls the metric with two of the index's vectors
+        // or a query, each `dimension` f32 long (the index checks a query's
+        // length before it reaches usearch); both are aligned and non-null.
+        let (a, b) = unsafe {
+            (
+                std::slice::from_raw_parts(a, dimension),
+                std::slice::from_raw_parts(b, dimension),
+            )
+        };
+        return 1.0 - dot(a, b);
+    }
+    thread_local! {
+        static ALIGNED: std::cell::RefCell<(Vec<f32>, Vec<f32>)> = const {
+            std::cell::RefCell::new((Vec::new(), Vec::new()))
+        };
+    }
+    ALIGNED.with_borrow_mut(|(ca, cb)| {
+        for (to, from) in [(&mut *ca, a), (&mut *cb, b)] {
+            to.clear();
+            // SAFETY: as above, `dimension` f32 from a non-null pointer,
+            // read without assuming alignment.
+            to.extend((0..dimension).map(|i| unsafe { from.add(i).read_unaligned() }));
+        }
+        1.0 - dot(ca, cb)
+    })
 }
 
 fn options(params: &IndexParams, dimension: usize) -> IndexOptions {
@@ -340,5 +367,38 @@ impl Graph for UsearchGraph {
             .save(path)
             .map_err(|e| format!("usearch could not write its file: {e}"))?;
         Ok(Self::dump_files())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_metric_reads_unaligned_and_null_vectors() {
+        let a: Vec<f32> = (0..70).map(|i| ((i * 7 % 13) as f32 - 6.0) / 9.0).collect();
+        let b: Vec<f32> = (0..70).map(|i| ((i * 5 % 11) as f32 - 5.0) / 7.0).collect();
+        // Reference: the dot product in f64 over the same floats.
+        let want = 1.0
+            - a.iter()
+                .zip(&b)
+                .map(|(x, y)| f64::from(*x) * f64::from(*y))
+                .sum::<f64>();
+        // The same floats one byte past an aligned start.
+        let mut bytes = vec![0u8; 1 + 4 * a.len()];
+        for (i, x) in a.iter().enumerate() {
+            bytes[1 + 4 * i..5 + 4 * i].copy_from_slice(&x.to_ne_bytes());
+        }
+        let shifted = bytes[1..].as_ptr().cast::<f32>();
+        assert!(!shifted.is_aligned());
+        for (x, y) in [
+            (shifted, b.as_ptr()),
+            (b.as_ptr(), shifted),
+            (a.as_ptr(), b.as_ptr()),
+        ] {
+            let got = f64::from(metric(x, y, a.len()));
+            assert!((got - want).abs() < 1e-5, "{got} against {want}");
+        }
+        assert_eq!(metric(std::ptr::null(), b.as_ptr(), 70), MAX_DISTANCE);
     }
 }
