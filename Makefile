@@ -173,8 +173,8 @@ BENCH_ARGS ?= --sizes 100000
 BENCH_1M ?=
 bench: build $(CACHE)/.bench-ready
 	$(VENV_PY) bench/run.py $(BENCH_ARGS)
-	$(if $(BENCH_1M),BENCH_PARTS=retrieval $(VENV_PY) bench/run.py --sizes 1000000 --kinds blocks --backends usearch)
-	$(if $(BENCH_1M),BENCH_PARTS=retrieval $(VENV_PY) bench/run.py --sizes 200000 --kinds blocks --dim 512 --backends usearch --out target/retrieval512)
+	$(if $(BENCH_1M),BENCH_PARTS=retrieval $(VENV_PY) bench/run.py --sizes 1000000 --kinds blocks --backends usearch --ef-search 32,64,128,256,512,1024 --query-threads 2)
+	$(if $(BENCH_1M),BENCH_PARTS=retrieval $(VENV_PY) bench/run.py --sizes 200000 --kinds blocks --dim 512 --backends usearch --ef-search 256,1024,2048,4096 --query-threads 2 --out target/retrieval512)
 
 # --- Past one machine: the image, the manifests, the scale-out test ---
 # (README, "Running it for a cluster").

@@ -41,6 +41,8 @@ def main() -> None:
     p.add_argument("--ef-search", default="16,32,64,96,128,256")
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--k", type=int, default=10)
+    p.add_argument("--query-threads", type=int, default=1,
+                   help="above 1: also search with this many threads sharing the queries")
     a = p.parse_args()
 
     base = np.load(a.dir / "base.npy")
@@ -83,6 +85,17 @@ def main() -> None:
         print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "search", "ef_search": ef,
                           "qps": len(queries) / secs, "recall": recall(exact_cos, approx_cos, a.k)}),
               flush=True)
+
+    if a.query_threads > 1:
+        for ef in [int(x) for x in a.ef_search.split(",")]:
+            index.set_ef(ef)
+            t = time.perf_counter()
+            _, distances = index.knn_query(queries, k=a.k, num_threads=a.query_threads)
+            secs = time.perf_counter() - t
+            print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "search_threads",
+                              "query_threads": a.query_threads, "ef_search": ef,
+                              "qps": len(queries) / secs,
+                              "recall": recall(exact_cos, 1.0 - distances, a.k)}), flush=True)
 
 
 if __name__ == "__main__":

@@ -41,6 +41,7 @@ struct Args {
     ef_construction: usize,
     ef_search: Vec<usize>,
     threads: usize,
+    query_threads: usize,
     out: PathBuf,
     crossover: bool,
     dump: bool,
@@ -67,6 +68,7 @@ fn parse_args() -> Args {
         ef_construction: 200,
         ef_search: vec![16, 32, 64, 96, 128, 256],
         threads: 2,
+        query_threads: 1,
         out: PathBuf::from("target/retrieval"),
         crossover: false,
         dump: true,
@@ -90,6 +92,9 @@ fn parse_args() -> Args {
             "--ef-construction" => a.ef_construction = value().parse().unwrap_or(a.ef_construction),
             "--ef-search" => a.ef_search = list(&value()),
             "--threads" => a.threads = value().parse().unwrap_or(a.threads),
+            "--query-threads" => {
+                a.query_threads = value().parse().unwrap_or(a.query_threads).max(1)
+            }
             "--out" => a.out = PathBuf::from(value()),
             "--crossover" => a.crossover = true,
             "--no-dump" => a.dump = false,
@@ -198,6 +203,7 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     let build = t.elapsed().as_secs_f64();
     // The index's whole footprint: the graph and the exact rows beside it.
     let index_bytes = resident_bytes().saturating_sub(resident_before);
+    let memory = index.memory();
     drop(source);
     if a.flat {
         // The index made its copy at the end of the build (counted above);
@@ -248,8 +254,30 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
         serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "build",
         "seconds": build, "threads": a.threads, "m": a.m, "ef_construction": a.ef_construction,
         "backend": a.backend, "dim": dim, "bytes_per_caption": index_bytes as f64 / n as f64,
-        "exact_rows_bytes_per_caption": (dim * 4) as f64}),
+        "exact_rows_bytes_per_caption": (dim * 4) as f64,
+        "parts_bytes_per_caption": {
+            "exact_rows": memory.exact_rows as f64 / n as f64,
+            "library_vectors": memory.library.map(|l| l.vectors as f64 / n as f64),
+            "library_graph": memory.library.map(|l| l.graph as f64 / n as f64),
+            "copy": memory.copy as f64 / n as f64,
+        }}),
     );
+
+    // With `--query-threads T` above 1: the default way (through the copy
+    // when the backend makes one) with T threads sharing the queries.
+    if a.query_threads > 1 {
+        for &ef in &a.ef_search {
+            let search = graph_search(a.k, ef);
+            let (qps, recall) =
+                timed_on_threads(&queries, dim, &exact_cos, a.k, a.query_threads, |q| {
+                    Ok(index.search(q, &search)?.hits)
+                })?;
+            emit(
+                serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search_threads",
+                "query_threads": a.query_threads, "ef_search": ef, "qps": qps, "recall": recall}),
+            );
+        }
+    }
 
     // With `--flat`: first the index's own searches (through its flat copy)
     // as the `usearch-flat` rows, then the copy is set aside and usearch's
@@ -260,12 +288,7 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
             index.set_copy_aside();
         }
         for &ef in &a.ef_search {
-            let search = Search {
-                k: a.k,
-                ef_search: Some(ef),
-                mode: SearchMode::Index,
-                only: None,
-            };
+            let search = graph_search(a.k, ef);
             let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, |q| {
                 Ok(index.search(q, &search)?.hits)
             })?;
@@ -296,6 +319,16 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     Ok(())
 }
 
+/// An unfiltered search through the graph (never the scan) at breadth `ef`.
+fn graph_search(k: usize, ef: usize) -> Search<'static> {
+    Search {
+        k,
+        ef_search: Some(ef),
+        mode: SearchMode::Index,
+        only: None,
+    }
+}
+
 /// Queries per second of `search` over `queries` (one thread) and its
 /// recall@k against the exact cosines.
 fn timed(
@@ -312,6 +345,48 @@ fn timed(
         approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
     }
     let secs = t.elapsed().as_secs_f64();
+    Ok((
+        approx.len() as f64 / secs,
+        mean_recall(exact_cos, &approx, k),
+    ))
+}
+
+/// [`timed`] with `threads` threads, each searching its share of the
+/// queries (consecutive runs of them); answers kept in query order.
+fn timed_on_threads(
+    queries: &[f32],
+    dim: usize,
+    exact_cos: &[Vec<f32>],
+    k: usize,
+    threads: usize,
+    search: impl Fn(&[f32]) -> Result<Vec<Neighbour>, IndexError> + Sync,
+) -> std::io::Result<(f64, f64)> {
+    let count = queries.len() / dim;
+    let per_thread = count.div_ceil(threads).max(1);
+    let t = Instant::now();
+    let parts: Vec<Result<Vec<Vec<f32>>, IndexError>> = std::thread::scope(|scope| {
+        let search = &search;
+        let handles: Vec<_> = queries
+            .chunks(per_thread * dim)
+            .map(|share| {
+                scope.spawn(move || {
+                    share
+                        .chunks(dim)
+                        .map(|q| Ok(search(q)?.iter().map(|h| h.cosine).collect()))
+                        .collect()
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().expect("a query thread panicked"))
+            .collect()
+    });
+    let secs = t.elapsed().as_secs_f64();
+    let mut approx = Vec::with_capacity(count);
+    for part in parts {
+        approx.extend(part.map_err(std::io::Error::other)?);
+    }
     Ok((
         approx.len() as f64 / secs,
         mean_recall(exact_cos, &approx, k),

@@ -10,6 +10,7 @@ seconds: lower is better for befit below 1).
     python bench/retrieval/run.py                          # 100k and 1M
     python bench/retrieval/run.py --filtered --sizes 100000  # tag filters only (about 8 min)
     python bench/retrieval/run.py --sizes 100000 --kinds blocks --backends usearch,usearch-flat
+    python bench/retrieval/run.py --sizes 100000 --kinds blocks --query-threads 2  # also 2 query threads
 
 The backend `usearch-flat` is befit's default way with usearch: searches go
 through the flat copy of usearch's graph (`src/bank/index/frozen.rs`). Asked
@@ -44,6 +45,8 @@ def main() -> None:
     p.add_argument("--ef-construction", type=int, default=200)
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--queries", type=int, default=1000)
+    p.add_argument("--query-threads", type=int, default=1,
+                   help="above 1: also time each side's default search with this many threads")
     p.add_argument("--dim", type=int, default=64)
     p.add_argument("--backends", default="usearch,hnsw-rs",
                    help="befit's index backends, each run beside the same hnswlib run")
@@ -57,7 +60,8 @@ def main() -> None:
         return
 
     common = ["--m", str(a.m), "--ef-construction", str(a.ef_construction),
-              "--ef-search", a.ef_search, "--threads", str(a.threads)]
+              "--ef-search", a.ef_search, "--threads", str(a.threads),
+              "--query-threads", str(a.query_threads)]
     befit = []
     backends = a.backends.split(",")
     flat = "usearch-flat" in backends
@@ -110,6 +114,13 @@ def main() -> None:
                       f"graph alone {(bb['bytes_per_caption'] - bb['exact_rows_bytes_per_caption']) / hb['bytes_per_caption']:.2f}x hnswlib's; "
                       f"exact scan {ex['qps']:.0f} q/s"
                       + (f"; dump {dump['dump_seconds']:.2f} s, restart {dump['load_seconds']:.2f} s" if dump else ""))
+                parts = bb.get("parts_bytes_per_caption")
+                if parts:
+                    named = [("exact rows", parts["exact_rows"]), ("library's vectors", parts["library_vectors"]),
+                             ("library's graph", parts["library_graph"]), ("copy", parts["copy"])]
+                    print("    by part, bytes/caption (the index's own count): "
+                          + ", ".join(f"{name} {v:.0f}" for name, v in named if v is not None)
+                          + (" (hnsw_rs does not count its own)" if parts["library_vectors"] is None else ""))
             print(f"{'ef_search':>9} | " + " | ".join(f"{b + ' q/s':>16} {'recall':>7} {'ratio':>6}" for b in a.backends.split(","))
                   + f" | {'hnswlib q/s':>11} {'recall':>7}")
             for ef in [int(x) for x in a.ef_search.split(",")]:
@@ -119,6 +130,17 @@ def main() -> None:
                     b = get(f"befit {backend}", kind, n, "search", ef)
                     cells.append(f"{b['qps']:>16.0f} {b['recall']:>7.4f} {b['qps'] / h['qps']:>6.2f}")
                 print(f"{ef:>9} | " + " | ".join(cells) + f" | {h['qps']:>11.0f} {h['recall']:>7.4f}")
+            if a.query_threads > 1:
+                print(f"with {a.query_threads} query threads (befit's default way: the copy for usearch)")
+                print(f"{'ef_search':>9} | " + " | ".join(f"{b + ' q/s':>16} {'recall':>7} {'ratio':>6}" for b in runs)
+                      + f" | {'hnswlib q/s':>11} {'recall':>7}")
+                for ef in [int(x) for x in a.ef_search.split(",")]:
+                    h = get("hnswlib", kind, n, "search_threads", ef)
+                    cells = []
+                    for backend in runs:
+                        b = get(f"befit {backend}", kind, n, "search_threads", ef)
+                        cells.append(f"{b['qps']:>16.0f} {b['recall']:>7.4f} {b['qps'] / h['qps']:>6.2f}")
+                    print(f"{ef:>9} | " + " | ".join(cells) + f" | {h['qps']:>11.0f} {h['recall']:>7.4f}")
 
 
 def filtered(a) -> None:

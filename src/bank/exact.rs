@@ -166,6 +166,17 @@ impl ExactRows {
         self.data.get(p * self.dim..(p + 1) * self.dim)
     }
 
+    /// Bytes this matrix holds in memory: the vectors and the ids as far
+    /// as they are filled (room reserved past that is not touched, so not
+    /// resident), and the id-to-position map's table (its slots, one
+    /// control byte each).
+    pub fn heap_bytes(&self) -> usize {
+        let slot = std::mem::size_of::<(RowId, usize)>() + 1;
+        self.data.len() * std::mem::size_of::<f32>()
+            + self.ids.len() * std::mem::size_of::<RowId>()
+            + self.position.capacity() * slot
+    }
+
     /// Row ids in the order they were added.
     pub fn ids(&self) -> &[RowId] {
         &self.ids

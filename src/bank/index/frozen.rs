@@ -24,7 +24,7 @@ use crate::bank::exact::{best_first, Neighbour};
 
 /// The copy and how many rows of the exact matrix (a prefix) it holds.
 pub(super) struct Frozen {
-    copy: FlatGraph,
+    pub(super) copy: FlatGraph,
     /// Rows of the matrix, from its first, that the copy holds.
     pub(super) covers: usize,
 }

@@ -51,6 +51,11 @@ pub(super) trait Graph: Send + Sync {
     /// Points in the graph.
     fn len(&self) -> usize;
 
+    /// What the library reports it holds in memory, when it can tell.
+    fn library_memory(&self) -> Option<LibraryMemory> {
+        None
+    }
+
     /// Calls `each` with every point's id and vector; stops at the first
     /// error. `known` lists the ids the caller expects: a library that
     /// cannot list its points looks those up instead (the caller then
@@ -69,6 +74,15 @@ pub(super) trait Graph: Send + Sync {
             "only the usearch backend's graph can be copied".into(),
         ))
     }
+}
+
+/// Bytes a graph library holds, by its own count.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct LibraryMemory {
+    /// Its copies of the vectors.
+    pub vectors: usize,
+    /// The graph: nodes, links, levels.
+    pub graph: usize,
 }
 
 /// The `k` best of a library's answer given as `(row, 1 - dot)` pairs,
@@ -93,14 +107,16 @@ pub(super) fn best_k(found: impl Iterator<Item = (RowId, f32)>, k: usize) -> Vec
 pub enum IndexBackend {
     /// hnsw_rs, pure Rust. Its graph reaches recall@10 1.0 for image queries
     /// on the blocks probe bank (`tests/integration/bank.rs`), but builds
-    /// in 8.6x hnswlib's time, searches at 0.08-0.17x its queries/s and
-    /// takes 6.5x its memory (BENCHMARKS.md, "Retrieval").
+    /// in 3.2-8.6x hnswlib's time, searches at 0.08-0.31x its queries/s and
+    /// takes 3-6.6x its memory (BENCHMARKS.md, "Retrieval", "The dot
+    /// kernels").
     HnswRs,
     /// usearch, C++ built with the crate, searched through a flat copy of
     /// its graph whose level-0 links are strengthened (`flat_links`): the
-    /// default. Builds in 1.5-2.05x hnswlib's time and, through the copy,
-    /// answers at or above hnswlib's queries/s at 100k and 1M x 64; recall@10
-    /// 0.999 on the probe bank (BENCHMARKS.md, "The default").
+    /// default. Builds in 1.25-1.7x hnswlib's time and, through the copy,
+    /// answers at or above hnswlib's queries/s at 100k and 1M x 64 and at
+    /// 200k x 512; recall@10 0.999 on the probe bank (BENCHMARKS.md, "The
+    /// default", "The dot kernels").
     #[default]
     Usearch,
 }

@@ -51,7 +51,7 @@ use serde::Serialize;
 pub use build::{GraphOrigin, LoadReport, RowSource};
 pub use errors::IndexError;
 pub use flat_graph::{FlatGraph, FreezeError};
-pub use graph::IndexBackend;
+pub use graph::{IndexBackend, LibraryMemory};
 pub use parameters::{
     check_query_count, check_search_bounds, unit_vector, validate_digest, IndexParams, Search,
     SearchMode, DEFAULT_BUILD_THREADS, DEFAULT_EF_CONSTRUCTION, DEFAULT_EF_SEARCH,
@@ -90,6 +90,19 @@ pub struct IndexStats {
     /// `params.exact_below` scaled to this dimension
     /// ([`VectorIndex::exact_below_rows`]).
     pub exact_below_rows: usize,
+}
+
+/// Bytes the index holds in memory, by part (docs/bank.md says what each
+/// part is for).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct IndexMemory {
+    /// The exact matrix: vectors, row ids and the id-to-position map.
+    pub exact_rows: usize,
+    /// The graph library's own count, when it gives one (usearch does,
+    /// hnsw_rs does not).
+    pub library: Option<LibraryMemory>,
+    /// The flat copy searches go through (0 without one).
+    pub copy: usize,
 }
 
 fn read<T>(l: &RwLock<T>) -> RwLockReadGuard<'_, T> {
@@ -210,6 +223,15 @@ impl VectorIndex {
     /// default, and the issue's goals"), which is 2000 x 64 / d.
     pub fn exact_below_rows(&self) -> usize {
         self.params.exact_below.saturating_mul(THRESHOLD_DIMENSION) / self.dim.max(1)
+    }
+
+    /// Bytes held in memory, by part.
+    pub fn memory(&self) -> IndexMemory {
+        IndexMemory {
+            exact_rows: read(&self.rows).heap_bytes(),
+            library: self.graph.library_memory(),
+            copy: self.copy().map_or(0, |f| f.copy.bytes()),
+        }
     }
 
     /// Numbers for the stats route.

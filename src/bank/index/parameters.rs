@@ -55,19 +55,22 @@ pub const HNSW_RS_EXACT_BELOW: usize = 200_000;
 /// 250 measured at 512-d.
 pub const USEARCH_EXACT_BELOW: usize = 2_000;
 
-/// [`IndexBackend::scan_rows_per_breadth`] of usearch's copy: at 100k x 64
-/// over-fetching a tag of 5% (5038 rows, breadth 400) answered 2894
-/// queries/s and the scan of its rows 3092; 2% and 1% were 7x and 45x
-/// faster scanned, 10% and more 3x and more faster over-fetched
-/// (`bench/retrieval --filtered --backend usearch`, BENCHMARKS.md, "Tag
-/// filters"). 5038^2 / (2 x 10 x 100 000) = 12.7.
-pub const USEARCH_SCAN_ROWS_PER_BREADTH: f64 = 12.7;
+/// [`IndexBackend::scan_rows_per_breadth`] of usearch's copy: at 100k x 64,
+/// `ef_search` 256, over-fetching a tag of 10% (10 021 rows, breadth 2560)
+/// answered 551 queries/s and the scan of its rows 1522; at 20% (breadth
+/// 1280) 1043 against 739 (`bench/retrieval --filtered --backend usearch`,
+/// BENCHMARKS.md, "Tag filters"). The two meet, by the ratio's logarithm
+/// between those shares, at 16.8% (16 800 rows): 16 800^2 / (256 x
+/// 100 000) = 11.0. (Measured with the narrower over-fetch of before, the
+/// figure was 12.7.)
+pub const USEARCH_SCAN_ROWS_PER_BREADTH: f64 = 11.0;
 
 /// [`IndexBackend::scan_rows_per_breadth`] of hnsw_rs: over-fetching a
 /// tag of 1% of 100k rows (breadth 2000) answered 67.6 queries/s and the
 /// scan of its 1036 rows 31 k (BENCHMARKS.md, "Tag filters", the hnsw_rs
 /// run): 7.4 us of graph per unit of breadth against 31 ns of scan per
-/// row. With [`HNSW_RS_EXACT_BELOW`] this changes no choice below 2.4M rows.
+/// row. Measured with the narrower over-fetch of before; the cost per
+/// unit of breadth is taken to hold at the wider one (not re-measured). With [`HNSW_RS_EXACT_BELOW`] this changes no choice below 2.4M rows.
 pub const HNSW_RS_SCAN_ROWS_PER_BREADTH: f64 = 240.0;
 
 /// [`IndexParams::exact_below`] of the default backend.

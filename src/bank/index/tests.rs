@@ -669,21 +669,22 @@ fn the_exact_scan_threshold_shrinks_as_vectors_grow() {
 
 #[test]
 fn a_tag_is_scanned_while_scanning_it_costs_less_than_over_fetching() {
-    // `filter_exact_below`'s balance, t^2 = 2 k n r (derived in its doc),
-    // checked on the routing it decides: a tag one row inside the limit is
-    // scanned, one row past it goes to the graph, and the limit doubles
-    // when the bank grows fourfold.
+    // `filter_exact_below`'s balance, t^2 = max(ef, 2k) n r (derived in its
+    // doc), checked on the routing it decides: a tag one row inside the
+    // limit is scanned, one row past it goes to the graph, and the limit
+    // doubles when the bank, the breadth or (past ef) k grows fourfold.
     let mut params = with_backend(IndexBackend::Usearch);
     params.exact_below = 64;
     let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
     let (bank, _) = blocks_like(4_000, 1, DIM, 3);
     let k = 10;
+    let ef = 16;
     let tag_of = |rows: usize| -> HashSet<RowId> { (1..=rows as RowId).collect() };
-    let scanned = |index: &VectorIndex, rows: usize| {
+    let scanned = |index: &VectorIndex, rows: usize, ef: usize| {
         let only = tag_of(rows);
         index.answers_exactly(&Search {
             k,
-            ef_search: None,
+            ef_search: Some(ef),
             mode: SearchMode::Index,
             only: Some(&only),
         })
@@ -691,25 +692,30 @@ fn a_tag_is_scanned_while_scanning_it_costs_less_than_over_fetching() {
     let r = IndexBackend::Usearch.scan_rows_per_breadth();
 
     index.insert(&rows_of(&bank[..1_000 * DIM], 1)).unwrap();
-    let small = index.filter_exact_below(k);
-    assert_eq!(small, (2.0 * 10.0 * 1_000.0 * r).sqrt() as usize);
+    // Breadth max(16, 2 x 10) = 20.
+    let small = index.filter_exact_below(k, ef);
+    assert_eq!(small, (20.0 * 1_000.0 * r).sqrt() as usize);
     assert!(small > 64, "the balance passes exact_below here: {small}");
-    assert!(scanned(&index, small));
-    assert!(!scanned(&index, small + 1));
+    assert!(scanned(&index, small, ef));
+    assert!(!scanned(&index, small + 1, ef));
+    // A wider search over-fetches more widely: the scan keeps more tags.
+    let wide = index.filter_exact_below(k, 80);
+    assert!(wide.abs_diff(2 * small) <= 2, "{small} -> {wide}");
+    assert!(scanned(&index, wide, 80) && !scanned(&index, wide + 1, 80));
 
     index.insert(&rows_of(&bank[1_000 * DIM..], 1_001)).unwrap();
-    let large = index.filter_exact_below(k);
+    let large = index.filter_exact_below(k, ef);
     assert!(large.abs_diff(2 * small) <= 2, "{small} -> {large}");
-    assert!(scanned(&index, large) && !scanned(&index, large + 1));
-    // More hits asked for mean a wider over-fetch: the scan keeps more.
-    assert!(index.filter_exact_below(4 * k).abs_diff(2 * large) <= 2);
+    assert!(scanned(&index, large, ef) && !scanned(&index, large + 1, ef));
+    // More hits asked for mean a wider over-fetch once 2k passes ef.
+    assert!(index.filter_exact_below(4 * k, ef).abs_diff(2 * large) <= 2);
 
     // The answer past the limit still has k hits (over-fetched, or the
     // scan when too few tagged rows came back), best first.
     let only = tag_of(large + 1);
     let search = Search {
         k,
-        ef_search: None,
+        ef_search: Some(ef),
         mode: SearchMode::Index,
         only: Some(&only),
     };
@@ -724,7 +730,95 @@ fn a_tag_is_scanned_while_scanning_it_costs_less_than_over_fetching() {
     graph_only
         .insert(&rows_of(&bank[..1_000 * DIM], 1))
         .unwrap();
-    assert_eq!(graph_only.filter_exact_below(k), 0);
-    assert!(!scanned(&graph_only, 10));
-    assert!(scanned(&graph_only, 0));
+    assert_eq!(graph_only.filter_exact_below(k, ef), 0);
+    assert!(!scanned(&graph_only, 10, ef));
+    assert!(scanned(&graph_only, 0, ef));
+}
+
+#[test]
+fn an_over_fetched_tag_keeps_the_recall_of_an_unfiltered_search() {
+    // Over-fetching searches at max(ef, 2k) / share, so a tag's hits should
+    // be about as near the best as an unfiltered search's at ef: checked
+    // against the exact scan of the tag's rows (recall counted as
+    // everywhere here, ann-benchmarks' threshold rule), for tags of 5 to
+    // 25 % sent to the graph (exact_below 0). The tolerance, 0.02, is a
+    // choice: under one breadth step's gain at this size.
+    for backend in IndexBackend::ALL {
+        let mut params = with_backend(backend);
+        params.exact_below = 0;
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, params).unwrap();
+        let (bank, queries) = blocks_like(8_000, 60, DIM, 21);
+        index.insert(&rows_of(&bank, 1)).unwrap();
+        let ef = 128;
+        let unfiltered = index_recall(&index, &queries, 10, ef).unwrap();
+        for every in [4, 10, 20] {
+            let only: HashSet<RowId> = (1..=8_000).filter(|id| id % every == 0).collect();
+            let search = Search {
+                k: 10,
+                ef_search: Some(ef),
+                mode: SearchMode::Index,
+                only: Some(&only),
+            };
+            assert_eq!(
+                index.over_fetch_breadth(ef, 10, only.len()),
+                ef * every as usize,
+                "breadth ef / share"
+            );
+            let mut exact = Vec::new();
+            let mut found = Vec::new();
+            for q in queries.chunks(DIM) {
+                let answer = index.search(q, &search).unwrap();
+                assert_eq!(answer.answered, Answered::Index);
+                assert!(answer.hits.iter().all(|h| only.contains(&h.id)));
+                found.push(answer.hits.iter().map(|h| h.cosine).collect::<Vec<_>>());
+                let truth = index.exact(q, 10, Some(&only)).unwrap();
+                exact.push(truth.iter().map(|h| h.cosine).collect::<Vec<_>>());
+            }
+            let recall = crate::bank::recall::mean_recall(&exact, &found, 10);
+            assert!(
+                recall >= unfiltered - 0.02,
+                "{backend:?}: a tag on 1 row in {every}: recall@10 {recall}, unfiltered {unfiltered}"
+            );
+        }
+    }
+}
+
+#[test]
+fn memory_by_part_counts_each_copy_of_the_vectors() {
+    // Floor for every part that holds the vectors: n rows of DIM f32, 4
+    // bytes each (IEEE 754 binary32). Ceilings: the exact matrix grows by
+    // doubling (so below 2x plus the id map), usearch's tapes are counted
+    // without their untouched reserve, the copy adds its links.
+    const N: usize = 3_000;
+    let vectors = N * DIM * std::mem::size_of::<f32>();
+    for backend in IndexBackend::ALL {
+        let (bank, _) = blocks_like(N, 1, DIM, 9);
+        let index = VectorIndex::in_memory(DIGEST_A, DIM, with_backend(backend)).unwrap();
+        let empty = index.memory();
+        assert_eq!(empty.exact_rows, 0, "{backend:?}: nothing held yet");
+        index.insert(&rows_of(&bank, 1)).unwrap();
+        let m = index.memory();
+        assert!(
+            m.exact_rows >= vectors + N * std::mem::size_of::<RowId>(),
+            "{backend:?}: {m:?}"
+        );
+        assert!(m.exact_rows < 3 * vectors, "{backend:?}: {m:?}");
+        match backend {
+            IndexBackend::Usearch => {
+                let library = m.library.expect("usearch counts its memory");
+                assert!(
+                    library.vectors >= vectors && library.vectors < 2 * vectors,
+                    "{m:?}"
+                );
+                assert!(library.graph > 0, "{m:?}");
+                let copy = index.copy().expect("usearch makes a copy");
+                assert_eq!(m.copy, copy.copy.bytes());
+                assert!(m.copy > vectors, "{m:?}");
+            }
+            IndexBackend::HnswRs => {
+                assert_eq!(m.library, None, "hnsw_rs does not count its memory");
+                assert_eq!(m.copy, 0, "hnsw_rs makes no copy");
+            }
+        }
+    }
 }

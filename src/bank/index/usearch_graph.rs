@@ -23,7 +23,7 @@ use crate::bank::distance::{dot, MAX_DISTANCE};
 
 use super::errors::IndexError;
 use super::flat_graph::{FlatGraph, FreezeError, FreezeSource};
-use super::graph::{best_k, Graph, PointVisitor, RowFilter};
+use super::graph::{best_k, Graph, LibraryMemory, PointVisitor, RowFilter};
 use super::parameters::IndexParams;
 use super::{read, write};
 use crate::bank::exact::Neighbour;
@@ -335,6 +335,24 @@ impl Graph for UsearchGraph {
 
     fn len(&self) -> usize {
         read(&self.index).size()
+    }
+
+    /// By usearch's own count (`memory_usage`, which it calls a lower bound
+    /// within 10 %, and its allocator tapes): the vectors' tape, and the
+    /// rest (node tape, node table, search contexts). The part of each tape
+    /// reserved for growth and not yet written is left out: it is mapped
+    /// but not resident until used.
+    fn library_memory(&self) -> Option<LibraryMemory> {
+        let index = read(&self.index);
+        let tapes = index.memory_stats();
+        let vectors = tapes
+            .vectors_allocated
+            .saturating_sub(tapes.vectors_reserved);
+        let graph = index
+            .memory_usage()
+            .saturating_sub(tapes.vectors_allocated)
+            .saturating_sub(tapes.graph_reserved);
+        Some(LibraryMemory { vectors, graph })
     }
 
     /// usearch cannot list its keys: looks up each of `known`.
