@@ -34,6 +34,20 @@ pub(super) struct Frozen {
 /// reads the whole graph, so it is paid once per this many inserts.
 const TAIL_SHARE: usize = 100;
 
+/// Hands the memory freed since the last call back to the system: the
+/// copy's making goes through temporary tables as large as the copy, and a
+/// renewal frees the old copy, but glibc's allocator keeps freed blocks
+/// below its (growing) mapping threshold in its heaps, where they stay
+/// resident. `malloc_trim` releases the free pages of every heap.
+fn return_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim only walks the allocator's own free lists; it
+    // takes no pointer and leaves allocated blocks where they are.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
 impl VectorIndex {
     /// Rows beyond the copy that are scanned exactly before it is renewed:
     /// `exact_below` (below it the scan beats the graph), or 1 % of the
@@ -91,6 +105,7 @@ impl VectorIndex {
             copy,
             covers: in_graph,
         }));
+        return_freed_memory();
         Ok(true)
     }
 
