@@ -159,7 +159,7 @@ impl IndexBackend {
     /// uses ([`super::VectorIndex::filter_exact_below`]). Measured at
     /// 100k x 64 by `bench/retrieval --filtered` (BENCHMARKS.md, "Tag
     /// filters"): where over-fetching and the scan of the tag's rows answer
-    /// equally fast, `tagged^2 / (2 k bank)`.
+    /// equally fast, `tagged^2 / (max(ef_search, 2 k) bank)`.
     pub fn scan_rows_per_breadth(self) -> f64 {
         match self {
             Self::HnswRs => HNSW_RS_SCAN_ROWS_PER_BREADTH,
