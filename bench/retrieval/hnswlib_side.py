@@ -74,29 +74,21 @@ def main() -> None:
     print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "dump",
                       "dump_seconds": dump, "load_seconds": load}), flush=True)
 
-    for ef in [int(x) for x in a.ef_search.split(",")]:
-        index.set_ef(ef)
-        # One thread, all queries in one call: the loop runs in C++, as befit's
-        # runs in Rust, so neither side pays for Python per query.
-        t = time.perf_counter()
-        _, distances = index.knn_query(queries, k=a.k, num_threads=1)
-        secs = time.perf_counter() - t
-        approx_cos = 1.0 - distances
-        print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "search", "ef_search": ef,
-                          "qps": len(queries) / secs, "recall": recall(exact_cos, approx_cos, a.k)}),
-              flush=True)
-
-    if a.query_threads > 1:
+    # One thread, then (with --query-threads above 1) several; all queries in
+    # one call: the loop runs in C++, as befit's runs in Rust, so neither side
+    # pays for Python per query.
+    passes = [(1, "search")] + ([(a.query_threads, "search_threads")] if a.query_threads > 1 else [])
+    for threads, what in passes:
         for ef in [int(x) for x in a.ef_search.split(",")]:
             index.set_ef(ef)
             t = time.perf_counter()
-            _, distances = index.knn_query(queries, k=a.k, num_threads=a.query_threads)
+            _, distances = index.knn_query(queries, k=a.k, num_threads=threads)
             secs = time.perf_counter() - t
-            print(json.dumps({"side": "hnswlib", "kind": a.kind, "n": n, "what": "search_threads",
-                              "query_threads": a.query_threads, "ef_search": ef,
-                              "qps": len(queries) / secs,
-                              "recall": recall(exact_cos, 1.0 - distances, a.k)}), flush=True)
-
+            row = {"side": "hnswlib", "kind": a.kind, "n": n, "what": what, "ef_search": ef,
+                   "qps": len(queries) / secs, "recall": recall(exact_cos, 1.0 - distances, a.k)}
+            if threads > 1:
+                row["query_threads"] = threads
+            print(json.dumps(row), flush=True)
 
 if __name__ == "__main__":
     main()

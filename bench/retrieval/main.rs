@@ -268,10 +268,9 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
     if a.query_threads > 1 {
         for &ef in &a.ef_search {
             let search = graph_search(a.k, ef);
-            let (qps, recall) =
-                timed_on_threads(&queries, dim, &exact_cos, a.k, a.query_threads, |q| {
-                    Ok(index.search(q, &search)?.hits)
-                })?;
+            let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, a.query_threads, |q| {
+                Ok(index.search(q, &search)?.hits)
+            })?;
             emit(
                 serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search_threads",
                 "query_threads": a.query_threads, "ef_search": ef, "qps": qps, "recall": recall}),
@@ -289,7 +288,7 @@ fn run_size(a: &Args, kind: &str, n: usize) -> std::io::Result<()> {
         }
         for &ef in &a.ef_search {
             let search = graph_search(a.k, ef);
-            let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, |q| {
+            let (qps, recall) = timed(&queries, dim, &exact_cos, a.k, 1, |q| {
                 Ok(index.search(q, &search)?.hits)
             })?;
             let mut row = serde_json::json!({"side": "befit", "kind": kind, "n": n, "what": "search",
@@ -329,31 +328,10 @@ fn graph_search(k: usize, ef: usize) -> Search<'static> {
     }
 }
 
-/// Queries per second of `search` over `queries` (one thread) and its
-/// recall@k against the exact cosines.
+/// Queries per second of `search` over `queries` with `threads` threads,
+/// each searching its share of the queries (consecutive runs of them), and
+/// its recall@k against the exact cosines (answers kept in query order).
 fn timed(
-    queries: &[f32],
-    dim: usize,
-    exact_cos: &[Vec<f32>],
-    k: usize,
-    mut search: impl FnMut(&[f32]) -> Result<Vec<Neighbour>, IndexError>,
-) -> std::io::Result<(f64, f64)> {
-    let t = Instant::now();
-    let mut approx = Vec::with_capacity(exact_cos.len());
-    for q in queries.chunks(dim) {
-        let hits = search(q).map_err(std::io::Error::other)?;
-        approx.push(hits.iter().map(|h| h.cosine).collect::<Vec<f32>>());
-    }
-    let secs = t.elapsed().as_secs_f64();
-    Ok((
-        approx.len() as f64 / secs,
-        mean_recall(exact_cos, &approx, k),
-    ))
-}
-
-/// [`timed`] with `threads` threads, each searching its share of the
-/// queries (consecutive runs of them); answers kept in query order.
-fn timed_on_threads(
     queries: &[f32],
     dim: usize,
     exact_cos: &[Vec<f32>],

@@ -70,7 +70,9 @@ pub const USEARCH_SCAN_ROWS_PER_BREADTH: f64 = 11.0;
 /// scan of its 1036 rows 31 k (BENCHMARKS.md, "Tag filters", the hnsw_rs
 /// run): 7.4 us of graph per unit of breadth against 31 ns of scan per
 /// row. Measured with the narrower over-fetch of before; the cost per
-/// unit of breadth is taken to hold at the wider one (not re-measured). With [`HNSW_RS_EXACT_BELOW`] this changes no choice below 2.4M rows.
+/// unit of breadth is taken to hold at the wider one (not re-measured).
+/// With [`HNSW_RS_EXACT_BELOW`] (200 000) and the default breadth this
+/// changes no choice below about 650k rows (200 000^2 / (256 x 240)).
 pub const HNSW_RS_SCAN_ROWS_PER_BREADTH: f64 = 240.0;
 
 /// [`IndexParams::exact_below`] of the default backend.

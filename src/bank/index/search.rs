@@ -73,11 +73,18 @@ impl VectorIndex {
         search: &Search<'_>,
     ) -> Result<(Vec<f32>, usize), IndexError> {
         check_search_bounds(search.k, search.ef_search)?;
-        let ef = search.ef_search.unwrap_or(self.params.ef_search);
         Ok((
             unit_vector(query, self.dim, &self.digest)?,
-            ef.max(search.k),
+            self.breadth(search),
         ))
+    }
+
+    /// The breadth a search runs at: its own or the index's, at least `k`.
+    fn breadth(&self, search: &Search<'_>) -> usize {
+        search
+            .ef_search
+            .unwrap_or(self.params.ef_search)
+            .max(search.k)
     }
 
     /// The nearest rows to `query` (scaled to unit length first).
@@ -194,7 +201,7 @@ impl VectorIndex {
     /// search had 0.98; BENCHMARKS.md, "Tag filters".)
     pub fn over_fetch_breadth(&self, ef: usize, k: usize, tagged: usize) -> usize {
         let n = self.len().max(1);
-        let wanted = ef.max(OVERFETCH_FACTOR.saturating_mul(k));
+        let wanted = tagged_wanted(ef, k);
         let breadth = (wanted as f64 * n as f64 / tagged.max(1) as f64).ceil();
         (breadth.min(n as f64) as usize).max(k)
     }
@@ -208,10 +215,7 @@ impl VectorIndex {
             SearchMode::Auto => self.len() <= self.exact_below_rows(),
             SearchMode::Index => false,
         };
-        let ef = search
-            .ef_search
-            .unwrap_or(self.params.ef_search)
-            .max(search.k);
+        let ef = self.breadth(search);
         by_mode
             || search
                 .only
@@ -237,7 +241,7 @@ impl VectorIndex {
         if self.params.exact_below == 0 {
             return 0;
         }
-        let breadth = ef.max(OVERFETCH_FACTOR.saturating_mul(k));
+        let breadth = tagged_wanted(ef, k);
         let balance =
             breadth as f64 * self.len() as f64 * self.params.backend.scan_rows_per_breadth();
         self.exact_below_rows().max(balance.sqrt() as usize)
@@ -273,6 +277,12 @@ impl VectorIndex {
             ef_search: 0,
         }
     }
+}
+
+/// Tagged rows an over-fetch wants among its candidates, for a search of
+/// breadth `ef` and `k` hits: `max(ef, 2 k)`.
+fn tagged_wanted(ef: usize, k: usize) -> usize {
+    ef.max(OVERFETCH_FACTOR.saturating_mul(k))
 }
 
 /// Scanning a filter's rows one by one beats a full matrix pass when they
